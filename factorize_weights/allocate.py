@@ -1,0 +1,256 @@
+"""Global rank allocation: one rank (or "stay dense") per layer so the model meets a budget.
+
+For a shared budget (parameters or FLOPs) each layer offers a menu of options: factorized at an
+allowed rank k (cost k*(m+n) per position, normalized error e(k) = sum_{i>k} s_i^2 / ||W||_F^2) or
+dense (cost m*n, error 0). We minimise the summed normalized error subject to the total cost.
+That is a multiple-choice knapsack; the greedy below takes, in order of decreasing error reduction
+per unit of cost, the segments of each layer's lower convex hull of (cost, error) points (which is
+optimal for the continuous relaxation), then spends what is left on the best single moves that
+still fit. The result never exceeds the budget, and no layer is ever factorized at or above its
+break-even rank, because such ranks are not on the menu.
+"""
+
+from __future__ import annotations
+
+import heapq
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .budget import Budget
+from .errors import InputError
+from .records import LayerRecord, max_saving_rank
+from .spectra import Spectrum
+
+
+@dataclass
+class Plan:
+    """The chosen rank of every selected layer.
+
+    Attributes
+    ----------
+    budget : Budget
+    ranks : dict of str to int or None
+        ``None`` means the layer stays dense.
+    units : str
+        ``"params"`` or ``"flops"``: what ``cost_before``, ``cost_after`` and ``limit`` count.
+    cost_before, cost_after : float
+        Total cost of the selected layers before and after.
+    limit : float or None
+        The most the budget allows (``None`` for per-layer budgets).
+    rank_multiple, min_rank : int
+        Constraints the ranks were chosen under.
+    """
+
+    budget: Budget
+    ranks: dict[str, int | None]
+    units: str
+    cost_before: float
+    cost_after: float
+    limit: float | None = None
+    rank_multiple: int = 1
+    min_rank: int = 1
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def slack(self) -> float | None:
+        """How far under the budget the plan is (``limit - cost_after``)."""
+        return None if self.limit is None else self.limit - self.cost_after
+
+
+def allowed_ranks(m: int, n: int, *, rank_multiple: int = 1, min_rank: int = 1) -> np.ndarray:
+    """Ranks the allocator may choose for an m x n matrix: multiples of ``rank_multiple``, at
+    least ``min_rank``, strictly below the break-even rank (so every one saves)."""
+    top = max_saving_rank(m, n)
+    start = max(min_rank, rank_multiple)
+    start = -(-start // rank_multiple) * rank_multiple  # round up to a multiple
+    return np.arange(start, top + 1, rank_multiple, dtype=int)
+
+
+def _cost_weight(record: LayerRecord, units: str) -> int:
+    if units == "flops":
+        if record.positions is None:
+            raise InputError(
+                f"a flops budget needs each layer's output size; layer {record.name!r} has not been "
+                "measured (give --heldout so a sample input can be run)"
+            )
+        return record.positions
+    return 1
+
+
+def _fixed_cost(record: LayerRecord, units: str) -> int:
+    """Cost no choice can change: the bias (counted as parameters, not as multiply-adds)."""
+    return record.bias_params if units == "params" else 0
+
+
+def _options(record, spectrum, units, rank_multiple, min_rank):
+    """(ranks, costs, errors) for one layer; the last option (rank -1) is "stay dense"."""
+    m, n = record.matrix_shape
+    w = _cost_weight(record, units)
+    ranks = allowed_ranks(m, n, rank_multiple=rank_multiple, min_rank=min_rank)
+    if spectrum is not None:
+        ranks = ranks[ranks <= spectrum.max_rank]
+        errors = 1.0 - np.asarray(spectrum.energy_fraction(ranks), dtype=float)
+    else:
+        errors = np.zeros(len(ranks))
+    costs = np.concatenate([ranks * (m + n) * w, [m * n * w]]).astype(float)
+    errors = np.concatenate([np.maximum(errors, 0.0), [0.0]])
+    return np.concatenate([ranks, [-1]]), costs, errors
+
+
+def units_of(budget: Budget) -> str:
+    return "flops" if budget.kind == "flops" else "params"
+
+
+def budget_limit(records: list[LayerRecord], budget: Budget) -> tuple[float, float]:
+    """``(cost_before, limit)`` of a shared budget over the selected layers."""
+    units = units_of(budget)
+    before = float(
+        sum(r.weight_params * _cost_weight(r, units) + _fixed_cost(r, units) for r in records)
+    )
+    limit = budget.value if budget.absolute else budget.value * before
+    return before, float(limit)
+
+
+def check_feasible(
+    records: list[LayerRecord], budget: Budget, *, rank_multiple: int = 1, min_rank: int = 1
+) -> None:
+    """Refuse a shared budget that even the smallest plan cannot meet, before any SVD runs."""
+    if not budget.is_global:
+        return
+    if not records:
+        raise InputError("no layers are selected for factorization (check --only/--skip)")
+    units = units_of(budget)
+    before, limit = budget_limit(records, budget)
+    smallest = 0.0
+    for r in records:
+        _, costs, _ = _options(r, None, units, rank_multiple, min_rank)
+        smallest += costs[0] + _fixed_cost(r, units)
+    if smallest > limit:
+        raise InputError(
+            f"--budget {budget.text}: allows {limit:,.0f} {units} but the smallest possible plan "
+            f"(rank {max(min_rank, rank_multiple)} in every layer that can be factorized) needs "
+            f"{smallest:,.0f} of the selected layers' {before:,.0f}"
+        )
+
+
+def allocate(
+    records: list[LayerRecord],
+    spectra: list[Spectrum],
+    budget: Budget,
+    *,
+    rank_multiple: int = 1,
+    min_rank: int = 1,
+) -> Plan:
+    """Choose a rank (or dense) for every record so the selected layers meet ``budget``.
+
+    Parameters
+    ----------
+    records, spectra : lists of equal length, in the same order
+    budget : Budget
+    rank_multiple : int
+        Every rank is a multiple of this (8 or 16 suits SIMD kernels; common practice).
+    min_rank : int
+        No layer is factorized below this rank.
+
+    Returns
+    -------
+    Plan
+    """
+    if len(records) != len(spectra):
+        raise ValueError(f"{len(records)} records but {len(spectra)} spectra")
+    if rank_multiple < 1 or min_rank < 1:
+        raise InputError(
+            f"--rank-multiple and --min-rank must be at least 1; got {rank_multiple}, {min_rank}"
+        )
+    units = units_of(budget)
+    menus = [_options(r, s, units, rank_multiple, min_rank) for r, s in zip(records, spectra)]
+    fixed = sum(_fixed_cost(r, units) for r in records)
+    if budget.is_global:
+        check_feasible(records, budget, rank_multiple=rank_multiple, min_rank=min_rank)
+        before, limit = budget_limit(records, budget)
+        chosen = _greedy(menus, limit - fixed)
+    else:
+        before, limit = float(sum(r.params for r in records)), None
+        chosen = [_per_layer_choice(errors, budget) for _, _, errors in menus]
+    ranks = {}
+    cost_after = float(fixed)
+    for record, (opt_ranks, costs, _), idx in zip(records, menus, chosen):
+        rank = int(opt_ranks[idx])
+        ranks[record.name] = None if rank < 0 else rank
+        cost_after += costs[idx]
+    return Plan(budget, ranks, units, float(before), cost_after, limit, rank_multiple, min_rank)
+
+
+def _per_layer_choice(errors: np.ndarray, budget: Budget) -> int:
+    """Cheapest option whose normalized squared error meets an energy or error budget."""
+    if budget.kind == "energy":
+        ok = errors <= 1.0 - budget.value + 1e-12
+    else:  # relative Frobenius error <= F  <=>  normalized squared error <= F**2
+        ok = errors <= budget.value**2 + 1e-12
+    return int(np.argmax(ok))  # the dense option (last) always qualifies
+
+
+def _lower_hull(costs: np.ndarray, errors: np.ndarray) -> list[int]:
+    """Indices of the lower convex hull of points sorted by cost (monotone chain)."""
+    hull: list[int] = []
+    for i in range(len(costs)):
+        while len(hull) >= 2:
+            a, b = hull[-2], hull[-1]
+            # drop b when it lies on or above the segment a -> i
+            if (errors[b] - errors[a]) * (costs[i] - costs[a]) >= (errors[i] - errors[a]) * (
+                costs[b] - costs[a]
+            ):
+                hull.pop()
+            else:
+                break
+        hull.append(i)
+    return hull
+
+
+def _greedy(menus, capacity: float) -> list[int]:
+    """Indices into each menu; the summed cost stays within ``capacity``."""
+    current = [0] * len(menus)
+    spent = sum(costs[0] for _, costs, _ in menus)
+    hulls = [_lower_hull(costs, errors) for _, costs, errors in menus]
+    heap = []
+
+    def push(layer: int, pos: int) -> None:
+        hull = hulls[layer]
+        if pos + 1 < len(hull):
+            _, costs, errors = menus[layer]
+            a, b = hull[pos], hull[pos + 1]
+            gain = errors[a] - errors[b]
+            if gain > 0:
+                heapq.heappush(heap, (-gain / (costs[b] - costs[a]), layer, pos))
+
+    for layer in range(len(menus)):
+        push(layer, 0)
+    while heap:
+        _, layer, pos = heapq.heappop(heap)
+        _, costs, _ = menus[layer]
+        a, b = hulls[layer][pos], hulls[layer][pos + 1]
+        if spent + costs[b] - costs[a] <= capacity:
+            spent += costs[b] - costs[a]
+            current[layer] = b
+            push(layer, pos + 1)
+        # else: this layer's hull is blocked; the fill pass below may still step it partway
+    while True:  # fill: best single move per unit cost that still fits
+        best = None
+        for layer, (_, costs, errors) in enumerate(menus):
+            i = current[layer]
+            dc = costs[i + 1 :] - costs[i]
+            gain = errors[i] - errors[i + 1 :]
+            fits = (dc <= capacity - spent) & (gain > 0)
+            if not np.any(fits):
+                continue
+            ratio = np.where(fits, gain / np.maximum(dc, 1e-300), -np.inf)
+            j = int(np.argmax(ratio))
+            if best is None or ratio[j] > best[0]:
+                best = (ratio[j], layer, i + 1 + j, dc[j])
+        if best is None:
+            break
+        _, layer, j, dc = best
+        current[layer] = j
+        spent += dc
+    return current

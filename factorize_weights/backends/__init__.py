@@ -1,0 +1,1 @@
+"""Model-format backends. Each knows one format and nothing else (see DESIGN.md)."""

@@ -1,0 +1,405 @@
+"""PyTorch backend: find layers, hand out matrix views, rewrite into factor pairs, run, save.
+
+The only module that imports ``torch.nn`` for the core job. The numeric core receives float64
+numpy matrices from :func:`weight_matrix` and gives back numpy factors to :func:`rewrite`.
+"""
+
+from __future__ import annotations
+
+import copy
+import fnmatch
+import importlib
+import importlib.util
+import sys
+from collections import OrderedDict
+from pathlib import Path
+from typing import Callable, Iterable, Iterator, Sequence
+
+import numpy as np
+import torch
+from torch import nn
+
+from ..errors import InputError
+from ..records import LayerRecord, max_saving_rank
+
+_KINDS = {nn.Linear: "linear", nn.Conv1d: "conv1d", nn.Conv2d: "conv2d"}
+_UNSUPPORTED = {
+    nn.Conv3d: "3-D convolution is not supported yet",
+    nn.ConvTranspose1d: "transposed convolution is not supported yet",
+    nn.ConvTranspose2d: "transposed convolution is not supported yet",
+    nn.ConvTranspose3d: "transposed convolution is not supported yet",
+}
+
+
+class FactorPair(nn.Sequential):
+    """A dense layer rewritten as two thin ones: ``reduce`` (in -> rank) then ``expand``.
+
+    For a linear layer: ``Linear(in, rank, bias=False)`` then ``Linear(rank, out, bias)``.
+    For a convolution: ``Conv(in, rank, kernel, stride, padding, dilation, bias=False)`` then a
+    ``1x1`` (or length-1) ``Conv(rank, out, bias)``. The product of the two weights (as matrices)
+    is the rank-``rank`` approximation of the original ``out x in*kh*kw`` matrix view.
+    """
+
+    def __init__(self, reduce: nn.Module, expand: nn.Module, rank: int):
+        super().__init__(OrderedDict([("reduce", reduce), ("expand", expand)]))
+        self.rank = rank
+
+    def extra_repr(self) -> str:
+        return f"rank={self.rank}"
+
+
+# ---------------------------------------------------------------- loading the user's model
+
+
+def load_factory(spec: str) -> Callable[[], nn.Module]:
+    """Resolve ``path/to/file.py:factory`` or ``package.module:factory`` to the callable."""
+    target, sep, attr = spec.rpartition(":")
+    if not sep or not target or not attr:
+        raise InputError(
+            f"--model {spec!r}: expected FILE.py:FACTORY or package.module:FACTORY "
+            "(a callable that returns the nn.Module)"
+        )
+    if target.endswith(".py") or "/" in target or "\\" in target:
+        path = Path(target)
+        if not path.is_file():
+            raise InputError(f"--model {spec!r}: file {target} does not exist")
+        name = f"_factorize_weights_user_{abs(hash(str(path.resolve())))}"
+        try:
+            module_spec = importlib.util.spec_from_file_location(name, path)
+            module = importlib.util.module_from_spec(module_spec)
+            sys.modules[name] = module
+            module_spec.loader.exec_module(module)
+        except Exception as exc:  # the user's file failed to import
+            raise InputError(f"--model {spec!r}: importing {target} raised {_describe(exc)}") from exc
+    else:
+        try:
+            module = importlib.import_module(target)
+        except Exception as exc:
+            raise InputError(f"--model {spec!r}: cannot import {target}: {_describe(exc)}") from exc
+    factory = getattr(module, attr, None)
+    if not callable(factory):
+        raise InputError(f"--model {spec!r}: {target} has no callable named {attr!r}")
+    return factory
+
+
+def build_model(spec: str, weights: str | Path | None = None) -> nn.Module:
+    """Call the factory, check it returned an ``nn.Module``, load ``weights`` strictly, eval()."""
+    factory = load_factory(spec)
+    try:
+        model = factory()
+    except Exception as exc:
+        raise InputError(f"--model {spec!r}: the factory raised {_describe(exc)}") from exc
+    if not isinstance(model, nn.Module):
+        raise InputError(f"--model {spec!r}: the factory returned {type(model).__name__}, not an nn.Module")
+    if weights is not None:
+        load_weights(model, weights)
+    return model.eval()
+
+
+def read_checkpoint(path: str | Path) -> dict[str, torch.Tensor]:
+    """A flat name -> tensor mapping from ``.safetensors``, or ``.pt``/``.pth`` read with
+    ``torch.load(weights_only=True)`` (which refuses arbitrary pickled objects)."""
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(f"--weights {path}: file does not exist")
+    suffix = path.suffix.lower()
+    try:
+        if suffix == ".safetensors":
+            from safetensors.torch import load_file
+
+            state = load_file(str(path))
+        elif suffix in (".pt", ".pth", ".bin"):
+            state = torch.load(str(path), map_location="cpu", weights_only=True)
+        else:
+            raise InputError(f"--weights {path}: expected a .safetensors, .pt or .pth file")
+    except InputError:
+        raise
+    except Exception as exc:
+        raise InputError(f"--weights {path}: cannot be read as {suffix} ({_describe(exc)})") from exc
+    if isinstance(state, dict) and isinstance(state.get("state_dict"), dict):
+        state = state["state_dict"]
+    if not isinstance(state, dict) or not all(isinstance(v, torch.Tensor) for v in state.values()):
+        raise InputError(f"--weights {path}: expected a mapping of tensor names to tensors")
+    return state
+
+
+def load_weights(model: nn.Module, path: str | Path) -> None:
+    """Load a checkpoint into ``model``; every key and shape must match."""
+    state = read_checkpoint(path)
+    own = model.state_dict()
+    missing = [k for k in own if k not in state]
+    unexpected = [k for k in state if k not in own]
+    wrong = [
+        f"{k} {tuple(state[k].shape)} vs model {tuple(own[k].shape)}"
+        for k in own
+        if k in state and tuple(state[k].shape) != tuple(own[k].shape)
+    ]
+    if missing or unexpected or wrong:
+        parts = []
+        if missing:
+            parts.append(f"{len(missing)} missing (e.g. {', '.join(missing[:3])})")
+        if unexpected:
+            parts.append(f"{len(unexpected)} unexpected (e.g. {', '.join(unexpected[:3])})")
+        if wrong:
+            parts.append(f"{len(wrong)} with other shapes (e.g. {'; '.join(wrong[:2])})")
+        raise InputError(f"--weights {path}: tensors do not match the model: {'; '.join(parts)}")
+    model.load_state_dict(state, strict=True)
+
+
+def _describe(exc: BaseException) -> str:
+    text = str(exc).strip().splitlines()
+    return f"{type(exc).__name__}: {text[0]}" if text else type(exc).__name__
+
+
+# ---------------------------------------------------------------- discovery
+
+
+def _matches(name: str, patterns: Sequence[str]) -> bool:
+    return any(fnmatch.fnmatchcase(name, p) for p in patterns)
+
+
+def discover(
+    model: nn.Module, *, only: Sequence[str] = (), skip: Sequence[str] = ()
+) -> list[LayerRecord]:
+    """Every linear and convolution layer of ``model`` as a record, skipped ones with a reason.
+
+    ``only`` and ``skip`` are shell-style globs on qualified names (``"encoder.*"``); a layer is
+    selected when it matches some ``only`` pattern (or none are given) and no ``skip`` pattern.
+    """
+    records: list[LayerRecord] = []
+    owners: dict[int, str] = {}
+    parents = {}
+    for parent_name, parent in model.named_modules():
+        for child_name, child in parent.named_children():
+            parents[id(child)] = parent
+    for name, module in model.named_modules():
+        kind = next((k for cls, k in _KINDS.items() if type(module) is cls or isinstance(module, cls)), None)
+        if kind is None:
+            reason = next((r for cls, r in _UNSUPPORTED.items() if isinstance(module, cls)), None)
+            if reason is not None:
+                w = module.weight
+                records.append(
+                    LayerRecord(name, type(module).__name__.lower(), tuple(w.shape),
+                                (int(w.shape[0]), int(np.prod(w.shape[1:]))), module.bias is not None,
+                                str(w.dtype).removeprefix("torch."), skip_reason=reason, handle=module)
+                )
+            continue
+        weight = module.weight
+        if isinstance(weight, nn.parameter.UninitializedParameter):
+            records.append(LayerRecord(name, kind, (), (1, 1), False, "unknown",
+                                       skip_reason="weight not initialized (lazy module)", handle=module))
+            continue
+        shape = tuple(int(d) for d in weight.shape)
+        m, n = shape[0], int(np.prod(shape[1:]))
+        options = {}
+        if kind != "linear":
+            options = {
+                "stride": tuple(module.stride),
+                "padding": module.padding if isinstance(module.padding, str) else tuple(module.padding),
+                "dilation": tuple(module.dilation),
+                "padding_mode": module.padding_mode,
+                "groups": module.groups,
+            }
+        record = LayerRecord(name, kind, shape, (m, n), module.bias is not None,
+                             str(weight.dtype).removeprefix("torch."), options, handle=module)
+        record.skip_reason = _skip_reason(name, module, record, parents.get(id(module)), owners, only, skip)
+        owners.setdefault(id(weight), name)
+        records.append(record)
+    return records
+
+
+def _skip_reason(name, module, record, parent, owners, only, skip) -> str | None:
+    if only and not _matches(name, only):
+        return f"not matched by --only {' '.join(repr(p) for p in only)}"
+    if skip and _matches(name, skip):
+        return f"excluded by --skip {' '.join(repr(p) for p in skip if fnmatch.fnmatchcase(name, p))}"
+    if isinstance(parent, nn.MultiheadAttention):
+        return "read directly by its parent MultiheadAttention, so replacing it would have no effect"
+    if id(module.weight) in owners:
+        return f"weight is shared with layer {owners[id(module.weight)]!r} (tied weights)"
+    if not module.weight.dtype.is_floating_point:
+        return f"weight dtype {record.dtype} is not floating point"
+    groups = record.options.get("groups", 1)
+    if groups != 1:
+        cin = record.weight_shape[1] * groups
+        if groups == cin:
+            return f"depthwise convolution (groups = in_channels = {groups}) has no cross-channel matrix to split"
+        return f"grouped convolution (groups={groups}) is not one matrix"
+    m, n = record.matrix_shape
+    if max_saving_rank(m, n) < 1:
+        return f"matrix {m}x{n} has break-even rank {m * n // (m + n)}: no rank would save parameters"
+    return None
+
+
+def weight_matrix(record: LayerRecord) -> np.ndarray:
+    """The matrix view in float64: (out, in) or (out_channels, in_channels*kh*kw)."""
+    w = record.handle.weight.detach()
+    return w.reshape(w.shape[0], -1).to(device="cpu", dtype=torch.float64).numpy()
+
+
+# ---------------------------------------------------------------- rewriting
+
+
+def _factor_pair(module: nn.Module, record: LayerRecord, a: np.ndarray, x: np.ndarray) -> FactorPair:
+    """Build the two thin modules from factors A (out, k) and X (k, in*kh*kw)."""
+    rank = a.shape[1]
+    w = module.weight
+    kw = {"device": w.device, "dtype": w.dtype}
+    m = record.matrix_shape[0]
+    if record.kind == "linear":
+        reduce = nn.Linear(module.in_features, rank, bias=False, **kw)
+        expand = nn.Linear(rank, m, bias=module.bias is not None, **kw)
+    else:
+        conv = nn.Conv1d if record.kind == "conv1d" else nn.Conv2d
+        reduce = conv(module.in_channels, rank, module.kernel_size, stride=module.stride,
+                      padding=module.padding, dilation=module.dilation, bias=False,
+                      padding_mode=module.padding_mode, **kw)
+        expand = conv(rank, m, 1, bias=module.bias is not None, **kw)
+    with torch.no_grad():
+        reduce.weight.copy_(torch.from_numpy(x).reshape(reduce.weight.shape))  # (k, cin, kh, kw)
+        expand.weight.copy_(torch.from_numpy(a).reshape(expand.weight.shape))  # (out, k, 1, 1)
+        if module.bias is not None:
+            expand.bias.copy_(module.bias.detach())
+    pair = FactorPair(reduce, expand, rank)
+    pair.train(module.training)
+    return pair
+
+
+def _set_submodule(root: nn.Module, name: str, new: nn.Module) -> None:
+    parent_name, _, child = name.rpartition(".")
+    parent = root.get_submodule(parent_name) if parent_name else root
+    setattr(parent, child, new)
+
+
+def rewrite(
+    model: nn.Module,
+    records: Iterable[LayerRecord],
+    factors: dict[str, tuple[np.ndarray, np.ndarray]],
+) -> nn.Module:
+    """A deep copy of ``model`` with each layer in ``factors`` replaced by its :class:`FactorPair`.
+
+    The user's ``model`` is not modified. ``factors[name] = (A, X)`` with A (out, k), X (k, n).
+    """
+    new = copy.deepcopy(model)
+    by_name = {r.name: r for r in records}
+    for name, (a, x) in factors.items():
+        record = by_name[name]
+        old = new.get_submodule(name)
+        m, n = record.matrix_shape
+        if a.shape[0] != m or x.shape[1] != n or a.shape[1] != x.shape[0]:
+            raise ValueError(
+                f"layer {name!r}: factors {a.shape} @ {x.shape} do not make its {m}x{n} matrix"
+            )
+        _set_submodule(new, name, _factor_pair(old, record, a, x))
+    return new
+
+
+def skeleton(model: nn.Module, records: Iterable[LayerRecord], ranks: dict[str, int]) -> nn.Module:
+    """A copy of ``model`` with factor pairs of the given ranks (weights to be loaded)."""
+    by_name = {r.name: r for r in records}
+    factors = {}
+    for name, rank in ranks.items():
+        m, n = by_name[name].matrix_shape
+        factors[name] = (np.zeros((m, rank)), np.zeros((rank, n)))
+    return rewrite(model, by_name.values(), factors)
+
+
+def count_params(model: nn.Module) -> int:
+    """Parameters of the model, each shared tensor counted once."""
+    seen = {}
+    for p in model.parameters():
+        seen[id(p)] = p.numel()
+    return int(sum(seen.values()))
+
+
+def save_weights(model: nn.Module, path: str | Path) -> None:
+    from safetensors.torch import save_model
+
+    save_model(model, str(path))
+
+
+def load_saved_weights(model: nn.Module, path: str | Path) -> None:
+    from safetensors.torch import load_model
+
+    missing, unexpected = load_model(model, str(path), strict=True)
+
+
+# ---------------------------------------------------------------- running
+
+
+def _to_tensor(array: np.ndarray, model: nn.Module) -> torch.Tensor:
+    t = torch.from_numpy(np.ascontiguousarray(array))
+    param = next(model.parameters(), None)
+    if t.is_floating_point() and param is not None:
+        t = t.to(device=param.device, dtype=param.dtype)
+    elif param is not None:
+        t = t.to(device=param.device)
+    return t
+
+
+def _to_numpy(out) -> np.ndarray:
+    if isinstance(out, (tuple, list)):
+        out = out[0]
+    if isinstance(out, dict):
+        out = next(iter(out.values()))
+    if not isinstance(out, torch.Tensor):
+        raise InputError(f"the model returned {type(out).__name__}; expected a tensor (or a tuple starting with one)")
+    return out.detach().to(device="cpu", dtype=torch.float64).numpy()
+
+
+@torch.no_grad()
+def predict(model: nn.Module, inputs: np.ndarray) -> np.ndarray:
+    """Run ``model`` on one batch; the first output as a float64 array."""
+    return _to_numpy(model(_to_tensor(inputs, model)))
+
+
+@torch.no_grad()
+def measure_positions(model: nn.Module, records: list[LayerRecord], sample: np.ndarray) -> None:
+    """Set each record's output positions per sample (1 for linear) by one forward pass."""
+    hooks = []
+    for record in records:
+        if record.skip_reason is not None:
+            continue
+
+        def hook(module, args, output, record=record):
+            shape = output.shape
+            spatial = int(np.prod(shape[2:])) if record.kind != "linear" else int(np.prod(shape[1:-1]) or 1)
+            record.positions = spatial
+
+        hooks.append(record.handle.register_forward_hook(hook))
+    try:
+        model(_to_tensor(sample[:1], model))
+    finally:
+        for h in hooks:
+            h.remove()
+
+
+@torch.no_grad()
+def layer_output_errors(
+    original: nn.Module,
+    factorized: nn.Module,
+    names: list[str],
+    batches: Iterator[np.ndarray],
+) -> dict[str, float]:
+    """Relative output error of each factorized layer on the inputs the original layer sees:
+    ``||f(x) - g(x)||_F / ||f(x)||_F`` summed over the batches."""
+    num = {n: 0.0 for n in names}
+    den = {n: 0.0 for n in names}
+    hooks = []
+    for name in names:
+        layer = original.get_submodule(name)
+        pair = factorized.get_submodule(name)
+
+        def hook(module, args, output, name=name, pair=pair):
+            approx = pair(args[0])
+            num[name] += float(torch.sum((output.double() - approx.double()) ** 2))
+            den[name] += float(torch.sum(output.double() ** 2))
+
+        hooks.append(layer.register_forward_hook(hook))
+    try:
+        for batch in batches:
+            original(_to_tensor(batch, original))
+    finally:
+        for h in hooks:
+            h.remove()
+    return {n: (float(np.sqrt(num[n] / den[n])) if den[n] > 0 else 0.0) for n in names}

@@ -1,0 +1,152 @@
+"""Held-out data: an ``.npz`` file or a Python import spec yielding ``(inputs, labels)`` batches.
+
+``.npz`` layout
+---------------
+``inputs``  array (N, ...) — one row per sample, in the shape the model's forward takes.
+``labels``  optional array (N,) of integer class ids (for top1/top5) or (N, ...) float targets
+            (for mse). Any other arrays are ignored.
+
+Import spec
+-----------
+``path/to/file.py:function`` or ``package.module:function``: a callable taking no arguments that
+returns an iterable of ``(inputs, labels)`` pairs (``labels`` may be ``None``); each pair is one
+batch of numpy arrays or tensors.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import importlib
+import importlib.util
+import sys
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Iterator
+
+import numpy as np
+
+from .errors import InputError
+
+
+@dataclass
+class HeldOut:
+    """Samples held out from training, materialized as arrays.
+
+    Attributes
+    ----------
+    inputs : ndarray (N, ...)
+    labels : ndarray (N, ...) or None
+    source : str
+        Where they came from (file path or import spec).
+    sha256 : str or None
+        Hash of the file, for the report (``None`` for an import spec).
+    """
+
+    inputs: np.ndarray
+    labels: np.ndarray | None
+    source: str
+    sha256: str | None = None
+
+    def __len__(self) -> int:
+        return int(self.inputs.shape[0])
+
+    def batches(self, batch_size: int = 256, limit: int | None = None) -> Iterator[tuple[np.ndarray, np.ndarray | None]]:
+        """Consecutive batches; ``limit`` caps the total number of samples."""
+        n = len(self) if limit is None else min(limit, len(self))
+        for start in range(0, n, batch_size):
+            stop = min(start + batch_size, n)
+            labels = None if self.labels is None else self.labels[start:stop]
+            yield self.inputs[start:stop], labels
+
+
+def file_sha256(path: str | Path) -> str:
+    digest = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            digest.update(chunk)
+    return digest.hexdigest()
+
+
+def _as_array(value, what: str) -> np.ndarray:
+    if hasattr(value, "detach"):  # a torch tensor
+        value = value.detach().cpu().numpy()
+    return np.asarray(value)
+
+
+def load_heldout(spec: str | Path, *, flag: str = "--heldout") -> HeldOut:
+    """Read a held-out set from an ``.npz`` file or an import spec (see the module docstring)."""
+    text = str(spec)
+    path = Path(text)
+    if path.suffix.lower() == ".npz" or path.is_file():
+        return _load_npz(path, flag)
+    if ":" in text:
+        return _load_spec(text, flag)
+    raise InputError(f"{flag} {text}: no such file (expected an .npz file or FILE.py:FUNCTION)")
+
+
+def _load_npz(path: Path, flag: str) -> HeldOut:
+    if not path.is_file():
+        raise InputError(f"{flag} {path}: file does not exist")
+    try:
+        with np.load(path, allow_pickle=False) as data:
+            arrays = {k: data[k] for k in data.files}
+    except Exception as exc:
+        raise InputError(f"{flag} {path}: not a readable .npz file ({type(exc).__name__}: {exc})") from exc
+    if "inputs" not in arrays:
+        found = ", ".join(sorted(arrays)) or "none"
+        raise InputError(f"{flag} {path}: missing array 'inputs' (arrays found: {found})")
+    return _checked(arrays["inputs"], arrays.get("labels"), str(path), flag, file_sha256(path))
+
+
+def _load_spec(spec: str, flag: str) -> HeldOut:
+    target, _, attr = spec.rpartition(":")
+    try:
+        if target.endswith(".py"):
+            if not Path(target).is_file():
+                raise InputError(f"{flag} {spec!r}: file {target} does not exist")
+            name = f"_factorize_weights_data_{abs(hash(target))}"
+            module_spec = importlib.util.spec_from_file_location(name, target)
+            module = importlib.util.module_from_spec(module_spec)
+            sys.modules[name] = module
+            module_spec.loader.exec_module(module)
+        else:
+            module = importlib.import_module(target)
+        fn = getattr(module, attr)
+        inputs, labels = [], []
+        for item in fn():
+            x, y = item if isinstance(item, (tuple, list)) else (item, None)
+            inputs.append(_as_array(x, "inputs"))
+            if y is not None:
+                labels.append(_as_array(y, "labels"))
+    except InputError:
+        raise
+    except Exception as exc:
+        raise InputError(f"{flag} {spec!r}: {type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''}") from exc
+    if not inputs:
+        raise InputError(f"{flag} {spec!r}: yielded no batches")
+    if labels and len(labels) != len(inputs):
+        raise InputError(f"{flag} {spec!r}: some batches have labels and some do not")
+    try:
+        x = np.concatenate(inputs)
+        y = np.concatenate(labels) if labels else None
+    except ValueError as exc:
+        raise InputError(f"{flag} {spec!r}: batches do not share a shape ({exc})") from exc
+    return _checked(x, y, spec, flag, None)
+
+
+def _checked(inputs: np.ndarray, labels, source: str, flag: str, sha: str | None) -> HeldOut:
+    if inputs.ndim < 1 or inputs.shape[0] == 0:
+        raise InputError(f"{flag} {source}: 'inputs' is empty (shape {inputs.shape})")
+    if inputs.dtype.kind not in "fiub":
+        raise InputError(f"{flag} {source}: 'inputs' has dtype {inputs.dtype}; expected numbers")
+    if inputs.dtype.kind == "f" and not np.all(np.isfinite(inputs)):
+        raise InputError(f"{flag} {source}: 'inputs' contains NaN or Inf")
+    if labels is not None:
+        labels = np.asarray(labels)
+        if labels.shape[0] != inputs.shape[0]:
+            raise InputError(
+                f"{flag} {source}: 'labels' has {labels.shape[0]} rows but 'inputs' has {inputs.shape[0]}"
+            )
+        if labels.dtype.kind not in "fiub":
+            raise InputError(f"{flag} {source}: 'labels' has dtype {labels.dtype}; expected numbers")
+    return HeldOut(inputs, labels, source, sha)
