@@ -108,7 +108,8 @@ def budget_limit(records: list[LayerRecord], budget: Budget) -> tuple[float, flo
     before = float(
         sum(r.weight_params * _cost_weight(r, units) + _fixed_cost(r, units) for r in records)
     )
-    limit = budget.value if budget.absolute else budget.value * before
+    # a count of parameters or multiply-adds is whole: round a fractional limit down
+    limit = budget.value if budget.absolute else float(np.floor(budget.value * before + 1e-9))
     return before, float(limit)
 
 
@@ -178,7 +179,7 @@ def allocate(
     for record, (opt_ranks, costs, _), idx in zip(records, menus, chosen):
         rank = int(opt_ranks[idx])
         ranks[record.name] = None if rank < 0 else rank
-        cost_after += costs[idx]
+        cost_after += float(costs[idx])
     return Plan(budget, ranks, units, float(before), cost_after, limit, rank_multiple, min_rank)
 
 

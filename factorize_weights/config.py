@@ -1,0 +1,75 @@
+"""The one typed configuration of a run; CLI flags map one-to-one onto its fields."""
+
+from __future__ import annotations
+
+import dataclasses
+from dataclasses import dataclass
+
+from .errors import InputError
+from .factors import SPLITS
+from .metrics import METRICS
+from .spectra import SVD_METHODS
+
+METHODS = ("svd",)
+
+
+@dataclass
+class CompressConfig:
+    """Settings of one ``compress`` run (``inspect`` reads the spectrum fields only).
+
+    Every field has a CLI flag of the same name with dashes (``rank_multiple`` -> ``--rank-multiple``).
+    """
+
+    budget: str = "params=0.5"  # half the selected layers' parameters: a safe first try
+    method: str = "svd"  # truncated SVD of the weights (data-free)
+    svd: str = "auto"  # exact below 1024 on the smaller side, randomized above (speed)
+    seed: int = 0  # randomized SVD test matrix; fixed so runs repeat
+    oversampling: int = 10  # Halko et al.'s usual p; error within a few % of optimal
+    power_iterations: int = 2  # q=2 brings slowly decaying spectra to ~1.00x optimal error
+    split: str = "balanced"  # singular values shared by both factors (see factors.py)
+    rank_multiple: int = 1  # 8 or 16 suits SIMD kernels; 1 lets the allocator choose freely
+    min_rank: int = 1  # lowest rank a factorized layer may get
+    only: tuple[str, ...] = ()  # name globs of layers to consider (empty: all)
+    skip: tuple[str, ...] = ()  # name globs of layers to leave dense
+    metric: str | None = None  # None: top1 with class labels, mse with float targets, else cosine
+    batch_size: int = 256  # held-out batch size (memory, not accuracy)
+    error_samples: int = 256  # held-out samples used for the per-layer output error
+    quiet: bool = False  # no progress bars
+
+    def __post_init__(self) -> None:
+        self.only = tuple(self.only)
+        self.skip = tuple(self.skip)
+        self.validate()
+
+    def validate(self) -> None:
+        """Raise :class:`InputError` naming the field, the allowed values and the value given."""
+        choices = {"method": METHODS, "svd": SVD_METHODS, "split": SPLITS}
+        for name, allowed in choices.items():
+            value = getattr(self, name)
+            if value not in allowed:
+                raise InputError(f"--{name.replace('_', '-')} must be one of {', '.join(allowed)}; got {value!r}")
+        if self.metric is not None and self.metric not in METRICS:
+            raise InputError(f"--metric must be one of {', '.join(METRICS)}; got {self.metric!r}")
+        minimum = {"rank_multiple": 1, "min_rank": 1, "batch_size": 1, "oversampling": 0,
+                   "power_iterations": 0, "error_samples": 0, "seed": 0}
+        for name, low in minimum.items():
+            value = getattr(self, name)
+            if not isinstance(value, int) or isinstance(value, bool) or value < low:
+                raise InputError(
+                    f"--{name.replace('_', '-')} must be an integer in [{low}, inf); got {value!r}"
+                )
+
+    @classmethod
+    def from_mapping(cls, values: dict) -> "CompressConfig":
+        """Build from a dict, refusing unknown keys by name."""
+        known = {f.name for f in dataclasses.fields(cls)}
+        unknown = sorted(set(values) - known)
+        if unknown:
+            raise InputError(f"unknown configuration key(s): {', '.join(unknown)}")
+        return cls(**values)
+
+    def to_dict(self) -> dict:
+        d = dataclasses.asdict(self)
+        d["only"] = list(self.only)
+        d["skip"] = list(self.skip)
+        return d

@@ -1,0 +1,215 @@
+"""The orchestrator: the only place where discovery, spectra, allocation, rewrite, evaluation and
+reporting meet. The CLI and the Python API both call these functions.
+
+    discover -> spectra -> allocate -> factorize/rewrite -> evaluate -> report -> save
+"""
+
+from __future__ import annotations
+
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+from tqdm.auto import tqdm
+
+from . import report as report_mod
+from .allocate import Plan, allocate, check_feasible
+from .backends import torch_backend as backend
+from .budget import parse_budget
+from .config import CompressConfig
+from .data import HeldOut
+from .errors import InputError
+from .factors import svd_factors
+from .metrics import MetricAccumulator, MetricResult, check_metric, default_metric
+from .records import LayerRecord
+from .spectra import Spectrum, choose_method, compute_spectrum
+
+
+def _bar(iterable, config: CompressConfig, desc: str, total=None, unit="layer"):
+    """A progress bar on stderr that stays away when quiet or when stderr is not a terminal."""
+    disable = config.quiet or not sys.stderr.isatty()
+    return tqdm(iterable, desc=desc, total=total, disable=disable, leave=False, unit=unit)
+
+
+@dataclass
+class CompressResult:
+    """What :func:`compress` returns.
+
+    Attributes
+    ----------
+    model : the factorized copy (the original is untouched)
+    plan : Plan
+    records : list of LayerRecord (all, skipped included)
+    spectra : dict of layer name to Spectrum
+    metric : MetricResult or None
+    report : dict
+        The content of ``report.json``.
+    """
+
+    model: object
+    plan: Plan
+    records: list[LayerRecord]
+    spectra: dict[str, Spectrum]
+    metric: MetricResult | None
+    report: dict
+    layer_errors: dict[str, float] = field(default_factory=dict)
+
+
+def selected(records: list[LayerRecord]) -> list[LayerRecord]:
+    return [r for r in records if r.skip_reason is None]
+
+
+def compute_spectra(records: list[LayerRecord], config: CompressConfig | None = None) -> dict[str, Spectrum]:
+    """Spectrum of every selected layer (exact or randomized as ``config.svd`` says)."""
+    config = config or CompressConfig()
+    out = {}
+    for record in _bar(selected(records), config, "spectra"):
+        try:
+            out[record.name] = compute_spectrum(
+                record.name,
+                backend.weight_matrix(record),
+                svd=config.svd,
+                seed=config.seed,
+                oversampling=config.oversampling,
+                power_iterations=config.power_iterations,
+            )
+        except ValueError as exc:  # NaN/Inf in a weight is the user's model, not our bug
+            raise InputError(str(exc)) from exc
+    return out
+
+
+def factorize(model, records: list[LayerRecord], plan: Plan, config: CompressConfig | None = None):
+    """The rewritten copy of ``model`` with every layer the plan ranks split into two factors."""
+    config = config or CompressConfig()
+    factors = {}
+    chosen = [r for r in selected(records) if plan.ranks.get(r.name) is not None]
+    for record in _bar(chosen, config, "factors"):
+        rank = plan.ranks[record.name]
+        factors[record.name] = svd_factors(
+            backend.weight_matrix(record),
+            rank,
+            split=config.split,
+            svd=choose_method(record.matrix_shape, config.svd),
+            seed=config.seed,
+            oversampling=config.oversampling,
+            power_iterations=config.power_iterations,
+        )
+    return backend.rewrite(model, records, factors)
+
+
+def check_heldout(model, heldout: HeldOut, metric: str | None) -> str:
+    """Run the first held-out batch through ``model``; return the metric to use."""
+    first, labels = next(heldout.batches(batch_size=min(len(heldout), 8)))
+    try:
+        outputs = backend.predict(model, first)
+    except InputError:
+        raise
+    except Exception as exc:
+        message = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise InputError(
+            f"--heldout {heldout.source}: inputs of shape {tuple(heldout.inputs.shape[1:])} per sample "
+            f"do not fit the model ({type(exc).__name__}: {message})"
+        ) from exc
+    if not np.all(np.isfinite(outputs)):
+        raise InputError(f"--heldout {heldout.source}: the original model gives NaN or Inf outputs")
+    name = metric or default_metric(heldout.labels, outputs)
+    check_metric(name, heldout.labels, outputs)
+    return name
+
+
+def evaluate(original, factorized, heldout: HeldOut, metric: str | None = None, config: CompressConfig | None = None) -> MetricResult:
+    """The held-out metric of ``original`` (before) and ``factorized`` (after)."""
+    config = config or CompressConfig()
+    name = check_heldout(original, heldout, metric)
+    acc = MetricAccumulator(name)
+    total = -(-len(heldout) // config.batch_size)
+    for inputs, labels in _bar(heldout.batches(config.batch_size), config, "evaluate", total, "batch"):
+        acc.update(backend.predict(original, inputs), backend.predict(factorized, inputs), labels)
+    return acc.result()
+
+
+def plan_for(model, config: CompressConfig, heldout: HeldOut | None = None):
+    """discover -> spectra -> allocate; returns (records, spectra, plan). Validates everything
+    it can (budget, feasibility, held-out fit) before the first SVD."""
+    budget = parse_budget(config.budget)
+    records = backend.discover(model, only=config.only, skip=config.skip)
+    chosen = selected(records)
+    if not chosen:
+        found = f"{len(records)} layer(s) found, all skipped" if records else "no linear or convolution layers found"
+        raise InputError(f"nothing to factorize: {found}")
+    if budget.kind == "flops":
+        if heldout is None:
+            raise InputError(f"--budget {budget.text}: a flops budget needs --heldout (to measure layer output sizes)")
+        backend.measure_positions(model, records, heldout.inputs)
+    check_feasible(chosen, budget, rank_multiple=config.rank_multiple, min_rank=config.min_rank)
+    spectra = compute_spectra(records, config)
+    plan = allocate(chosen, [spectra[r.name] for r in chosen], budget,
+                    rank_multiple=config.rank_multiple, min_rank=config.min_rank)
+    return records, spectra, plan
+
+
+def compress(
+    model,
+    config: CompressConfig | None = None,
+    *,
+    heldout: HeldOut | None = None,
+    out: str | Path | None = None,
+    force: bool = False,
+    sources: dict | None = None,
+) -> CompressResult:
+    """Plan, rewrite, evaluate, report and (with ``out``) save, in one call.
+
+    Parameters
+    ----------
+    model : torch.nn.Module
+        Not modified; the result holds a factorized copy.
+    config : CompressConfig
+    heldout : HeldOut, optional
+        Enables the before/after metric and per-layer output errors.
+    out : path, optional
+        Folder to write ``model.safetensors``, ``plan.json``, ``report.json`` and ``report.md``
+        into, atomically. A non-empty folder is refused unless ``force``.
+    sources : dict, optional
+        Provenance recorded in the report (model spec, weights path and hash).
+    """
+    from . import store
+
+    config = config or CompressConfig()
+    timings = {}
+    if out is not None:
+        store.check_out_dir(out, force)
+    t0 = time.perf_counter()
+    metric_name = check_heldout(model, heldout, config.metric) if heldout is not None else None
+    records, spectra, plan = plan_for(model, config, heldout)
+    timings["plan"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    factorized = factorize(model, records, plan, config)
+    timings["rewrite"] = time.perf_counter() - t0
+    metric, layer_errors = None, {}
+    if heldout is not None:
+        t0 = time.perf_counter()
+        metric = evaluate(model, factorized, heldout, metric_name, config)
+        names = [n for n, k in plan.ranks.items() if k is not None]
+        if config.error_samples > 0 and names:
+            batches = (x for x, _ in heldout.batches(config.batch_size, limit=config.error_samples))
+            layer_errors = backend.layer_output_errors(model, factorized, names, batches)
+        timings["evaluate"] = time.perf_counter() - t0
+    report = report_mod.build_report(
+        config=config, plan=plan, records=records, spectra=spectra, metric=metric,
+        layer_errors=layer_errors, heldout=heldout, sources=sources or {},
+        model_params=(backend.count_params(model), backend.count_params(factorized)),
+        timings=timings, error_samples=min(config.error_samples, len(heldout)) if heldout is not None else 0,
+    )
+    if out is not None:
+        store.write_run(out, factorized, records, plan, report, config, force=force)
+    return CompressResult(factorized, plan, records, spectra, metric, report, layer_errors)
+
+
+def inspect_model(model, config: CompressConfig | None = None) -> dict:
+    """Spectra and break-even ranks of every layer, no rewrite (the ``inspect`` command)."""
+    config = config or CompressConfig()
+    records = backend.discover(model, only=config.only, skip=config.skip)
+    spectra = compute_spectra(records, config)
+    return report_mod.inspect_report(records, spectra, backend.count_params(model))

@@ -1,0 +1,228 @@
+"""report.json (a public interface: fields are added, never renamed) and report.md."""
+
+from __future__ import annotations
+
+import datetime as _dt
+import platform
+
+import numpy as np
+
+from ._version import __version__
+from .allocate import Plan
+from .config import CompressConfig
+from .data import HeldOut
+from .metrics import MetricResult
+from .records import LayerRecord
+from .spectra import Spectrum
+
+
+def _layer_entry(record: LayerRecord, spectrum: Spectrum, rank: int | None, config: CompressConfig) -> dict:
+    kept = 1.0 if rank is None else float(spectrum.energy_fraction(rank))
+    return {
+        "name": record.name,
+        "kind": record.kind,
+        "shape": list(record.weight_shape),
+        "matrix_shape": list(record.matrix_shape),
+        "rank": rank,
+        "break_even_rank": spectrum.break_even_rank,
+        "max_rank": min(record.matrix_shape),
+        "params_before": record.params,
+        "params_after": record.factorized_params(rank),
+        "energy_kept": kept,
+        "weight_error": 0.0 if rank is None else float(spectrum.relative_error(rank)),
+        "method": "dense" if rank is None else config.method,
+        "svd": spectrum.method,
+    }
+
+
+def spectrum_summary(spectrum: Spectrum, top: int = 64) -> dict:
+    s = spectrum.singular_values
+    return {
+        "method": spectrum.method,
+        "seed": spectrum.seed,
+        "oversampling": spectrum.oversampling,
+        "power_iterations": spectrum.power_iterations,
+        "computed": int(len(s)),
+        "frobenius_norm": float(np.sqrt(spectrum.total_energy)),
+        "singular_values": [float(v) for v in s],
+        "energy_curve": [float(v) for v in spectrum.energy_curve()],
+    }
+
+
+def build_report(
+    *,
+    config: CompressConfig,
+    plan: Plan,
+    records: list[LayerRecord],
+    spectra: dict[str, Spectrum],
+    metric: MetricResult | None,
+    layer_errors: dict[str, float],
+    heldout: HeldOut | None,
+    sources: dict,
+    model_params: tuple[int, int],
+    timings: dict[str, float],
+    error_samples: int,
+) -> dict:
+    """The content of ``report.json``."""
+    chosen = [r for r in records if r.skip_reason is None]
+    layers = []
+    for record in chosen:
+        entry = _layer_entry(record, spectra[record.name], plan.ranks[record.name], config)
+        if heldout is not None:
+            entry["output_error"] = layer_errors.get(record.name, 0.0 if entry["rank"] is None else None)
+        layers.append(entry)
+    params_before = sum(e["params_before"] for e in layers)
+    params_after = sum(e["params_after"] for e in layers)
+    budget = plan.budget.to_dict()
+    budget.update(
+        {
+            "units": plan.units,
+            "limit": plan.limit,
+            "used": plan.cost_after,
+            "before": plan.cost_before,
+            "under_by": plan.slack,
+            "met": plan.limit is None or plan.cost_after <= plan.limit,
+            "rank_multiple": plan.rank_multiple,
+            "min_rank": plan.min_rank,
+        }
+    )
+    return {
+        "tool_version": __version__,
+        "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        "sources": sources,
+        "budget": budget,
+        "method": config.method,
+        "factor_split": config.split,
+        "svd": {"requested": config.svd, "seed": config.seed, "oversampling": config.oversampling,
+                "power_iterations": config.power_iterations},
+        "totals": {
+            "params_before": params_before,
+            "params_after": params_after,
+            "params_ratio": params_after / params_before if params_before else 1.0,
+            "model_params_before": model_params[0],
+            "model_params_after": model_params[1],
+            "layers_selected": len(chosen),
+            "layers_factorized": sum(1 for e in layers if e["rank"] is not None),
+        },
+        "metric": None if metric is None else metric.to_dict(),
+        "heldout": None if heldout is None else {
+            "source": heldout.source, "sha256": heldout.sha256, "samples": len(heldout),
+            "output_error_samples": error_samples,
+        },
+        "skipped": [{"name": r.name, "kind": r.kind, "reason": r.skip_reason} for r in records if r.skip_reason],
+        "layers": layers,
+        "config": config.to_dict(),
+        "environment": {"python": platform.python_version(), "machine": platform.machine()},
+        "wall_seconds": {k: round(v, 3) for k, v in timings.items()},
+    }
+
+
+def inspect_report(records: list[LayerRecord], spectra: dict[str, Spectrum], model_params: int) -> dict:
+    """What ``inspect`` prints: per layer its shapes, break-even and spectrum; no plan."""
+    layers = []
+    for r in records:
+        if r.skip_reason:
+            continue
+        s = spectra[r.name]
+        ranks = {f"rank_for_energy_{int(t * 100)}": _rank_for(s, t) for t in (0.9, 0.99)}
+        layers.append({
+            "name": r.name, "kind": r.kind, "shape": list(r.weight_shape),
+            "matrix_shape": list(r.matrix_shape), "params": r.params,
+            "break_even_rank": s.break_even_rank, **ranks, "spectrum": spectrum_summary(s),
+        })
+    return {
+        "tool_version": __version__,
+        "model_params": model_params,
+        "layers": layers,
+        "skipped": [{"name": r.name, "kind": r.kind, "reason": r.skip_reason} for r in records if r.skip_reason],
+    }
+
+
+def _rank_for(s: Spectrum, target: float) -> int | None:
+    """Smallest rank keeping ``target`` of the energy, or None if it needs the full matrix."""
+    curve = s.energy_curve()
+    hits = np.nonzero(curve >= target - 1e-12)[0]
+    return int(hits[0]) + 1 if len(hits) else None
+
+
+# ---------------------------------------------------------------- text renderings
+
+
+def _fmt_int(n) -> str:
+    return f"{int(n):,}"
+
+
+def _fmt_metric(name: str, value: float) -> str:
+    return f"{value:.2f}%" if name in ("top1", "top5", "agreement") else f"{value:.4f}"
+
+
+def summary_line(report: dict) -> str:
+    t = report["totals"]
+    b = report["budget"]
+    text = (
+        f"budget {b['given']}: selected layers {_fmt_int(t['params_before'])} -> {_fmt_int(t['params_after'])} "
+        f"parameters ({100 * t['params_ratio']:.1f}%), whole model {_fmt_int(t['model_params_before'])} -> "
+        f"{_fmt_int(t['model_params_after'])}"
+    )
+    if b["limit"] is not None:
+        text += f"; limit {_fmt_int(b['limit'])} {b['units']}, under by {_fmt_int(b['under_by'])}"
+    m = report.get("metric")
+    if m:
+        unit = " points" if m["name"] in ("top1", "top5", "agreement") else ""
+        text += (
+            f"; held-out {m['name']} {_fmt_metric(m['name'], m['before'])} -> "
+            f"{_fmt_metric(m['name'], m['after'])} ({m['delta']:+.2f}{unit}, {m['samples']} samples)"
+        )
+    return text
+
+
+def layer_table(report: dict) -> list[str]:
+    has_out = any("output_error" in e for e in report["layers"])
+    head = ["layer", "kind", "matrix", "rank", "break-even", "params before", "params after", "energy kept", "weight error"]
+    if has_out:
+        head.append("output error")
+    rows = ["| " + " | ".join(head) + " |", "|" + "|".join(["---"] * 3 + ["---:"] * (len(head) - 3)) + "|"]
+    for e in report["layers"]:
+        cells = [
+            f"`{e['name']}`", e["kind"], "x".join(str(v) for v in e["matrix_shape"]),
+            "dense" if e["rank"] is None else str(e["rank"]), str(e["break_even_rank"]),
+            _fmt_int(e["params_before"]), _fmt_int(e["params_after"]),
+            f"{100 * e['energy_kept']:.2f}%", f"{e['weight_error']:.4f}",
+        ]
+        if has_out:
+            oe = e.get("output_error")
+            cells.append("" if oe is None else f"{oe:.4f}")
+        rows.append("| " + " | ".join(cells) + " |")
+    return rows
+
+
+def render_markdown(report: dict) -> str:
+    lines = ["# Factorization report", "", summary_line(report) + ".", ""]
+    b = report["budget"]
+    lines.append(
+        f"Method `{report['method']}` (truncated SVD, {report['factor_split']} split), ranks chosen globally "
+        f"under `{b['given']}`; rank multiple {b['rank_multiple']}, minimum rank {b['min_rank']}. "
+        "Weight error is the relative Frobenius error of the layer matrix; output error is the relative "
+        "error of the layer's output on held-out inputs."
+    )
+    lines += ["", "## Layers", ""] + layer_table(report)
+    if report["skipped"]:
+        lines += ["", "## Skipped layers", "", "| layer | kind | reason |", "|---|---|---|"]
+        lines += [f"| `{s['name']}` | {s['kind']} | {s['reason']} |" for s in report["skipped"]]
+    lines += ["", f"factorize-weights {report['tool_version']}, {report['created']}", ""]
+    return "\n".join(lines)
+
+
+def render_inspect(report: dict) -> str:
+    lines = [f"model parameters: {_fmt_int(report['model_params'])}", "",
+             "| layer | kind | matrix | params | break-even | rank for 90% energy | rank for 99% energy | top singular value |",
+             "|---|---|---|---:|---:|---:|---:|---:|"]
+    for e in report["layers"]:
+        s = e["spectrum"]["singular_values"]
+        lines.append(
+            f"| `{e['name']}` | {e['kind']} | {'x'.join(map(str, e['matrix_shape']))} | {_fmt_int(e['params'])} | "
+            f"{e['break_even_rank']} | {e['rank_for_energy_90']} | {e['rank_for_energy_99']} | {s[0]:.4g} |"
+        )
+    if report["skipped"]:
+        lines += ["", "skipped:"] + [f"  {s['name']} ({s['kind']}): {s['reason']}" for s in report["skipped"]]
+    return "\n".join(lines)

@@ -1,0 +1,148 @@
+"""The output folder: model.safetensors, plan.json, report.json, report.md — written atomically.
+
+Everything is written into a fresh temporary folder next to the target and renamed into place in
+one step, so a failed or interrupted run never leaves a half-written folder behind.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import tempfile
+from pathlib import Path
+
+from ._version import __version__
+from .allocate import Plan
+from .backends import torch_backend as backend
+from .config import CompressConfig
+from .errors import InputError
+from .records import LayerRecord
+from .report import render_markdown
+
+PLAN_FORMAT = "factorize-weights/plan"
+PLAN_VERSION = 1
+FILES = ("model.safetensors", "plan.json", "report.json", "report.md")
+
+
+def check_out_dir(out: str | Path, force: bool) -> None:
+    """Refuse an existing non-empty folder (unless ``force``) or a path that is a file."""
+    out = Path(out)
+    if out.exists() and not out.is_dir():
+        raise InputError(f"--out {out}: exists and is not a folder")
+    if out.is_dir() and any(out.iterdir()) and not force:
+        raise InputError(f"--out {out}: folder exists and is not empty (give --force to replace it)")
+    parent = out.resolve().parent
+    if not parent.is_dir():
+        raise InputError(f"--out {out}: parent folder {parent} does not exist")
+    if not os.access(parent, os.W_OK):
+        raise InputError(f"--out {out}: parent folder {parent} is not writable")
+
+
+def plan_dict(records: list[LayerRecord], plan: Plan, config: CompressConfig) -> dict:
+    """plan.json: enough to rebuild the factorized structure from the original model."""
+    layers = []
+    for r in records:
+        if r.skip_reason is not None:
+            continue
+        rank = plan.ranks[r.name]
+        layers.append({
+            "name": r.name,
+            "kind": r.kind,
+            "shape": list(r.weight_shape),
+            "matrix_shape": list(r.matrix_shape),
+            "rank": "dense" if rank is None else rank,
+            "method": "dense" if rank is None else config.method,
+        })
+    return {
+        "format": PLAN_FORMAT,
+        "version": PLAN_VERSION,
+        "tool_version": __version__,
+        "budget": plan.budget.text,
+        "method": config.method,
+        "factor_split": config.split,
+        "layers": layers,
+    }
+
+
+def _dump(path: Path, obj) -> None:
+    path.write_text(json.dumps(obj, indent=2, allow_nan=False) + "\n", encoding="utf-8")
+
+
+def write_run(out, model, records, plan: Plan, report: dict, config: CompressConfig, *, force: bool = False) -> Path:
+    """Write the four files into ``out`` atomically; return the folder."""
+    out = Path(out)
+    check_out_dir(out, force)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.tmp-", dir=out.resolve().parent))
+    try:
+        backend.save_weights(model, tmp / "model.safetensors")
+        _dump(tmp / "plan.json", plan_dict(records, plan, config))
+        _dump(tmp / "report.json", report)
+        (tmp / "report.md").write_text(render_markdown(report), encoding="utf-8")
+        if out.exists():
+            trash = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=out.resolve().parent))
+            os.replace(out, trash / "old")
+            os.replace(tmp, out)
+            shutil.rmtree(trash, ignore_errors=True)
+        else:
+            os.replace(tmp, out)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    return out
+
+
+def read_plan(folder: str | Path) -> dict:
+    folder = Path(folder)
+    path = folder / "plan.json"
+    if not path.is_file():
+        raise InputError(f"{folder}: no plan.json (is this a factorize-weights output folder?)")
+    try:
+        plan = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError) as exc:
+        raise InputError(f"{path}: not valid JSON ({exc})") from exc
+    if not isinstance(plan, dict) or plan.get("format") != PLAN_FORMAT:
+        raise InputError(f"{path}: not a factorize-weights plan (format field missing or different)")
+    if plan.get("version", 0) > PLAN_VERSION:
+        raise InputError(f"{path}: plan version {plan.get('version')} is newer than this tool understands ({PLAN_VERSION})")
+    return plan
+
+
+def load_factorized(model, folder: str | Path):
+    """Rebuild the factorized model from the user's *original* model object plus an output folder.
+
+    The original is not modified. Layer names, kinds and shapes in ``plan.json`` must match the
+    model; the weights in ``model.safetensors`` are then loaded strictly, so the result computes
+    exactly what the saved run's factorized model computed.
+    """
+    folder = Path(folder)
+    plan = read_plan(folder)
+    weights = folder / "model.safetensors"
+    if not weights.is_file():
+        raise InputError(f"{folder}: no model.safetensors")
+    records = {r.name: r for r in backend.discover(model)}
+    ranks = {}
+    for entry in plan["layers"]:
+        name = entry["name"]
+        record = records.get(name)
+        if record is None:
+            raise InputError(f"{folder}/plan.json: layer {name!r} is not in the model")
+        if list(record.weight_shape) != list(entry["shape"]) or record.kind != entry["kind"]:
+            raise InputError(
+                f"{folder}/plan.json: layer {name!r} is {entry['kind']} {entry['shape']} in the plan but "
+                f"{record.kind} {list(record.weight_shape)} in the model"
+            )
+        if entry["rank"] != "dense":
+            rank = int(entry["rank"])
+            if not 1 <= rank <= min(record.matrix_shape):
+                raise InputError(
+                    f"{folder}/plan.json: rank {rank} exceeds min(out, in) = {min(record.matrix_shape)} "
+                    f"for layer {name!r}"
+                )
+            ranks[name] = rank
+    rebuilt = backend.skeleton(model, records.values(), ranks)
+    try:
+        backend.load_saved_weights(rebuilt, weights)
+    except Exception as exc:
+        raise InputError(f"{weights}: does not match the plan ({type(exc).__name__}: {str(exc).splitlines()[0]})") from exc
+    return rebuilt.eval()
