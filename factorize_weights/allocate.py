@@ -236,7 +236,13 @@ def _greedy(menus, capacity: float) -> list[int]:
             current[layer] = b
             push(layer, pos + 1)
         # else: this layer's hull is blocked; the fill pass below may still step it partway
-    while True:  # fill: best single move per unit cost that still fits
+    spent = _fill(menus, current, spent, capacity)
+    return _refine(menus, hulls, current, spent, capacity)
+
+
+def _fill(menus, current: list[int], spent: float, capacity: float) -> float:
+    """Spend what is left on the best single move per unit cost that still fits (in place)."""
+    while True:
         best = None
         for layer, (_, costs, errors) in enumerate(menus):
             i = current[layer]
@@ -250,8 +256,36 @@ def _greedy(menus, capacity: float) -> list[int]:
             if best is None or ratio[j] > best[0]:
                 best = (ratio[j], layer, i + 1 + j, dc[j])
         if best is None:
-            break
+            return spent
         _, layer, j, dc = best
         current[layer] = j
         spent += dc
+
+
+def _refine(menus, hulls, current: list[int], spent: float, capacity: float, max_rounds: int = 50) -> list[int]:
+    """Local improvement: step one layer down (one option, or to a lower point of its hull),
+    refill greedily, keep it if the summed error drops. Fixes most of the greedy's losses where one step is a large share of the budget
+    (small layers, or the jump from a high rank to dense)."""
+
+    def total(choice):
+        return sum(errors[i] for (_, _, errors), i in zip(menus, choice))
+
+    best_err = total(current)
+    for _ in range(max_rounds):
+        improved = False
+        for layer in range(len(menus)):
+            i = current[layer]
+            costs = menus[layer][1]
+            for lower in sorted({i - 1, *(h for h in hulls[layer] if h < i)}, reverse=True):
+                if lower < 0:
+                    continue
+                trial = list(current)
+                trial[layer] = lower
+                trial_spent = _fill(menus, trial, spent - costs[i] + costs[lower], capacity)
+                err = total(trial)
+                if err < best_err - 1e-12:
+                    current, spent, best_err, improved = trial, trial_spent, err, True
+                    break
+        if not improved:
+            break
     return current
