@@ -209,62 +209,72 @@ def _lower_hull(costs: np.ndarray, errors: np.ndarray) -> list[int]:
     return hull
 
 
+def _best_move(menu, i: int, room: float):
+    """From option ``i``, the option with the largest error reduction per unit of added cost
+    among those that fit in ``room``; ``None`` when no move fits or gains anything."""
+    _, costs, errors = menu
+    dc = costs[i + 1 :] - costs[i]
+    gain = errors[i] - errors[i + 1 :]
+    fits = (dc <= room) & (gain > 0)
+    if not np.any(fits):
+        return None
+    ratio = np.where(fits, gain / np.maximum(dc, 1e-300), -np.inf)
+    j = int(np.argmax(ratio))
+    return float(ratio[j]), i + 1 + j
+
+
 def _greedy(menus, capacity: float) -> list[int]:
-    """Indices into each menu; the summed cost stays within ``capacity``."""
+    """Indices into each menu; the summed cost stays within ``capacity``.
+
+    A lazy max-heap holds, per layer, its best move from where it stands (the next point of its
+    lower convex hull while that fits; a shorter step once it does not). A popped move that no
+    longer fits the remaining room is recomputed and pushed back, so every move taken is the best
+    ratio available at that moment among the moves that fit.
+    """
     current = [0] * len(menus)
-    spent = sum(costs[0] for _, costs, _ in menus)
-    hulls = [_lower_hull(costs, errors) for _, costs, errors in menus]
+    spent = float(sum(costs[0] for _, costs, _ in menus))
     heap = []
 
-    def push(layer: int, pos: int) -> None:
-        hull = hulls[layer]
-        if pos + 1 < len(hull):
-            _, costs, errors = menus[layer]
-            a, b = hull[pos], hull[pos + 1]
-            gain = errors[a] - errors[b]
-            if gain > 0:
-                heapq.heappush(heap, (-gain / (costs[b] - costs[a]), layer, pos))
+    def push(layer: int) -> None:
+        move = _best_move(menus[layer], current[layer], capacity - spent)
+        if move is not None:
+            heapq.heappush(heap, (-move[0], layer, current[layer], move[1]))
 
     for layer in range(len(menus)):
-        push(layer, 0)
+        push(layer)
     while heap:
-        _, layer, pos = heapq.heappop(heap)
-        _, costs, _ = menus[layer]
-        a, b = hulls[layer][pos], hulls[layer][pos + 1]
-        if spent + costs[b] - costs[a] <= capacity:
-            spent += costs[b] - costs[a]
-            current[layer] = b
-            push(layer, pos + 1)
-        # else: this layer's hull is blocked; the fill pass below may still step it partway
-    spent = _fill(menus, current, spent, capacity)
-    return _refine(menus, hulls, current, spent, capacity)
+        _, layer, frm, to = heapq.heappop(heap)
+        if current[layer] != frm:
+            continue  # stale entry
+        costs = menus[layer][1]
+        if spent + costs[to] - costs[frm] > capacity:
+            push(layer)  # no longer fits: offer this layer's best move that does
+            continue
+        spent += costs[to] - costs[frm]
+        current[layer] = to
+        push(layer)
+    return _refine(menus, current, spent, capacity)
 
 
 def _fill(menus, current: list[int], spent: float, capacity: float) -> float:
     """Spend what is left on the best single move per unit cost that still fits (in place)."""
     while True:
         best = None
-        for layer, (_, costs, errors) in enumerate(menus):
-            i = current[layer]
-            dc = costs[i + 1 :] - costs[i]
-            gain = errors[i] - errors[i + 1 :]
-            fits = (dc <= capacity - spent) & (gain > 0)
-            if not np.any(fits):
-                continue
-            ratio = np.where(fits, gain / np.maximum(dc, 1e-300), -np.inf)
-            j = int(np.argmax(ratio))
-            if best is None or ratio[j] > best[0]:
-                best = (ratio[j], layer, i + 1 + j, dc[j])
+        for layer, menu in enumerate(menus):
+            move = _best_move(menu, current[layer], capacity - spent)
+            if move is not None and (best is None or move[0] > best[0]):
+                best = (move[0], layer, move[1])
         if best is None:
             return spent
-        _, layer, j, dc = best
+        _, layer, j = best
+        costs = menus[layer][1]
+        spent += costs[j] - costs[current[layer]]
         current[layer] = j
-        spent += dc
 
 
-def _refine(menus, hulls, current: list[int], spent: float, capacity: float, max_rounds: int = 50) -> list[int]:
-    """Local improvement: step one layer down (one option, or to a lower point of its hull),
-    refill greedily, keep it if the summed error drops. Fixes most of the greedy's losses where one step is a large share of the budget
+def _refine(menus, current: list[int], spent: float, capacity: float, max_rounds: int = 50) -> list[int]:
+    """Local improvement: step one layer down (one option, or to a lower point of its convex
+    hull), refill greedily, keep it if the summed error drops. Fixes most of the greedy's losses where one step is a large share of the budget
     (small layers, or the jump from a high rank to dense)."""
 
     def total(choice):
@@ -276,7 +286,8 @@ def _refine(menus, hulls, current: list[int], spent: float, capacity: float, max
         for layer in range(len(menus)):
             i = current[layer]
             costs = menus[layer][1]
-            for lower in sorted({i - 1, *(h for h in hulls[layer] if h < i)}, reverse=True):
+            hull = _lower_hull(costs, menus[layer][2])
+            for lower in sorted({i - 1, *(h for h in hull if h < i)}, reverse=True):
                 if lower < 0:
                     continue
                 trial = list(current)
