@@ -1,0 +1,147 @@
+"""PyTorch backend: discovery, rewrite exactness, dtype/device, save and rebuild."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import torch
+from torch import nn
+
+from factorize_weights import store
+from factorize_weights.backends import torch_backend as tb
+from factorize_weights.factors import svd_factors
+
+
+class Zoo(nn.Module):
+    """One of every layer the discovery must classify."""
+
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Conv2d(3, 16, 3, padding=1)
+        self.depthwise = nn.Conv2d(16, 16, 3, padding=1, groups=16)
+        self.grouped = nn.Conv2d(16, 32, 1, groups=4)
+        self.up = nn.ConvTranspose2d(32, 8, 2)
+        self.seq = nn.Conv1d(8, 24, 5, padding=2)
+        self.attn = nn.MultiheadAttention(24, 4, batch_first=True)
+        self.enc = nn.Sequential(nn.Linear(24, 48), nn.ReLU(), nn.Linear(48, 24))
+        self.score = nn.Linear(24, 1)
+        self.tied = nn.Linear(24, 48)
+        self.tied_again = nn.Linear(24, 48)
+        self.tied_again.weight = self.tied.weight
+
+
+def test_discovery_finds_every_layer_and_gives_reasons():
+    recs = {r.name: r for r in tb.discover(Zoo())}
+    assert recs["stem"].skip_reason is None and recs["stem"].matrix_shape == (16, 27)  # 3*3*3
+    assert recs["seq"].kind == "conv1d" and recs["seq"].matrix_shape == (24, 40)
+    assert recs["enc.0"].matrix_shape == (48, 24) and recs["enc.0"].skip_reason is None
+    assert "depthwise" in recs["depthwise"].skip_reason
+    assert "grouped convolution (groups=4)" in recs["grouped"].skip_reason
+    assert "transposed" in recs["up"].skip_reason
+    assert "MultiheadAttention" in recs["attn.out_proj"].skip_reason
+    assert "no rank would save" in recs["score"].skip_reason  # 1x24: break-even 0
+    assert recs["tied"].skip_reason is None
+    assert "shared with layer 'tied'" in recs["tied_again"].skip_reason
+    assert recs["stem"].options["padding"] == (1, 1) and recs["stem"].has_bias
+
+
+def test_only_and_skip_globs():
+    recs = {r.name: r for r in tb.discover(Zoo(), only=["enc.*", "stem"], skip=["enc.2"])}
+    assert recs["enc.0"].skip_reason is None and recs["stem"].skip_reason is None
+    assert recs["enc.2"].skip_reason == "excluded by --skip 'enc.2'"
+    assert recs["seq"].skip_reason.startswith("not matched by --only")
+
+
+CASES = [
+    ("linear", lambda: nn.Linear(40, 30), (5, 40)),
+    ("linear-3d-input", lambda: nn.Linear(40, 30, bias=False), (2, 7, 40)),
+    ("conv1d", lambda: nn.Conv1d(6, 12, 5, stride=2, padding=3, dilation=2), (3, 6, 33)),
+    ("conv2d", lambda: nn.Conv2d(4, 10, (3, 2), stride=(2, 1), padding=(1, 2), dilation=(1, 2)), (2, 4, 11, 9)),
+    ("conv2d-same", lambda: nn.Conv2d(4, 10, 3, padding="same", bias=False), (2, 4, 7, 7)),
+    ("conv2d-reflect", lambda: nn.Conv2d(4, 10, 3, padding=1, padding_mode="reflect"), (2, 4, 6, 6)),
+]
+
+
+@pytest.mark.parametrize("name, make, shape", CASES, ids=[c[0] for c in CASES])
+def test_full_rank_rewrite_equals_the_original(name, make, shape):
+    torch.manual_seed(0)
+    model = nn.Sequential(make()).double().eval()
+    rec = tb.discover(model)[0]
+    w = tb.weight_matrix(rec)
+    full = min(w.shape)
+    new = tb.rewrite(model, [rec], {rec.name: svd_factors(w, full)})
+    assert isinstance(new[0], tb.FactorPair) and new[0].rank == full
+    x = torch.randn(*shape, dtype=torch.float64)
+    with torch.no_grad():
+        # float64 throughout: agreement to ~1e-12 of the output scale (common practice)
+        torch.testing.assert_close(new(x), model(x), rtol=1e-10, atol=1e-10)
+
+
+@pytest.mark.parametrize("name, make, shape", CASES, ids=[c[0] for c in CASES])
+def test_rank_k_rewrite_equals_numpy_reconstruction(name, make, shape):
+    # oracle: the same layer with its weight replaced by numpy's rank-k truncated SVD
+    torch.manual_seed(1)
+    model = nn.Sequential(make()).double().eval()
+    rec = tb.discover(model)[0]
+    w = tb.weight_matrix(rec)
+    k = 3
+    u, s, vt = np.linalg.svd(w, full_matrices=False)
+    w_k = (u[:, :k] * s[:k]) @ vt[:k]
+    reference = nn.Sequential(make()).double().eval()
+    reference.load_state_dict(model.state_dict())
+    with torch.no_grad():
+        reference[0].weight.copy_(torch.from_numpy(w_k).reshape(reference[0].weight.shape))
+    new = tb.rewrite(model, [rec], {rec.name: svd_factors(w, k)})
+    x = torch.randn(*shape, dtype=torch.float64)
+    with torch.no_grad():
+        torch.testing.assert_close(new(x), reference(x), rtol=1e-10, atol=1e-10)
+
+
+def test_rewrite_keeps_dtype_and_leaves_the_original_alone():
+    model = nn.Sequential(nn.Linear(32, 32), nn.ReLU(), nn.Conv1d(32, 16, 1)).to(torch.bfloat16)
+    before = {k: v.clone() for k, v in model.state_dict().items()}
+    recs = tb.discover(model)
+    new = tb.rewrite(model, recs, {r.name: svd_factors(tb.weight_matrix(r), 4) for r in recs})
+    assert all(p.dtype == torch.bfloat16 for p in new.parameters())
+    assert all(torch.equal(before[k], v) for k, v in model.state_dict().items())
+    assert isinstance(model[0], nn.Linear) and isinstance(new[0], tb.FactorPair)
+    assert "rank=4" in repr(new[0])
+    assert new[0].reduce.weight.shape == (4, 32) and new[0].expand.weight.shape == (32, 4)
+
+
+def test_factorized_params_match_the_formula():
+    # rank k of an m x n layer: k*(m+n) weights plus the unchanged bias (derivable)
+    model = nn.Sequential(nn.Conv2d(8, 20, 3))
+    rec = tb.discover(model)[0]
+    new = tb.rewrite(model, [rec], {rec.name: svd_factors(tb.weight_matrix(rec), 5)})
+    assert tb.count_params(new) == 5 * (20 + 72) + 20 == rec.factorized_params(5)
+
+
+def test_save_and_rebuild_from_the_original_model(tmp_path):
+    from factorize_weights.config import CompressConfig
+    from factorize_weights.pipeline import compress
+
+    torch.manual_seed(2)
+    model = nn.Sequential(nn.Conv2d(3, 32, 3), nn.ReLU(), nn.Flatten(), nn.Linear(32 * 4 * 4, 64),
+                          nn.ReLU(), nn.Linear(64, 10)).eval()
+    out = tmp_path / "run"
+    result = compress(model, CompressConfig(budget="params=0.4", quiet=True), out=out)
+    assert sorted(p.name for p in out.iterdir()) == sorted(store.FILES)
+    rebuilt = store.load_factorized(model, out)
+    x = torch.randn(4, 3, 6, 6)
+    with torch.no_grad():
+        assert torch.equal(rebuilt(x), result.model(x))  # bit for bit: same structure, same weights
+    assert not any(isinstance(m, tb.FactorPair) for m in model.modules())
+
+
+def test_rebuild_refuses_a_plan_for_another_model(tmp_path):
+    from factorize_weights.errors import InputError
+
+    model = nn.Sequential(nn.Linear(16, 16))
+    (tmp_path / "plan.json").write_text(
+        '{"format": "factorize-weights/plan", "version": 1, "layers": '
+        '[{"name": "0", "kind": "linear", "shape": [8, 16], "rank": 2}]}'
+    )
+    (tmp_path / "model.safetensors").write_bytes(b"")
+    with pytest.raises(InputError, match=r"layer '0' is linear \[8, 16\] in the plan but linear \[16, 16\]"):
+        store.load_factorized(model, tmp_path)
