@@ -139,9 +139,9 @@ def plan_for(model, config: CompressConfig, heldout: HeldOut | None = None):
     if not chosen:
         found = f"{len(records)} layer(s) found, all skipped" if records else "no linear or convolution layers found"
         raise InputError(f"nothing to factorize: {found}")
-    if budget.kind == "flops":
-        if heldout is None:
-            raise InputError(f"--budget {budget.text}: a flops budget needs --heldout (to measure layer output sizes)")
+    if budget.kind == "flops" and heldout is None:
+        raise InputError(f"--budget {budget.text}: a flops budget needs --heldout (to measure layer output sizes)")
+    if heldout is not None:  # one sample tells each layer's output positions, hence its FLOPs
         backend.measure_positions(model, records, heldout.inputs)
     check_feasible(chosen, budget, rank_multiple=config.rank_multiple, min_rank=config.min_rank)
     spectra = compute_spectra(records, config)

@@ -18,7 +18,7 @@ from .spectra import Spectrum
 
 def _layer_entry(record: LayerRecord, spectrum: Spectrum, rank: int | None, config: CompressConfig) -> dict:
     kept = 1.0 if rank is None else float(spectrum.energy_fraction(rank))
-    return {
+    entry = {
         "name": record.name,
         "kind": record.kind,
         "shape": list(record.weight_shape),
@@ -33,6 +33,11 @@ def _layer_entry(record: LayerRecord, spectrum: Spectrum, rank: int | None, conf
         "method": "dense" if rank is None else config.method,
         "svd": spectrum.method,
     }
+    if record.positions is not None:  # multiply-adds per sample (weights only)
+        m, n = record.matrix_shape
+        entry["flops_before"] = m * n * record.positions
+        entry["flops_after"] = (m * n if rank is None else rank * (m + n)) * record.positions
+    return entry
 
 
 def spectrum_summary(spectrum: Spectrum, top: int = 64) -> dict:
@@ -103,6 +108,7 @@ def build_report(
             "model_params_after": model_params[1],
             "layers_selected": len(chosen),
             "layers_factorized": sum(1 for e in layers if e["rank"] is not None),
+            **_flop_totals(layers),
         },
         "metric": None if metric is None else metric.to_dict(),
         "heldout": None if heldout is None else {
@@ -115,6 +121,14 @@ def build_report(
         "environment": {"python": platform.python_version(), "machine": platform.machine()},
         "wall_seconds": {k: round(v, 3) for k, v in timings.items()},
     }
+
+
+def _flop_totals(layers: list[dict]) -> dict:
+    if not layers or any("flops_before" not in e for e in layers):
+        return {}
+    before = sum(e["flops_before"] for e in layers)
+    after = sum(e["flops_after"] for e in layers)
+    return {"flops_before": before, "flops_after": after, "flops_ratio": after / before if before else 1.0}
 
 
 def inspect_report(records: list[LayerRecord], spectra: dict[str, Spectrum], model_params: int) -> dict:
@@ -164,6 +178,9 @@ def summary_line(report: dict) -> str:
         f"parameters ({100 * t['params_ratio']:.1f}%), whole model {_fmt_int(t['model_params_before'])} -> "
         f"{_fmt_int(t['model_params_after'])}"
     )
+    if "flops_before" in t:
+        text += (f"; multiply-adds per sample {_fmt_int(t['flops_before'])} -> {_fmt_int(t['flops_after'])} "
+                 f"({100 * t['flops_ratio']:.1f}%)")
     if b["limit"] is not None:
         text += f"; limit {_fmt_int(b['limit'])} {b['units']}, under by {_fmt_int(b['under_by'])}"
     m = report.get("metric")
