@@ -16,7 +16,9 @@ from .data import HeldOut, load_heldout
 from .errors import InputError
 from .factors import svd_factors
 from .metrics import MetricResult
-from .pipeline import CompressResult, compress, compute_spectra, evaluate, factorize, inspect_model, selected
+from .pipeline import (
+    CompressResult, compress, compute_factors, compute_spectra, evaluate, factorize, inspect_model, selected,
+)
 from .records import LayerRecord, break_even_rank
 from .spectra import Spectrum, compute_spectrum, randomized_svd
 from .store import load_factorized
@@ -24,7 +26,7 @@ from .store import load_factorized
 __all__ = [
     "__version__", "Budget", "CompressConfig", "CompressResult", "FactorPair", "HeldOut", "InputError",
     "LayerRecord", "MetricResult", "Plan", "Spectrum", "allocate", "break_even_rank", "build_model",
-    "compress", "compute_spectra", "compute_spectrum", "discover", "evaluate", "factorize",
+    "compress", "compute_factors", "compute_spectra", "compute_spectrum", "discover", "evaluate", "factorize",
     "inspect_model", "load_factorized", "load_heldout", "parse_budget", "randomized_svd", "selected",
     "svd_factors",
 ]

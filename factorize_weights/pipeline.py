@@ -80,23 +80,39 @@ def compute_spectra(records: list[LayerRecord], config: CompressConfig | None = 
     return out
 
 
-def factorize(model, records: list[LayerRecord], plan: Plan, config: CompressConfig | None = None):
-    """The rewritten copy of ``model`` with every layer the plan ranks split into two factors."""
+def compute_factors(records: list[LayerRecord], plan: Plan, config: CompressConfig | None = None):
+    """``{name: (A, X)}`` for every layer the plan gives a rank; A (m, k), X (k, n), float64."""
     config = config or CompressConfig()
     factors = {}
     chosen = [r for r in selected(records) if plan.ranks.get(r.name) is not None]
     for record in _bar(chosen, config, "factors"):
-        rank = plan.ranks[record.name]
         factors[record.name] = svd_factors(
             backend.weight_matrix(record),
-            rank,
+            plan.ranks[record.name],
             split=config.split,
             svd=choose_method(record.matrix_shape, config.svd),
             seed=config.seed,
             oversampling=config.oversampling,
             power_iterations=config.power_iterations,
         )
-    return backend.rewrite(model, records, factors)
+    return factors
+
+
+def weight_errors(records: list[LayerRecord], factors: dict) -> dict[str, float]:
+    """Measured ``||W - A X||_F / ||W||_F`` of each factorized layer (float64)."""
+    out = {}
+    for record in records:
+        if record.name in factors:
+            w = backend.weight_matrix(record)
+            a, x = factors[record.name]
+            norm = np.linalg.norm(w)
+            out[record.name] = float(np.linalg.norm(w - a @ x) / norm) if norm > 0 else 0.0
+    return out
+
+
+def factorize(model, records: list[LayerRecord], plan: Plan, config: CompressConfig | None = None):
+    """The rewritten copy of ``model`` with every layer the plan ranks split into two factors."""
+    return backend.rewrite(model, records, compute_factors(records, plan, config))
 
 
 def check_heldout(model, heldout: HeldOut, metric: str | None) -> str:
@@ -185,7 +201,9 @@ def compress(
     records, spectra, plan = plan_for(model, config, heldout)
     timings["plan"] = time.perf_counter() - t0
     t0 = time.perf_counter()
-    factorized = factorize(model, records, plan, config)
+    factors = compute_factors(records, plan, config)
+    measured = weight_errors(records, factors)
+    factorized = backend.rewrite(model, records, factors)
     timings["rewrite"] = time.perf_counter() - t0
     metric, layer_errors = None, {}
     if heldout is not None:
@@ -198,7 +216,7 @@ def compress(
         timings["evaluate"] = time.perf_counter() - t0
     report = report_mod.build_report(
         config=config, plan=plan, records=records, spectra=spectra, metric=metric,
-        layer_errors=layer_errors, heldout=heldout, sources=sources or {},
+        layer_errors=layer_errors, weight_errors=measured, heldout=heldout, sources=sources or {},
         model_params=(backend.count_params(model), backend.count_params(factorized)),
         timings=timings, error_samples=min(config.error_samples, len(heldout)) if heldout is not None else 0,
     )

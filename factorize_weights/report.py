@@ -16,7 +16,8 @@ from .records import LayerRecord
 from .spectra import Spectrum
 
 
-def _layer_entry(record: LayerRecord, spectrum: Spectrum, rank: int | None, config: CompressConfig) -> dict:
+def _layer_entry(record: LayerRecord, spectrum: Spectrum, rank: int | None, config: CompressConfig,
+                 measured_error: float | None) -> dict:
     kept = 1.0 if rank is None else float(spectrum.energy_fraction(rank))
     entry = {
         "name": record.name,
@@ -29,7 +30,9 @@ def _layer_entry(record: LayerRecord, spectrum: Spectrum, rank: int | None, conf
         "params_before": record.params,
         "params_after": record.factorized_params(rank),
         "energy_kept": kept,
-        "weight_error": 0.0 if rank is None else float(spectrum.relative_error(rank)),
+        # measured from the factors actually written (equals the spectrum's tail for an exact SVD)
+        "weight_error": 0.0 if rank is None else (
+            measured_error if measured_error is not None else float(spectrum.relative_error(rank))),
         "method": "dense" if rank is None else config.method,
         "svd": spectrum.method,
     }
@@ -62,6 +65,7 @@ def build_report(
     spectra: dict[str, Spectrum],
     metric: MetricResult | None,
     layer_errors: dict[str, float],
+    weight_errors: dict[str, float],
     heldout: HeldOut | None,
     sources: dict,
     model_params: tuple[int, int],
@@ -72,7 +76,8 @@ def build_report(
     chosen = [r for r in records if r.skip_reason is None]
     layers = []
     for record in chosen:
-        entry = _layer_entry(record, spectra[record.name], plan.ranks[record.name], config)
+        entry = _layer_entry(record, spectra[record.name], plan.ranks[record.name], config,
+                             weight_errors.get(record.name))
         if heldout is not None:
             entry["output_error"] = layer_errors.get(record.name, 0.0 if entry["rank"] is None else None)
         layers.append(entry)

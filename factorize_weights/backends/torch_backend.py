@@ -6,6 +6,7 @@ numpy matrices from :func:`weight_matrix` and gives back numpy factors to :func:
 
 from __future__ import annotations
 
+import contextlib
 import copy
 import fnmatch
 import importlib
@@ -347,34 +348,52 @@ def _to_numpy(out) -> np.ndarray:
     return out.detach().to(device="cpu", dtype=torch.float64).numpy()
 
 
-@torch.no_grad()
+@contextlib.contextmanager
+def _inference(model: nn.Module):
+    """no_grad and eval() for the duration (dropout off, batch-norm frozen); the caller's
+    train/eval flags are restored afterwards."""
+    flags = [(m, m.training) for m in model.modules()]
+    model.eval()
+    try:
+        with torch.no_grad():
+            yield
+    finally:
+        for m, flag in flags:
+            m.training = flag
+
+
 def predict(model: nn.Module, inputs: np.ndarray) -> np.ndarray:
-    """Run ``model`` on one batch; the first output as a float64 array."""
-    return _to_numpy(model(_to_tensor(inputs, model)))
+    """Run ``model`` (in eval mode) on one batch; the first output as a float64 array."""
+    with _inference(model):
+        return _to_numpy(model(_to_tensor(inputs, model)))
 
 
-@torch.no_grad()
 def measure_positions(model: nn.Module, records: list[LayerRecord], sample: np.ndarray) -> None:
-    """Set each record's output positions per sample (1 for linear) by one forward pass."""
+    """Set each record's output positions per sample by one forward pass on one sample: 1 for a
+    linear layer on (N, in), T for (N, T, in), the output length or area for a convolution; a
+    layer called several times per forward counts every call."""
     hooks = []
     for record in records:
         if record.skip_reason is not None:
             continue
+        record.positions = 0
 
         def hook(module, args, output, record=record):
             shape = output.shape
-            spatial = int(np.prod(shape[2:])) if record.kind != "linear" else int(np.prod(shape[1:-1]) or 1)
-            record.positions = spatial
+            if record.kind == "linear":
+                record.positions += int(np.prod(shape[1:-1]))  # empty product: 1
+            else:
+                record.positions += int(np.prod(shape[2:]))
 
         hooks.append(record.handle.register_forward_hook(hook))
     try:
-        model(_to_tensor(sample[:1], model))
+        with _inference(model):
+            model(_to_tensor(sample[:1], model))
     finally:
         for h in hooks:
             h.remove()
 
 
-@torch.no_grad()
 def layer_output_errors(
     original: nn.Module,
     factorized: nn.Module,
@@ -397,8 +416,9 @@ def layer_output_errors(
 
         hooks.append(layer.register_forward_hook(hook))
     try:
-        for batch in batches:
-            original(_to_tensor(batch, original))
+        with _inference(original), _inference(factorized):
+            for batch in batches:
+                original(_to_tensor(batch, original))
     finally:
         for h in hooks:
             h.remove()
