@@ -24,9 +24,9 @@ EPILOG = """\
 exit codes: 0 success, 1 internal error, 2 bad input or usage
 budgets:    params=0.3 (fraction of the selected layers' parameters), params=1.2M (absolute),
             flops=0.5 (needs --heldout), energy=0.9 (per layer), error=0.1 (per layer)
-model:      --model FILE.py:FACTORY or package.module:FACTORY (a callable returning the
-            nn.Module) with --weights CHECKPOINT (.safetensors; .pt/.pth read with
-            weights_only=True), or --demo for the embedded bay-digit reader
+model:      MODEL.onnx, or --model FILE.py:FACTORY or package.module:FACTORY (a callable
+            returning the nn.Module) with --weights CHECKPOINT (.safetensors; .pt/.pth read
+            with weights_only=True), or --demo [torch|onnx] for the embedded bay-digit reader
 """
 
 
@@ -39,9 +39,12 @@ class _Parser(argparse.ArgumentParser):
 
 def _common(p: argparse.ArgumentParser) -> None:
     g = p.add_argument_group("model")
-    g.add_argument("--model", metavar="SPEC", help="FILE.py:FACTORY or package.module:FACTORY")
-    g.add_argument("--weights", metavar="FILE", help="checkpoint (.safetensors, .pt, .pth)")
-    g.add_argument("--demo", action="store_true", help="use the embedded demo model (and its held-out set)")
+    g.add_argument("model_path", nargs="?", metavar="MODEL",
+                   help="MODEL.onnx, or a PyTorch factory (same as --model)")
+    g.add_argument("--model", metavar="SPEC", help="FILE.py:FACTORY, package.module:FACTORY, or MODEL.onnx")
+    g.add_argument("--weights", metavar="FILE", help="checkpoint of a PyTorch model (.safetensors, .pt, .pth)")
+    g.add_argument("--demo", nargs="?", const="torch", choices=("torch", "onnx"),
+                   help="use the embedded demo model (PyTorch, or its ONNX export) and its held-out set")
     p.add_argument("--debug", action="store_true", help="show tracebacks")
     p.add_argument("-q", "--quiet", action="store_true", help="no progress bars")
     p.add_argument("--json", action="store_true", help="print the report as JSON on stdout (nothing else)")
@@ -84,8 +87,15 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--metric", choices=METRICS, help="default: top1 with class labels, mse with float targets, else cosine")
     g.add_argument("--batch-size", type=int, default=256, help="held-out batch size (default 256)")
     g.add_argument("--error-samples", type=int, default=256, help="held-out samples for per-layer output error")
-    g.add_argument("--out", metavar="DIR", help="write model.safetensors, plan.json, report.json, report.md here")
+    g.add_argument("--out", metavar="DIR", help="write the model, plan.json, report.json, report.md here")
     g.add_argument("--force", action="store_true", help="replace a non-empty --out folder")
+    g.add_argument("--export-onnx", action="store_true",
+                   help="PyTorch models: also write model.onnx, checked against torch in onnxruntime")
+    g = p.add_argument_group("latency (measured on the CPU when --heldout is given)")
+    g.add_argument("--latency-batch", type=int, default=1, metavar="N", help="batch size of the timed runs (default 1)")
+    g.add_argument("--latency-threads", type=int, default=1, metavar="N", help="CPU threads (default 1)")
+    g.add_argument("--latency-repeats", type=int, default=30, metavar="N", help="timed runs per model (default 30; 0: off)")
+    g.add_argument("--latency-warmup", type=int, default=5, metavar="N", help="untimed runs first (default 5)")
     p.set_defaults(func=cmd_compress)
 
     p = sub.add_parser("evaluate", help="compare an original and a factorized model on a held-out set",
@@ -103,21 +113,31 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _load_model(args):
-    from .backends import torch_backend
+    from .backends import onnx_backend, torch_backend
     from .data import file_sha256
 
+    if args.model_path and args.model:
+        raise InputError(f"give the model once: positional {args.model_path!r} and --model {args.model!r}")
+    spec = args.model_path or args.model
     if args.demo:
-        if args.model or args.weights:
-            raise InputError("--demo cannot be combined with --model/--weights")
+        if spec or args.weights:
+            raise InputError("--demo cannot be combined with a model or --weights")
         from . import demo
 
-        args.model, args.weights = demo.MODEL_SPEC, str(demo.WEIGHTS)
+        spec = str(demo.ONNX) if args.demo == "onnx" else demo.MODEL_SPEC
+        args.weights = None if args.demo == "onnx" else str(demo.WEIGHTS)
         if getattr(args, "heldout", None) is None and hasattr(args, "heldout"):
             args.heldout = str(demo.HELDOUT)
-    if not args.model:
-        raise InputError("--model is required (or --demo for the embedded demo)")
-    model = torch_backend.build_model(args.model, args.weights)
-    sources = {"model": args.model, "weights": args.weights,
+    if not spec:
+        raise InputError("no model given: MODEL.onnx, --model FILE.py:FACTORY (with --weights), or --demo")
+    if spec.lower().endswith(".onnx") or onnx_backend.looks_like_onnx(spec):
+        if args.weights:
+            raise InputError(f"--weights is for PyTorch models; the ONNX file {spec} holds its own weights")
+        return onnx_backend.load(spec), {"model": spec, "format": "onnx", "model_sha256": file_sha256(spec)}
+    if ":" not in spec:
+        raise InputError(f"--model {spec!r}: not an ONNX file and not FILE.py:FACTORY or package.module:FACTORY")
+    model = torch_backend.build_model(spec, args.weights)
+    sources = {"model": spec, "format": "torch", "weights": args.weights,
                "weights_sha256": file_sha256(args.weights) if args.weights else None}
     return model, sources
 
@@ -158,7 +178,10 @@ def cmd_compress(args) -> int:
 
     config = _config(args, budget=args.budget, method=args.method, split=args.split,
                      rank_multiple=args.rank_multiple, min_rank=args.min_rank, metric=args.metric,
-                     batch_size=args.batch_size, error_samples=args.error_samples)
+                     batch_size=args.batch_size, error_samples=args.error_samples,
+                     latency_batch=args.latency_batch, latency_threads=args.latency_threads,
+                     latency_repeats=args.latency_repeats, latency_warmup=args.latency_warmup,
+                     export_onnx=args.export_onnx)
     model, sources = _load_model(args)
     heldout = _heldout(args)
     result = compress(model, config, heldout=heldout, out=args.out, force=args.force, sources=sources)
@@ -170,7 +193,9 @@ def cmd_compress(args) -> int:
         print("skipped: " + "; ".join(f"{s['name']} ({s['reason']})" for s in result.report["skipped"]))
     print(summary_line(result.report))
     if args.out:
-        print(f"wrote {args.out}/ (model.safetensors, plan.json, report.json, report.md)")
+        from pathlib import Path
+
+        print(f"wrote {args.out}/ ({', '.join(sorted(p.name for p in Path(args.out).iterdir()))})")
     return 0
 
 

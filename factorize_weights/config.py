@@ -34,6 +34,11 @@ class CompressConfig:
     metric: str | None = None  # None: top1 with class labels, mse with float targets, else cosine
     batch_size: int = 256  # held-out batch size (memory, not accuracy)
     error_samples: int = 256  # held-out samples used for the per-layer output error
+    latency_batch: int = 1  # edge inference usually serves one request at a time
+    latency_threads: int = 1  # one core: the common budget on a shared gateway, and the least noisy
+    latency_warmup: int = 5  # untimed runs first (allocations, caches)
+    latency_repeats: int = 30  # timed runs per model; 0 turns latency measurement off
+    export_onnx: bool = False  # also write the factorized PyTorch model as model.onnx (checked)
     quiet: bool = False  # no progress bars
 
     def __post_init__(self) -> None:
@@ -51,7 +56,8 @@ class CompressConfig:
         if self.metric is not None and self.metric not in METRICS:
             raise InputError(f"--metric must be one of {', '.join(METRICS)}; got {self.metric!r}")
         minimum = {"rank_multiple": 1, "min_rank": 1, "batch_size": 1, "oversampling": 0,
-                   "power_iterations": 0, "error_samples": 0, "seed": 0}
+                   "power_iterations": 0, "error_samples": 0, "seed": 0, "latency_batch": 1,
+                   "latency_threads": 1, "latency_warmup": 0, "latency_repeats": 0}
         for name, low in minimum.items():
             value = getattr(self, name)
             if not isinstance(value, int) or isinstance(value, bool) or value < low:

@@ -42,21 +42,32 @@ class HeldOut:
         Hash of the file, for the report (``None`` for an import spec).
     """
 
-    inputs: np.ndarray
+    inputs: np.ndarray | dict[str, np.ndarray]
     labels: np.ndarray | None
     source: str
     sha256: str | None = None
 
     def __len__(self) -> int:
-        return int(self.inputs.shape[0])
+        first = next(iter(self.inputs.values())) if isinstance(self.inputs, dict) else self.inputs
+        return int(first.shape[0])
 
-    def batches(self, batch_size: int = 256, limit: int | None = None) -> Iterator[tuple[np.ndarray, np.ndarray | None]]:
-        """Consecutive batches; ``limit`` caps the total number of samples."""
+    @property
+    def sample_shape(self):
+        """Per-sample shape: a tuple, or a dict of tuples for named inputs."""
+        if isinstance(self.inputs, dict):
+            return {k: tuple(v.shape[1:]) for k, v in self.inputs.items()}
+        return tuple(self.inputs.shape[1:])
+
+    def batches(self, batch_size: int = 256, limit: int | None = None) -> Iterator[tuple]:
+        """Consecutive ``(inputs, labels)`` batches; ``limit`` caps the total number of samples."""
         n = len(self) if limit is None else min(limit, len(self))
         for start in range(0, n, batch_size):
             stop = min(start + batch_size, n)
             labels = None if self.labels is None else self.labels[start:stop]
-            yield self.inputs[start:stop], labels
+            if isinstance(self.inputs, dict):
+                yield {k: v[start:stop] for k, v in self.inputs.items()}, labels
+            else:
+                yield self.inputs[start:stop], labels
 
 
 def file_sha256(path: str | Path) -> str:
@@ -92,10 +103,14 @@ def _load_npz(path: Path, flag: str) -> HeldOut:
             arrays = {k: data[k] for k in data.files}
     except Exception as exc:
         raise InputError(f"{flag} {path}: not a readable .npz file ({type(exc).__name__}: {exc})") from exc
-    if "inputs" not in arrays:
-        found = ", ".join(sorted(arrays)) or "none"
-        raise InputError(f"{flag} {path}: missing array 'inputs' (arrays found: {found})")
-    return _checked(arrays["inputs"], arrays.get("labels"), str(path), flag, file_sha256(path))
+    labels = arrays.pop("labels", None)
+    if "inputs" in arrays:
+        inputs = arrays["inputs"]
+    elif arrays:  # arrays keyed by graph input names (multi-input ONNX graphs)
+        inputs = arrays
+    else:
+        raise InputError(f"{flag} {path}: missing array 'inputs' (the file holds no arrays besides labels)")
+    return _checked(inputs, labels, str(path), flag, file_sha256(path))
 
 
 def _load_spec(spec: str, flag: str) -> HeldOut:
@@ -134,18 +149,24 @@ def _load_spec(spec: str, flag: str) -> HeldOut:
     return _checked(x, y, spec, flag, None)
 
 
-def _checked(inputs: np.ndarray, labels, source: str, flag: str, sha: str | None) -> HeldOut:
-    if inputs.ndim < 1 or inputs.shape[0] == 0:
-        raise InputError(f"{flag} {source}: 'inputs' is empty (shape {inputs.shape})")
-    if inputs.dtype.kind not in "fiub":
-        raise InputError(f"{flag} {source}: 'inputs' has dtype {inputs.dtype}; expected numbers")
-    if inputs.dtype.kind == "f" and not np.all(np.isfinite(inputs)):
-        raise InputError(f"{flag} {source}: 'inputs' contains NaN or Inf")
+def _checked(inputs, labels, source: str, flag: str, sha: str | None) -> HeldOut:
+    named = inputs if isinstance(inputs, dict) else {"inputs": inputs}
+    rows = None
+    for key, arr in named.items():
+        if arr.ndim < 1 or arr.shape[0] == 0:
+            raise InputError(f"{flag} {source}: {key!r} is empty (shape {arr.shape})")
+        if arr.dtype.kind not in "fiub":
+            raise InputError(f"{flag} {source}: {key!r} has dtype {arr.dtype}; expected numbers")
+        if arr.dtype.kind == "f" and not np.all(np.isfinite(arr)):
+            raise InputError(f"{flag} {source}: {key!r} contains NaN or Inf")
+        if rows is not None and arr.shape[0] != rows[1]:
+            raise InputError(f"{flag} {source}: {key!r} has {arr.shape[0]} rows but {rows[0]!r} has {rows[1]}")
+        rows = rows or (key, arr.shape[0])
     if labels is not None:
         labels = np.asarray(labels)
-        if labels.shape[0] != inputs.shape[0]:
+        if labels.shape[0] != rows[1]:
             raise InputError(
-                f"{flag} {source}: 'labels' has {labels.shape[0]} rows but 'inputs' has {inputs.shape[0]}"
+                f"{flag} {source}: 'labels' has {labels.shape[0]} rows but {rows[0]!r} has {rows[1]}"
             )
         if labels.dtype.kind not in "fiub":
             raise InputError(f"{flag} {source}: 'labels' has dtype {labels.dtype}; expected numbers")

@@ -16,7 +16,8 @@ from tqdm.auto import tqdm
 
 from . import report as report_mod
 from .allocate import Plan, allocate, check_feasible
-from .backends import torch_backend as backend
+from . import latency as latency_mod
+from .backends import backend_for, backend_of
 from .budget import parse_budget
 from .config import CompressConfig
 from .data import HeldOut
@@ -69,7 +70,7 @@ def compute_spectra(records: list[LayerRecord], config: CompressConfig | None = 
         try:
             out[record.name] = compute_spectrum(
                 record.name,
-                backend.weight_matrix(record),
+                backend_of(record).weight_matrix(record),
                 svd=config.svd,
                 seed=config.seed,
                 oversampling=config.oversampling,
@@ -87,7 +88,7 @@ def compute_factors(records: list[LayerRecord], plan: Plan, config: CompressConf
     chosen = [r for r in selected(records) if plan.ranks.get(r.name) is not None]
     for record in _bar(chosen, config, "factors"):
         factors[record.name] = svd_factors(
-            backend.weight_matrix(record),
+            backend_of(record).weight_matrix(record),
             plan.ranks[record.name],
             split=config.split,
             svd=choose_method(record.matrix_shape, config.svd),
@@ -103,7 +104,7 @@ def weight_errors(records: list[LayerRecord], factors: dict) -> dict[str, float]
     out = {}
     for record in records:
         if record.name in factors:
-            w = backend.weight_matrix(record)
+            w = backend_of(record).weight_matrix(record)
             a, x = factors[record.name]
             norm = np.linalg.norm(w)
             out[record.name] = float(np.linalg.norm(w - a @ x) / norm) if norm > 0 else 0.0
@@ -112,11 +113,15 @@ def weight_errors(records: list[LayerRecord], factors: dict) -> dict[str, float]
 
 def factorize(model, records: list[LayerRecord], plan: Plan, config: CompressConfig | None = None):
     """The rewritten copy of ``model`` with every layer the plan ranks split into two factors."""
-    return backend.rewrite(model, records, compute_factors(records, plan, config))
+    return backend_for(model).rewrite(model, records, compute_factors(records, plan, config))
 
 
 def check_heldout(model, heldout: HeldOut, metric: str | None) -> str:
     """Run the first held-out batch through ``model``; return the metric to use."""
+    backend = backend_for(model)
+    if isinstance(heldout.inputs, dict) and backend.__name__.endswith("torch_backend"):
+        raise InputError(f"--heldout {heldout.source}: missing array 'inputs' (arrays found: "
+                         f"{', '.join(sorted(heldout.inputs))})")
     first, labels = next(heldout.batches(batch_size=min(len(heldout), 8)))
     try:
         outputs = backend.predict(model, first)
@@ -125,8 +130,8 @@ def check_heldout(model, heldout: HeldOut, metric: str | None) -> str:
     except Exception as exc:
         message = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise InputError(
-            f"--heldout {heldout.source}: inputs of shape {tuple(heldout.inputs.shape[1:])} per sample "
-            f"do not fit the model ({type(exc).__name__}: {message})"
+            f"--heldout {heldout.source}: inputs of shape {heldout.sample_shape} per sample "
+            f"do not fit the model ({type(exc).__name__}: {message[:300]})"
         ) from exc
     if not np.all(np.isfinite(outputs)):
         raise InputError(f"--heldout {heldout.source}: the original model gives NaN or Inf outputs")
@@ -142,7 +147,7 @@ def evaluate(original, factorized, heldout: HeldOut, metric: str | None = None, 
     acc = MetricAccumulator(name)
     total = -(-len(heldout) // config.batch_size)
     for inputs, labels in _bar(heldout.batches(config.batch_size), config, "evaluate", total, "batch"):
-        acc.update(backend.predict(original, inputs), backend.predict(factorized, inputs), labels)
+        acc.update(backend_for(original).predict(original, inputs), backend_for(factorized).predict(factorized, inputs), labels)
     return acc.result()
 
 
@@ -150,6 +155,7 @@ def plan_for(model, config: CompressConfig, heldout: HeldOut | None = None):
     """discover -> spectra -> allocate; returns (records, spectra, plan). Validates everything
     it can (budget, feasibility, held-out fit) before the first SVD."""
     budget = parse_budget(config.budget)
+    backend = backend_for(model)
     records = backend.discover(model, only=config.only, skip=config.skip)
     chosen = selected(records)
     if not chosen:
@@ -194,8 +200,14 @@ def compress(
 
     config = config or CompressConfig()
     timings = {}
+    backend = backend_for(model)
     if out is not None:
         store.check_out_dir(out, force)
+    if config.export_onnx:
+        if not backend.__name__.endswith("torch_backend"):
+            raise InputError("--export-onnx is for PyTorch models; this model is ONNX already")
+        if heldout is None or out is None:
+            raise InputError("--export-onnx needs --heldout (an example input to export with and check on) and --out")
     t0 = time.perf_counter()
     metric_name = check_heldout(model, heldout, config.metric) if heldout is not None else None
     records, spectra, plan = plan_for(model, config, heldout)
@@ -204,6 +216,8 @@ def compress(
     factors = compute_factors(records, plan, config)
     measured = weight_errors(records, factors)
     factorized = backend.rewrite(model, records, factors)
+    if hasattr(backend, "check"):
+        backend.check(factorized)  # onnx.checker, full check: a failure here is our bug
     timings["rewrite"] = time.perf_counter() - t0
     metric, layer_errors = None, {}
     if heldout is not None:
@@ -214,20 +228,67 @@ def compress(
             batches = (x for x, _ in heldout.batches(config.batch_size, limit=config.error_samples))
             layer_errors = backend.layer_output_errors(model, factorized, names, batches)
         timings["evaluate"] = time.perf_counter() - t0
+    latency = None
+    if heldout is not None and config.latency_repeats > 0:
+        t0 = time.perf_counter()
+        latency = measure_latency(model, factorized, heldout, config)
+        timings["latency"] = time.perf_counter() - t0
     report = report_mod.build_report(
         config=config, plan=plan, records=records, spectra=spectra, metric=metric,
         layer_errors=layer_errors, weight_errors=measured, heldout=heldout, sources=sources or {},
         model_params=(backend.count_params(model), backend.count_params(factorized)),
-        timings=timings, error_samples=min(config.error_samples, len(heldout)) if heldout is not None else 0,
+        timings=timings, latency=latency, error_samples=min(config.error_samples, len(heldout)) if heldout is not None else 0,
     )
+    extra = {}
+    if config.export_onnx:
+        extra["model.onnx"], report["export"] = export_checked(factorized, heldout)
     if out is not None:
-        store.write_run(out, factorized, records, plan, report, config, force=force)
+        store.write_run(out, factorized, records, plan, report, config, force=force, extra=extra)
     return CompressResult(factorized, plan, records, spectra, metric, report, layer_errors)
 
 
 def inspect_model(model, config: CompressConfig | None = None) -> dict:
     """Spectra and break-even ranks of every layer, no rewrite (the ``inspect`` command)."""
     config = config or CompressConfig()
+    backend = backend_for(model)
     records = backend.discover(model, only=config.only, skip=config.skip)
     spectra = compute_spectra(records, config)
     return report_mod.inspect_report(records, spectra, backend.count_params(model))
+
+
+def measure_latency(original, factorized, heldout: HeldOut, config: CompressConfig) -> dict:
+    """Median CPU latency of both models on one batch of ``config.latency_batch`` held-out samples,
+    in the model's own runtime (onnxruntime for ONNX, eager torch for PyTorch)."""
+    backend = backend_for(original)
+    batch = latency_mod.batch_of(heldout.inputs, config.latency_batch)
+    result = latency_mod.compare(
+        backend.timer(original, batch, config.latency_threads),
+        backend.timer(factorized, batch, config.latency_threads),
+        warmup=config.latency_warmup, repeats=config.latency_repeats,
+    )
+    runtime = "onnxruntime" if backend.__name__.endswith("onnx_backend") else "torch"
+    return {"runtime": runtime, "batch": config.latency_batch, "threads": config.latency_threads, **result}
+
+
+def export_checked(model, heldout: HeldOut):
+    """Export a factorized PyTorch model to ONNX and check it against torch in onnxruntime on the
+    first held-out batch; returns (path of the temporary file, report entry)."""
+    import tempfile
+
+    from .backends import onnx_backend, torch_backend
+
+    folder = Path(tempfile.mkdtemp(prefix="factorize-weights-export-"))
+    path = folder / "model.onnx"
+    inputs, _ = next(heldout.batches(64))
+    torch_backend.export_onnx(model, inputs, path)
+    exported = onnx_backend.load(path)
+    onnx_backend.check(exported)
+    expected = torch_backend.predict(model, inputs)
+    got = onnx_backend.predict(exported, inputs)
+    diff = float(np.max(np.abs(expected - got))) if expected.size else 0.0
+    scale = float(np.max(np.abs(expected))) if expected.size else 0.0
+    tolerance = 1e-4 * scale + 1e-5  # float32 kernels differ in summation order (common practice)
+    if expected.shape != got.shape or diff > tolerance:
+        raise RuntimeError(f"exported ONNX model disagrees with torch: max |diff| {diff:.3g} > {tolerance:.3g}")
+    return path, {"file": "model.onnx", "checked_with": "onnxruntime", "samples": int(expected.shape[0]),
+                  "max_abs_diff": diff, "tolerance": tolerance}

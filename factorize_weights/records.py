@@ -38,6 +38,8 @@ class LayerRecord:
     positions : int or None
         Output positions per sample (1 for linear layers, output length/area for convolutions)
         once measured on a sample input; FLOPs = multiply-adds per position x positions.
+    backend : str
+        ``"torch"`` or ``"onnx"``: which backend made the record (and can read its weight).
     """
 
     name: str
@@ -50,6 +52,7 @@ class LayerRecord:
     skip_reason: str | None = None
     handle: Any = field(default=None, repr=False, compare=False)
     positions: int | None = None
+    backend: str = "torch"
 
     @property
     def weight_params(self) -> int:

@@ -71,6 +71,7 @@ def build_report(
     model_params: tuple[int, int],
     timings: dict[str, float],
     error_samples: int,
+    latency: dict | None = None,
 ) -> dict:
     """The content of ``report.json``."""
     chosen = [r for r in records if r.skip_reason is None]
@@ -120,12 +121,22 @@ def build_report(
             "source": heldout.source, "sha256": heldout.sha256, "samples": len(heldout),
             "output_error_samples": error_samples,
         },
+        "latency": _latency_entry(latency, layers),
         "skipped": [{"name": r.name, "kind": r.kind, "reason": r.skip_reason} for r in records if r.skip_reason],
         "layers": layers,
         "config": config.to_dict(),
         "environment": {"python": platform.python_version(), "machine": platform.machine()},
         "wall_seconds": {k: round(v, 3) for k, v in timings.items()},
     }
+
+
+def _latency_entry(latency: dict | None, layers: list[dict]) -> dict | None:
+    """The measured latency plus the FLOP ratio the plan predicts for the selected layers."""
+    if latency is None:
+        return None
+    flops = _flop_totals(layers)
+    ratio = flops.get("flops_ratio")
+    return {**latency, "flop_ratio": ratio, "predicted_speedup": (1.0 / ratio) if ratio else None}
 
 
 def _flop_totals(layers: list[dict]) -> dict:
@@ -188,6 +199,11 @@ def summary_line(report: dict) -> str:
                  f"({100 * t['flops_ratio']:.1f}%)")
     if b["limit"] is not None:
         text += f"; limit {_fmt_int(b['limit'])} {b['units']}, under by {_fmt_int(b['under_by'])}"
+    lat = report.get("latency")
+    if lat:
+        text += (f"; latency ({lat['runtime']}, batch {lat['batch']}, {lat['threads']} thread"
+                 f"{'s' if lat['threads'] != 1 else ''}) {lat['before_ms']:.3f} -> {lat['after_ms']:.3f} ms "
+                 f"(x{lat['speedup']:.2f}; FLOPs predict x{lat['predicted_speedup'] or 1:.2f})")
     m = report.get("metric")
     if m:
         unit = " points" if m["name"] in ("top1", "top5", "agreement") else ""

@@ -69,13 +69,29 @@ def _dump(path: Path, obj) -> None:
     path.write_text(json.dumps(obj, indent=2, allow_nan=False) + "\n", encoding="utf-8")
 
 
-def write_run(out, model, records, plan: Plan, report: dict, config: CompressConfig, *, force: bool = False) -> Path:
-    """Write the four files into ``out`` atomically; return the folder."""
+def write_model(model, folder: Path) -> list[str]:
+    """The factorized model in its own format: model.safetensors (PyTorch) or model.onnx (ONNX,
+    with model.onnx.data when the input kept its weights as external data)."""
+    if type(model).__name__ == "OnnxModel":
+        from .backends import onnx_backend
+
+        onnx_backend.save(model, folder / "model.onnx")
+        return sorted(p.name for p in folder.iterdir() if p.name.startswith("model.onnx"))
+    backend.save_weights(model, folder / "model.safetensors")
+    return ["model.safetensors"]
+
+
+def write_run(out, model, records, plan: Plan, report: dict, config: CompressConfig, *, force: bool = False,
+              extra: dict[str, Path] | None = None) -> Path:
+    """Write the model, plan.json, report.json and report.md (and ``extra`` files, moved in under
+    their given names) into ``out`` atomically; return the folder."""
     out = Path(out)
     check_out_dir(out, force)
     tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.tmp-", dir=out.resolve().parent))
     try:
-        backend.save_weights(model, tmp / "model.safetensors")
+        write_model(model, tmp)
+        for name, src in (extra or {}).items():
+            shutil.move(str(src), tmp / name)
         _dump(tmp / "plan.json", plan_dict(records, plan, config))
         _dump(tmp / "report.json", report)
         (tmp / "report.md").write_text(render_markdown(report), encoding="utf-8")
@@ -111,12 +127,17 @@ def read_plan(folder: str | Path) -> dict:
 def load_factorized(model, folder: str | Path):
     """Rebuild the factorized model from the user's *original* model object plus an output folder.
 
-    The original is not modified. Layer names, kinds and shapes in ``plan.json`` must match the
+    For an ONNX run the folder's ``model.onnx`` is the factorized model and is loaded as it is.
+    For PyTorch the original is not modified. Layer names, kinds and shapes in ``plan.json`` must match the
     model; the weights in ``model.safetensors`` are then loaded strictly, so the result computes
     exactly what the saved run's factorized model computed.
     """
     folder = Path(folder)
     plan = read_plan(folder)
+    if type(model).__name__ == "OnnxModel" or (folder / "model.onnx").is_file() and not (folder / "model.safetensors").is_file():
+        from .backends import onnx_backend
+
+        return onnx_backend.load(folder / "model.onnx")
     weights = folder / "model.safetensors"
     if not weights.is_file():
         raise InputError(f"{folder}: no model.safetensors")

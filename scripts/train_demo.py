@@ -20,7 +20,7 @@ import torch
 from torch import nn
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-from factorize_weights.demo import CALIBRATION, HELDOUT, WEIGHTS, build_model  # noqa: E402
+from factorize_weights.demo import CALIBRATION, HELDOUT, ONNX, WEIGHTS, build_model  # noqa: E402
 
 
 def splits(seed: int = 7):
@@ -52,12 +52,31 @@ def shift(batch: torch.Tensor, generator: torch.Generator) -> torch.Tensor:
     return out
 
 
+def export(model: nn.Module) -> None:
+    """The same network as ONNX (opset 17, dynamic batch), for the ONNX half of the demo."""
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # the TorchScript exporter announces its deprecation
+        torch.onnx.export(model.eval(), (torch.zeros(1, 1, 8, 8),), str(ONNX), dynamo=False,
+                          input_names=["image"], output_names=["logits"], opset_version=17,
+                          dynamic_axes={"image": {0: "batch"}, "logits": {0: "batch"}})
+    print(f"wrote {ONNX.name}")
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--epochs", type=int, default=60)
     parser.add_argument("--weight-decay", type=float, default=0.05)
     parser.add_argument("--dry-run", action="store_true", help="train and report, write nothing")
+    parser.add_argument("--onnx-only", action="store_true",
+                        help="do not train: export the committed weights to bay_digits.onnx")
     args = parser.parse_args()
+    if args.onnx_only:
+        from factorize_weights.backends.torch_backend import build_model as load
+
+        export(load("factorize_weights.demo:build_model", WEIGHTS))
+        return
     torch.manual_seed(0)
     torch.set_num_threads(1)
     (xt, yt), (xc, yc), (xh, yh) = splits()
@@ -85,6 +104,7 @@ def main() -> None:
     from safetensors.torch import save_model
 
     save_model(model, str(WEIGHTS))
+    export(model)
     np.savez_compressed(HELDOUT, inputs=xh, labels=yh)
     np.savez_compressed(CALIBRATION, inputs=xc, labels=yc)
     print(f"wrote {WEIGHTS.name}, {HELDOUT.name}, {CALIBRATION.name} in {WEIGHTS.parent}")

@@ -423,3 +423,37 @@ def layer_output_errors(
         for h in hooks:
             h.remove()
     return {n: (float(np.sqrt(num[n] / den[n])) if den[n] > 0 else 0.0) for n in names}
+
+
+@contextlib.contextmanager
+def _threads(n: int):
+    old = torch.get_num_threads()
+    torch.set_num_threads(n)
+    try:
+        yield
+    finally:
+        torch.set_num_threads(old)
+
+
+def timer(model: nn.Module, inputs: np.ndarray, threads: int):
+    """A zero-argument callable running one batch in eval/inference mode with ``threads`` threads."""
+    tensor = _to_tensor(inputs, model)
+
+    def run():
+        with _threads(threads), _inference(model), torch.inference_mode():
+            model(tensor)
+
+    return run
+
+
+def export_onnx(model: nn.Module, sample: np.ndarray, path, *, opset: int = 17) -> None:
+    """Write ``model`` as ONNX with a dynamic batch axis (TorchScript-based exporter: it needs
+    nothing beyond torch itself)."""
+    import warnings
+
+    tensor = _to_tensor(sample, model)
+    with warnings.catch_warnings(), _inference(model):
+        warnings.simplefilter("ignore")
+        torch.onnx.export(model, (tensor,), str(path), dynamo=False, input_names=["input"],
+                          output_names=["output"], opset_version=opset,
+                          dynamic_axes={"input": {0: "batch"}, "output": {0: "batch"}})

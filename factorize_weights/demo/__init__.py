@@ -19,6 +19,7 @@ from torch import nn
 
 HERE = Path(__file__).resolve().parent
 WEIGHTS = HERE / "bay_digits.safetensors"
+ONNX = HERE / "bay_digits.onnx"  # the same network exported to ONNX (input "image", output "logits")
 HELDOUT = HERE / "heldout.npz"
 CALIBRATION = HERE / "calibration.npz"
 MODEL_SPEC = "factorize_weights.demo:build_model"

@@ -1,0 +1,517 @@
+"""ONNX backend: find Gemm/MatMul/Conv nodes with constant weights, split them, run with onnxruntime.
+
+Semantics follow the ONNX operator specification (onnx.ai, Operators.md):
+
+- ``Gemm``: ``Y = alpha * A' @ B' + beta * C`` with ``A' = A^T`` if ``transA``, ``B' = B^T`` if
+  ``transB``. With a constant ``B`` the layer's matrix view (out x in) is ``alpha * B`` when
+  ``transB = 1`` and ``alpha * B^T`` when ``transB = 0``.
+- ``MatMul`` with a constant 2-D weight on the right, ``Y = X @ W`` (W: in x out): the matrix view is
+  ``W^T``. On the left, ``Y = W @ X`` (W: out x in): the matrix view is ``W``.
+- ``Conv`` with ``group = 1``: weight (M, C, k...) viewed as (M, C * prod(k)).
+
+A chosen node becomes two nodes with fresh names: the first holds X (k x n) and does all the
+spatial work (same pads/strides/dilations/auto_pad), the second holds A (m x k) and the bias.
+"""
+
+from __future__ import annotations
+
+import copy
+import fnmatch
+from collections import Counter
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Iterator, Sequence
+
+import numpy as np
+
+from ..errors import InputError
+from ..records import LayerRecord, max_saving_rank
+
+_FLOAT_TYPES = {1: np.float32, 10: np.float16, 11: np.float64}  # TensorProto.FLOAT/FLOAT16/DOUBLE
+_NP_OF = {1: np.float32, 10: np.float16, 11: np.float64, 6: np.int32, 7: np.int64, 9: np.bool_,
+          2: np.uint8, 3: np.int8}
+TWO_GB = 2**31
+
+
+@dataclass
+class OnnxModel:
+    """An ONNX model in memory (external data loaded) plus where it came from."""
+
+    proto: Any
+    path: Path | None = None
+    external_data: bool = False
+    pairs: dict = field(default_factory=dict)  # layer name -> (reduce node, expand node)
+    _sessions: dict = field(default_factory=dict, repr=False)
+
+    @property
+    def graph(self):
+        return self.proto.graph
+
+
+# ---------------------------------------------------------------- loading
+
+
+def looks_like_onnx(path: str | Path) -> bool:
+    """True for an ``.onnx`` file, or any file that parses as an ONNX model with a graph."""
+    path = Path(path)
+    if not path.is_file():
+        return False
+    if path.suffix.lower() == ".onnx":
+        return True
+    if path.suffix.lower() in (".py", ".safetensors", ".pt", ".pth", ".npz"):
+        return False
+    try:
+        import onnx
+
+        proto = onnx.load(str(path), load_external_data=False)
+        return len(proto.graph.node) > 0
+    except Exception:
+        return False
+
+
+def load(path: str | Path) -> OnnxModel:
+    """Read an ONNX file (and its external-data files next to it); refuse what is not ONNX."""
+    import onnx
+    from onnx.external_data_helper import uses_external_data
+
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(f"--model {path}: file does not exist")
+    try:
+        proto = onnx.load(str(path), load_external_data=False)
+    except Exception as exc:
+        raise InputError(f"--model {path}: not an ONNX model (it does not parse: {type(exc).__name__})") from exc
+    if not proto.graph.node:
+        raise InputError(f"--model {path}: not an ONNX model (no graph nodes; truncated or another format?)")
+    external = [t for t in proto.graph.initializer if uses_external_data(t)]
+    for tensor in external:
+        location = next((e.value for e in tensor.external_data if e.key == "location"), None)
+        if location is None or not (path.parent / location).is_file():
+            raise InputError(f"--model {path}: external-data file {location!r} for tensor {tensor.name!r} is missing")
+    if external:
+        try:
+            onnx.load_external_data_for_model(proto, str(path.parent))
+        except Exception as exc:
+            raise InputError(f"--model {path}: cannot read its external data ({type(exc).__name__}: {exc})") from exc
+    try:
+        onnx.checker.check_model(proto)
+    except Exception as exc:
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
+        raise InputError(f"--model {path}: not a valid ONNX model ({first})") from exc
+    return OnnxModel(proto, path, bool(external))
+
+
+# ---------------------------------------------------------------- discovery
+
+
+def _attrs(node) -> dict:
+    import onnx
+
+    return {a.name: onnx.helper.get_attribute_value(a) for a in node.attribute}
+
+
+def _node_names(graph) -> list[str]:
+    """A unique, stable name per node: its own name when set and unique, else op_index."""
+    counts = Counter(n.name for n in graph.node if n.name)
+    return [n.name if n.name and counts[n.name] == 1 else f"{n.op_type}_{i}" for i, n in enumerate(graph.node)]
+
+
+def _uses(graph) -> Counter:
+    """How many node inputs (in the graph and its subgraphs) and graph outputs read each name."""
+    uses: Counter = Counter()
+
+    def walk(g):
+        for node in g.node:
+            uses.update(i for i in node.input if i)
+            for attr in node.attribute:
+                for sub in ([attr.g] if attr.HasField("g") else []) + list(attr.graphs):
+                    walk(sub)
+
+    walk(graph)
+    uses.update(o.name for o in graph.output)
+    return uses
+
+
+def discover(model: OnnxModel, *, only: Sequence[str] = (), skip: Sequence[str] = ()) -> list[LayerRecord]:
+    """A record for every Gemm, MatMul and Conv node; the ones that cannot be split with a reason."""
+    graph = model.graph
+    inits = {t.name: t for t in graph.initializer}
+    graph_inputs = {i.name for i in graph.input}
+    producers = {o: n for n in graph.node for o in n.output}
+    uses = _uses(graph)
+    records = []
+    for name, node in zip(_node_names(graph), graph.node):
+        if node.op_type not in ("Gemm", "MatMul", "Conv"):
+            continue
+        records.append(_record(name, node, inits, graph_inputs, producers, uses, only, skip))
+    return records
+
+
+def _weight_problem(wname, inits, graph_inputs, producers) -> str | None:
+    if wname in graph_inputs:
+        return f"weight {wname!r} is a graph input (it can change at run time)"
+    if wname in inits:
+        return None
+    if wname in producers:
+        return f"weight {wname!r} is computed by a {producers[wname].op_type} node, not a constant"
+    return f"weight {wname!r} is not a constant initializer"
+
+
+def _record(name, node, inits, graph_inputs, producers, uses, only, skip) -> LayerRecord:
+    from onnx import numpy_helper
+
+    attrs = _attrs(node)
+    op = node.op_type
+    options: dict = {"op": op, "node_outputs": list(node.output)}
+    reason = None
+    side = "right"
+    if op == "MatMul":
+        left, right = node.input[0], node.input[1]
+        if left in inits and right not in inits:
+            wname, side = left, "left"
+        else:
+            wname = right
+            if left in inits and right in inits:
+                reason = "both operands are constants (fold them instead)"
+    elif op == "Gemm":
+        wname = node.input[1]
+        if node.input[0] in inits and wname not in inits:
+            reason = "the constant is Gemm's input A; only a constant B is supported"
+    else:
+        wname = node.input[1]
+    options.update({"weight": wname, "side": side, "activation": node.input[0] if side == "right" else node.input[1]})
+    reason = reason or _weight_problem(wname, inits, graph_inputs, producers)
+    tensor = inits.get(wname)
+    if tensor is None:
+        return LayerRecord(name, op.lower(), (), (1, 1), False, "unknown", options, reason, node, backend="onnx")
+    dims = tuple(int(d) for d in tensor.dims)
+    dtype = np.dtype(_NP_OF.get(tensor.data_type, np.float32)).name if tensor.data_type in _NP_OF else "unknown"
+    kind = "linear"
+    if op == "Conv":
+        kind = {3: "conv1d", 4: "conv2d"}.get(len(dims), f"conv{len(dims) - 2}d")
+        m, n = dims[0], int(np.prod(dims[1:]))
+        options.update({k: attrs[k] for k in ("pads", "strides", "dilations", "kernel_shape", "auto_pad") if k in attrs})
+        if len(dims) not in (3, 4):
+            reason = reason or f"{len(dims) - 2}-D convolution is not supported yet"
+        group = attrs.get("group", 1)
+        if group != 1 and reason is None:
+            reason = (f"depthwise convolution (group = {group} = channels)" if dims[1] == 1
+                      else f"grouped convolution (group={group}) is not one matrix")
+    elif len(dims) != 2:
+        m, n = (dims[-1], int(np.prod(dims[:-1]))) if dims else (1, 1)
+        reason = reason or f"batched MatMul: the weight is {len(dims)}-D, not a matrix"
+    elif op == "Gemm":
+        options.update({"alpha": float(attrs.get("alpha", 1.0)), "beta": float(attrs.get("beta", 1.0)),
+                        "transA": int(attrs.get("transA", 0)), "transB": int(attrs.get("transB", 0))})
+        m, n = (dims[0], dims[1]) if options["transB"] else (dims[1], dims[0])
+    else:
+        m, n = (dims[1], dims[0]) if side == "right" else (dims[0], dims[1])
+    bias = None
+    if op in ("Gemm", "Conv") and len(node.input) > 2 and node.input[2]:
+        bias = node.input[2]
+    options["bias"] = bias
+    has_bias = bias is not None and bias in inits and int(np.prod(inits[bias].dims)) == m
+    if reason is None and uses[wname] > 1:
+        reason = f"weight initializer {wname!r} is shared by {uses[wname]} nodes"
+    if reason is None and tensor.data_type not in _FLOAT_TYPES:
+        reason = f"weight dtype {dtype} is not float16/float32/float64"
+    if reason is None:
+        if only and not any(fnmatch.fnmatchcase(name, p) for p in only):
+            reason = f"not matched by --only {' '.join(repr(p) for p in only)}"
+        elif skip and any(fnmatch.fnmatchcase(name, p) for p in skip):
+            reason = f"excluded by --skip {' '.join(repr(p) for p in skip if fnmatch.fnmatchcase(name, p))}"
+        elif max_saving_rank(m, n) < 1:
+            reason = f"matrix {m}x{n} has break-even rank {m * n // (m + n)}: no rank would save parameters"
+    record = LayerRecord(name, kind, dims, (int(m), int(n)), has_bias, dtype, options, reason, node, backend="onnx")
+    record.handle = (node, tensor)
+    return record
+
+
+def weight_matrix(record: LayerRecord) -> np.ndarray:
+    """The matrix view (out x in) in float64, alpha folded in for Gemm."""
+    from onnx import numpy_helper
+
+    _, tensor = record.handle
+    w = numpy_helper.to_array(tensor).astype(np.float64)
+    o = record.options
+    if o["op"] == "Conv":
+        return w.reshape(w.shape[0], -1)
+    if o["op"] == "Gemm":
+        return o["alpha"] * (w if o["transB"] else w.T)
+    return w.T if o["side"] == "right" else w
+
+
+# ---------------------------------------------------------------- rewriting
+
+
+class _Names:
+    """Fresh names that collide with nothing in the graph."""
+
+    def __init__(self, graph):
+        self.taken = {t.name for t in graph.initializer} | {i.name for i in graph.input}
+        self.taken |= {o.name for o in graph.output} | {v.name for v in graph.value_info}
+        for n in graph.node:
+            self.taken |= set(n.input) | set(n.output) | {n.name}
+
+    def __call__(self, base: str) -> str:
+        name, i = base, 1
+        while name in self.taken:
+            i += 1
+            name = f"{base}_{i}"
+        self.taken.add(name)
+        return name
+
+
+def _pair_nodes(record: LayerRecord, node, a: np.ndarray, x: np.ndarray, dtype, names: _Names, opset: int):
+    """(nodes, initializers) replacing ``node``: reduce holds X (k x n), expand holds A (m x k)."""
+    from onnx import helper, numpy_helper
+
+    o = record.options
+    k = a.shape[1]
+    base = record.name.replace("/", "_").strip("_") or record.name
+    hidden = names(f"{base}/reduce_output")
+    r_w, e_w = names(f"{base}.reduce.weight"), names(f"{base}.expand.weight")
+    out = node.output[0]
+    inits = []
+    if o["op"] == "Conv":
+        spatial = record.weight_shape[2:]
+        inits.append(numpy_helper.from_array(x.reshape((k, record.weight_shape[1], *spatial)).astype(dtype), r_w))
+        inits.append(numpy_helper.from_array(a.reshape((a.shape[0], k) + (1,) * len(spatial)).astype(dtype), e_w))
+        keep = {key: o[key] for key in ("pads", "strides", "dilations", "kernel_shape", "auto_pad") if key in o}
+        reduce = helper.make_node("Conv", [node.input[0], r_w], [hidden], name=names(f"{base}/reduce"), **keep)
+        expand_inputs = [hidden, e_w] + ([o["bias"]] if o["bias"] else [])
+        expand = helper.make_node("Conv", expand_inputs, [out], name=names(f"{base}/expand"),
+                                  kernel_shape=[1] * len(spatial))
+        return [reduce, expand], inits
+    if o["op"] == "MatMul" and o["side"] == "left":  # Y = W @ X  ->  A @ (X_f @ X)
+        inits.append(numpy_helper.from_array(x.astype(dtype), r_w))
+        inits.append(numpy_helper.from_array(a.astype(dtype), e_w))
+        reduce = helper.make_node("MatMul", [r_w, node.input[1]], [hidden], name=names(f"{base}/reduce"))
+        expand = helper.make_node("MatMul", [e_w, hidden], [out], name=names(f"{base}/expand"))
+        return [reduce, expand], inits
+    # right-hand weight: Y = X @ W^T (Gemm or MatMul)  ->  (X @ X_f^T) @ A^T
+    if o["op"] == "Gemm" and o["transA"]:
+        inits.append(numpy_helper.from_array(x.astype(dtype), r_w))  # (k, n), used with transB=1
+        extra = []
+        if opset < 11:  # C became optional in opset 11
+            zeros = names(f"{base}.reduce.zero")
+            inits.append(numpy_helper.from_array(np.zeros(k, dtype=dtype), zeros))
+            extra = [zeros]
+        reduce = helper.make_node("Gemm", [node.input[0], r_w] + extra, [hidden], name=names(f"{base}/reduce"),
+                                  transA=1, transB=1)
+    else:
+        inits.append(numpy_helper.from_array(np.ascontiguousarray(x.T).astype(dtype), r_w))  # (n, k)
+        reduce = helper.make_node("MatMul", [node.input[0], r_w], [hidden], name=names(f"{base}/reduce"))
+    if o["op"] == "Gemm" and o["bias"]:
+        inits.append(numpy_helper.from_array(a.astype(dtype), e_w))  # (m, k), used with transB=1
+        expand = helper.make_node("Gemm", [hidden, e_w, o["bias"]], [out], name=names(f"{base}/expand"),
+                                  transB=1, beta=o["beta"])
+    else:
+        inits.append(numpy_helper.from_array(np.ascontiguousarray(a.T).astype(dtype), e_w))  # (k, m)
+        expand = helper.make_node("MatMul", [hidden, e_w], [out], name=names(f"{base}/expand"))
+    return [reduce, expand], inits
+
+
+def _opset(proto) -> int:
+    return next((o.version for o in proto.opset_import if o.domain in ("", "ai.onnx")), 1)
+
+
+def rewrite(model: OnnxModel, records, factors: dict[str, tuple[np.ndarray, np.ndarray]]) -> OnnxModel:
+    """A copy of ``model`` with each node in ``factors`` replaced by its two factor nodes.
+
+    Graph inputs, outputs and opset are kept; the replaced weights' initializers are removed.
+    """
+    proto = copy.deepcopy(model.proto)
+    graph = proto.graph
+    by_name = {r.name: r for r in records}
+    names = _Names(graph)
+    opset = _opset(proto)
+    node_names = _node_names(graph)
+    new_nodes, new_inits, dropped, pairs = [], [], set(), {}
+    for name, node in zip(node_names, graph.node):
+        if name not in factors:
+            new_nodes.append(node)
+            continue
+        record = by_name[name]
+        a, x = factors[name]
+        m, n = record.matrix_shape
+        if a.shape[0] != m or x.shape[1] != n or a.shape[1] != x.shape[0]:
+            raise ValueError(f"layer {name!r}: factors {a.shape} @ {x.shape} do not make its {m}x{n} matrix")
+        dtype = _FLOAT_TYPES[record.handle[1].data_type]
+        nodes, inits = _pair_nodes(record, node, a, x, dtype, names, opset)
+        new_nodes += nodes
+        new_inits += inits
+        dropped.add(record.options["weight"])
+        pairs[name] = (nodes, [t.name for t in inits])
+    del graph.node[:]
+    graph.node.extend(new_nodes)
+    kept = [t for t in graph.initializer if t.name not in dropped]
+    del graph.initializer[:]
+    graph.initializer.extend(kept + new_inits)
+    return OnnxModel(proto, None, model.external_data, pairs)
+
+
+def count_params(model: OnnxModel) -> int:
+    """Numbers stored in the floating-point initializers."""
+    return int(sum(int(np.prod(t.dims)) for t in model.graph.initializer if t.data_type in _FLOAT_TYPES))
+
+
+def size_bytes(model: OnnxModel) -> int:
+    return int(model.proto.ByteSize())
+
+
+def check(model: OnnxModel) -> None:
+    """onnx.checker with full_check (runs shape inference too); raises on an invalid graph."""
+    import onnx
+
+    if model.proto.ByteSize() < TWO_GB:
+        onnx.checker.check_model(model.proto, full_check=True)
+
+
+def save(model: OnnxModel, path: str | Path, *, external: bool | None = None) -> None:
+    """Write ``model`` to ``path``; weights go to ``<name>.data`` when the input had external data
+    or the model is 2 GB or more (protobuf's limit)."""
+    import onnx
+
+    path = Path(path)
+    if external is None:
+        external = model.external_data or model.proto.ByteSize() >= TWO_GB
+    proto = copy.deepcopy(model.proto)
+    if external:
+        onnx.save_model(proto, str(path), save_as_external_data=True, all_tensors_to_one_file=True,
+                        location=path.name + ".data", size_threshold=1024)
+    else:
+        onnx.save_model(proto, str(path))
+
+
+# ---------------------------------------------------------------- running
+
+
+def _session(model: OnnxModel, threads: int | None = None, extra_outputs: tuple = ()):
+    import onnxruntime as ort
+
+    key = (threads, extra_outputs)
+    if key not in model._sessions:
+        proto = model.proto
+        if extra_outputs:
+            proto = copy.deepcopy(proto)
+            import onnx
+
+            have = {o.name for o in proto.graph.output}
+            proto.graph.output.extend(onnx.ValueInfoProto(name=n) for n in extra_outputs if n not in have)
+        options = ort.SessionOptions()
+        options.log_severity_level = 3
+        if threads is not None:
+            options.intra_op_num_threads = threads
+            options.inter_op_num_threads = 1
+        model._sessions[key] = ort.InferenceSession(proto.SerializeToString(), options,
+                                                    providers=["CPUExecutionProvider"])
+    return model._sessions[key]
+
+
+def graph_inputs(model: OnnxModel) -> list:
+    """The graph's real inputs (initializers that are also listed as inputs excluded)."""
+    inits = {t.name for t in model.graph.initializer}
+    return [i for i in model.graph.input if i.name not in inits]
+
+
+def feed(model: OnnxModel, inputs, *, source: str = "--heldout") -> dict[str, np.ndarray]:
+    """Map held-out arrays onto the graph inputs, casting to the declared element types.
+
+    ``inputs`` is one array (for a single-input graph) or a dict keyed by graph input names.
+    Names, ranks and fixed dimensions must match; a mismatch is refused naming both.
+    """
+    specs = graph_inputs(model)
+    if not isinstance(inputs, dict):
+        if len(specs) != 1:
+            raise InputError(
+                f"{source}: the graph has {len(specs)} inputs ({', '.join(s.name for s in specs)}); "
+                "give one array per input name instead of 'inputs'"
+            )
+        inputs = {specs[0].name: inputs}
+    missing = [s.name for s in specs if s.name not in inputs]
+    if missing:
+        raise InputError(f"{source}: no array for graph input(s) {', '.join(missing)} (arrays: {', '.join(inputs)})")
+    out = {}
+    for spec in specs:
+        arr = np.asarray(inputs[spec.name])
+        ttype = spec.type.tensor_type
+        dims = [d.dim_value if d.HasField("dim_value") else None for d in ttype.shape.dim]
+        if ttype.HasField("shape") and len(dims) != arr.ndim:
+            raise InputError(f"{source}: array {spec.name!r} has shape {arr.shape[1:]} per sample but the graph "
+                             f"input takes {len(dims)}-D {tuple(d or '?' for d in dims)}")
+        for axis, (want, got) in enumerate(zip(dims, arr.shape)):
+            if want is not None and axis > 0 and want != got:
+                raise InputError(f"{source}: array {spec.name!r} has shape {arr.shape} but the graph input "
+                                 f"takes {tuple(d or '?' for d in dims)} (axis {axis})")
+        out[spec.name] = arr.astype(_NP_OF.get(ttype.elem_type, arr.dtype), copy=False)
+    return out
+
+
+def predict(model: OnnxModel, inputs) -> np.ndarray:
+    """Run the graph on one batch with onnxruntime; the first output as float64."""
+    result = _session(model).run(None, feed(model, inputs))
+    return np.asarray(result[0], dtype=np.float64)
+
+
+def measure_positions(model: OnnxModel, records: list[LayerRecord], sample) -> None:
+    """Output positions per sample of each selected node, from one run on one sample."""
+    chosen = [r for r in records if r.skip_reason is None]
+    names = tuple(r.options["node_outputs"][0] for r in chosen)
+    one = {k: v[:1] for k, v in sample.items()} if isinstance(sample, dict) else sample[:1]
+    session = _session(model, None, names)
+    outputs = dict(zip([o.name for o in session.get_outputs()], session.run(None, feed(model, one))))
+    for r in chosen:
+        r.positions = int(np.asarray(outputs[r.options["node_outputs"][0]]).size // r.matrix_shape[0])
+
+
+def layer_output_errors(original: OnnxModel, factorized: OnnxModel, names: list[str], batches: Iterator) -> dict[str, float]:
+    """Relative output error of each factor pair on the inputs the original node sees:
+    ``||f(x) - g(x)||_F / ||f(x)||_F`` over the batches, each pair run alone in onnxruntime."""
+    import onnx
+    import onnxruntime as ort
+    from onnx import helper
+
+    records = {r.name: r for r in discover(original)}
+    wanted = []
+    for name in names:
+        node = records[name].handle[0]
+        wanted += [i for i in node.input if i] + [node.output[0]]
+    inits = {t.name for t in original.graph.initializer}
+    probe_names = tuple(dict.fromkeys(n for n in wanted if n not in inits))
+    session = _session(original, None, probe_names)
+    out_names = [o.name for o in session.get_outputs()]
+    f_inits = {t.name: t for t in factorized.graph.initializer}
+    num = dict.fromkeys(names, 0.0)
+    den = dict.fromkeys(names, 0.0)
+    minis = {}
+    for batch in batches:
+        values = dict(zip(out_names, session.run(None, feed(original, batch))))
+        values.update(feed(original, batch))
+        for name in names:
+            nodes, _ = factorized.pairs[name]
+            if name not in minis:
+                needed = [i for n in nodes for i in n.input if i]
+                acts = [i for i in dict.fromkeys(needed) if i not in f_inits and i not in {n.output[0] for n in nodes}]
+                graph = helper.make_graph(
+                    nodes, "pair",
+                    [helper.make_tensor_value_info(i, helper.np_dtype_to_tensor_dtype(values[i].dtype), None) for i in acts],
+                    [onnx.ValueInfoProto(name=nodes[-1].output[0])],
+                    [f_inits[i] for i in dict.fromkeys(needed) if i in f_inits],
+                )
+                mini = helper.make_model(graph, opset_imports=list(original.proto.opset_import))
+                mini.ir_version = original.proto.ir_version
+                minis[name] = (ort.InferenceSession(mini.SerializeToString(), providers=["CPUExecutionProvider"]), acts)
+            sess, acts = minis[name]
+            approx = sess.run(None, {i: values[i] for i in acts})[0].astype(np.float64)
+            exact = np.asarray(values[nodes[-1].output[0]], dtype=np.float64)
+            num[name] += float(np.sum((exact - approx) ** 2))
+            den[name] += float(np.sum(exact**2))
+    return {n: (float(np.sqrt(num[n] / den[n])) if den[n] > 0 else 0.0) for n in names}
+
+
+def timer(model: OnnxModel, inputs, threads: int):
+    """A zero-argument callable running one batch, for latency measurement."""
+    session = _session(model, threads)
+    fed = feed(model, inputs)
+    return lambda: session.run(None, fed)

@@ -1,0 +1,53 @@
+"""CPU latency, measured: warm-up, then interleaved timed runs of the original and the
+factorized model so that machine noise hits both alike; medians and spread are reported.
+
+Backend-neutral: a backend hands out a zero-argument callable that runs one batch.
+"""
+
+from __future__ import annotations
+
+import time
+
+import numpy as np
+
+
+def _stats(times_s: list[float]) -> dict:
+    ms = np.asarray(times_s) * 1e3
+    return {"median_ms": float(np.median(ms)), "p10_ms": float(np.percentile(ms, 10)),
+            "p90_ms": float(np.percentile(ms, 90))}
+
+
+def compare(run_before, run_after, *, warmup: int = 5, repeats: int = 30) -> dict:
+    """Time two callables side by side: ``warmup`` untimed calls each, then ``repeats`` rounds of
+    one timed call each (order alternating every round)."""
+    for _ in range(warmup):
+        run_before()
+        run_after()
+    before, after = [], []
+    for i in range(repeats):
+        pair = ((run_before, before), (run_after, after))
+        for fn, sink in (pair if i % 2 == 0 else pair[::-1]):
+            t0 = time.perf_counter()
+            fn()
+            sink.append(time.perf_counter() - t0)
+    b, a = _stats(before), _stats(after)
+    return {
+        "before_ms": b["median_ms"],
+        "after_ms": a["median_ms"],
+        "before_spread_ms": [b["p10_ms"], b["p90_ms"]],
+        "after_spread_ms": [a["p10_ms"], a["p90_ms"]],
+        "speedup": b["median_ms"] / a["median_ms"] if a["median_ms"] > 0 else None,
+        "warmup": warmup,
+        "repeats": repeats,
+    }
+
+
+def batch_of(inputs, batch: int):
+    """The first ``batch`` samples, tiled when the set is smaller (arrays or dicts of arrays)."""
+    def take(arr):
+        reps = -(-batch // arr.shape[0])
+        return np.concatenate([arr] * reps)[:batch] if reps > 1 else arr[:batch]
+
+    if isinstance(inputs, dict):
+        return {k: take(v) for k, v in inputs.items()}
+    return take(inputs)
