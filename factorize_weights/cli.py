@@ -91,6 +91,9 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--force", action="store_true", help="replace a non-empty --out folder")
     g.add_argument("--export-onnx", action="store_true",
                    help="PyTorch models: also write model.onnx, checked against torch in onnxruntime")
+    g.add_argument("--int8", action="store_true",
+                   help="ONNX: also quantize to int8 (onnxruntime dynamic) and compare original, factorized, "
+                        "int8-only and factorized+int8 (size, metric, latency)")
     g = p.add_argument_group("latency (measured on the CPU when --heldout is given)")
     g.add_argument("--latency-batch", type=int, default=1, metavar="N", help="batch size of the timed runs (default 1)")
     g.add_argument("--latency-threads", type=int, default=1, metavar="N", help="CPU threads (default 1)")
@@ -181,7 +184,7 @@ def cmd_compress(args) -> int:
                      batch_size=args.batch_size, error_samples=args.error_samples,
                      latency_batch=args.latency_batch, latency_threads=args.latency_threads,
                      latency_repeats=args.latency_repeats, latency_warmup=args.latency_warmup,
-                     export_onnx=args.export_onnx)
+                     export_onnx=args.export_onnx, int8=args.int8)
     model, sources = _load_model(args)
     heldout = _heldout(args)
     result = compress(model, config, heldout=heldout, out=args.out, force=args.force, sources=sources)

@@ -39,6 +39,7 @@ class CompressConfig:
     latency_warmup: int = 5  # untimed runs first (allocations, caches)
     latency_repeats: int = 30  # timed runs per model; 0 turns latency measurement off
     export_onnx: bool = False  # also write the factorized PyTorch model as model.onnx (checked)
+    int8: bool = False  # also compare dynamic int8 quantization on top (ONNX, onnxruntime)
     quiet: bool = False  # no progress bars
 
     def __post_init__(self) -> None:

@@ -17,20 +17,26 @@ def _stats(times_s: list[float]) -> dict:
             "p90_ms": float(np.percentile(ms, 90))}
 
 
-def compare(run_before, run_after, *, warmup: int = 5, repeats: int = 30) -> dict:
-    """Time two callables side by side: ``warmup`` untimed calls each, then ``repeats`` rounds of
-    one timed call each (order alternating every round)."""
+def measure_many(fns, *, warmup: int = 5, repeats: int = 30) -> list[dict]:
+    """Time several callables side by side: ``warmup`` untimed calls each, then ``repeats``
+    rounds of one timed call each, the order rotating every round so drift hits all alike."""
     for _ in range(warmup):
-        run_before()
-        run_after()
-    before, after = [], []
-    for i in range(repeats):
-        pair = ((run_before, before), (run_after, after))
-        for fn, sink in (pair if i % 2 == 0 else pair[::-1]):
-            t0 = time.perf_counter()
+        for fn in fns:
             fn()
-            sink.append(time.perf_counter() - t0)
-    b, a = _stats(before), _stats(after)
+    times = [[] for _ in fns]
+    for i in range(repeats):
+        order = list(range(len(fns)))
+        order = order[i % len(fns):] + order[: i % len(fns)]
+        for j in order:
+            t0 = time.perf_counter()
+            fns[j]()
+            times[j].append(time.perf_counter() - t0)
+    return [_stats(t) for t in times]
+
+
+def compare(run_before, run_after, *, warmup: int = 5, repeats: int = 30) -> dict:
+    """Median latency of two callables measured side by side (see :func:`measure_many`)."""
+    b, a = measure_many([run_before, run_after], warmup=warmup, repeats=repeats)
     return {
         "before_ms": b["median_ms"],
         "after_ms": a["median_ms"],

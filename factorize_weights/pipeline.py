@@ -208,6 +208,11 @@ def compress(
             raise InputError("--export-onnx is for PyTorch models; this model is ONNX already")
         if heldout is None or out is None:
             raise InputError("--export-onnx needs --heldout (an example input to export with and check on) and --out")
+    if config.int8:
+        if heldout is None or out is None:
+            raise InputError("--int8 needs --heldout (to compare the variants) and --out")
+        if backend.__name__.endswith("torch_backend") and not config.export_onnx:
+            raise InputError("--int8 quantizes ONNX models: give an ONNX model, or add --export-onnx")
     t0 = time.perf_counter()
     metric_name = check_heldout(model, heldout, config.metric) if heldout is not None else None
     records, spectra, plan = plan_for(model, config, heldout)
@@ -242,6 +247,11 @@ def compress(
     extra = {}
     if config.export_onnx:
         extra["model.onnx"], report["export"] = export_checked(factorized, heldout)
+    if config.int8:
+        t0 = time.perf_counter()
+        extra["model.int8.onnx"], report["int8"] = int8_comparison(model, factorized, heldout, metric_name, config,
+                                                                   extra.get("model.onnx"))
+        report["wall_seconds"]["int8"] = round(time.perf_counter() - t0, 3)
     if out is not None:
         store.write_run(out, factorized, records, plan, report, config, force=force, extra=extra)
     return CompressResult(factorized, plan, records, spectra, metric, report, layer_errors)
@@ -292,3 +302,42 @@ def export_checked(model, heldout: HeldOut):
         raise RuntimeError(f"exported ONNX model disagrees with torch: max |diff| {diff:.3g} > {tolerance:.3g}")
     return path, {"file": "model.onnx", "checked_with": "onnxruntime", "samples": int(expected.shape[0]),
                   "max_abs_diff": diff, "tolerance": tolerance}
+
+
+def int8_comparison(original, factorized, heldout: HeldOut, metric: str, config: CompressConfig,
+                    exported_path: Path | None = None):
+    """Original, factorized, int8-only and factorized+int8, side by side in onnxruntime: size on
+    disk, held-out metric and latency. Returns (path of factorized+int8 file, report entry)."""
+    import tempfile
+
+    from .backends import onnx_backend, torch_backend
+
+    if not isinstance(original, onnx_backend.OnnxModel):  # a PyTorch run with --export-onnx
+        folder = Path(tempfile.mkdtemp(prefix="factorize-weights-int8-"))
+        inputs, _ = next(heldout.batches(8))
+        torch_backend.export_onnx(original, inputs, folder / "original.onnx")
+        original, factorized = onnx_backend.load(folder / "original.onnx"), onnx_backend.load(exported_path)
+    variants = {"original": original, "factorized": factorized,
+                "int8": onnx_backend.quantize_int8(original), "factorized+int8": onnx_backend.quantize_int8(factorized)}
+    accs = {name: MetricAccumulator(metric) for name in variants}
+    for inputs, labels in heldout.batches(config.batch_size):
+        reference = onnx_backend.predict(original, inputs)
+        for name, model in variants.items():
+            accs[name].update(reference, onnx_backend.predict(model, inputs), labels)
+    batch = latency_mod.batch_of(heldout.inputs, config.latency_batch)
+    times = latency_mod.measure_many(
+        [onnx_backend.timer(m, batch, config.latency_threads) for m in variants.values()],
+        warmup=config.latency_warmup, repeats=max(config.latency_repeats, 1))
+    folder = Path(tempfile.mkdtemp(prefix="factorize-weights-int8-"))
+    rows = []
+    for (name, model), acc, t in zip(variants.items(), accs.values(), times):
+        path = folder / f"{name}.onnx"
+        onnx_backend.save(model, path, external=False)
+        result = acc.result()
+        rows.append({"name": name, "size_bytes": path.stat().st_size, "metric": result.after,
+                     "delta": result.after - accs["original"].result().after,
+                     "latency_ms": t["median_ms"], "latency_spread_ms": [t["p10_ms"], t["p90_ms"]]})
+    entry = {"metric": metric, "runtime": "onnxruntime", "quantization": "dynamic, int8 weights (QInt8)",
+             "batch": config.latency_batch, "threads": config.latency_threads, "variants": rows,
+             "file": "model.int8.onnx"}
+    return folder / "factorized+int8.onnx", entry

@@ -243,6 +243,28 @@ def render_markdown(report: dict) -> str:
         "Weight error is the relative Frobenius error of the layer matrix; output error is the relative "
         "error of the layer's output on held-out inputs."
     )
+    lat = report.get("latency")
+    if lat:
+        lines += ["", "## CPU latency", "",
+                  f"{lat['runtime']}, batch {lat['batch']}, {lat['threads']} thread(s), {lat['warmup']} warm-up and "
+                  f"{lat['repeats']} timed runs each, interleaved; medians with the 10th-90th percentile spread.", "",
+                  "| model | median ms | spread ms |", "|---|---:|---:|",
+                  f"| original | {lat['before_ms']:.3f} | {lat['before_spread_ms'][0]:.3f}-{lat['before_spread_ms'][1]:.3f} |",
+                  f"| factorized | {lat['after_ms']:.3f} | {lat['after_spread_ms'][0]:.3f}-{lat['after_spread_ms'][1]:.3f} |",
+                  "", f"Measured speedup x{lat['speedup']:.2f}; the plan's FLOP ratio "
+                  f"{lat['flop_ratio'] if lat['flop_ratio'] is None else round(lat['flop_ratio'], 3)} predicts "
+                  f"x{lat['predicted_speedup'] or 1:.2f}."]
+    q = report.get("int8")
+    if q:
+        lines += ["", "## int8 on top", "", f"{q['quantization']}; {q['runtime']}, batch {q['batch']}, "
+                  f"{q['threads']} thread(s). Metric: {q['metric']} (delta against the original).", "",
+                  "| variant | size on disk | metric | delta | median ms |", "|---|---:|---:|---:|---:|"]
+        lines += [f"| {v['name']} | {_fmt_int(v['size_bytes'])} B | {_fmt_metric(q['metric'], v['metric'])} | "
+                  f"{v['delta']:+.2f} | {v['latency_ms']:.3f} |" for v in q["variants"]]
+    if report.get("export"):
+        e = report["export"]
+        lines += ["", f"Exported `{e['file']}`, checked with {e['checked_with']} on {e['samples']} samples: "
+                  f"max |difference| {e['max_abs_diff']:.3g} (tolerance {e['tolerance']:.3g})."]
     lines += ["", "## Layers", ""] + layer_table(report)
     if report["skipped"]:
         lines += ["", "## Skipped layers", "", "| layer | kind | reason |", "|---|---|---|"]

@@ -244,3 +244,47 @@ def test_multi_input_graph_with_named_arrays(tmp_path, capsys):
 def test_loader_refuses_a_missing_file():
     with pytest.raises(InputError, match="file does not exist"):
         ob.load("/nonexistent/model.onnx")
+
+
+def test_export_onnx_matches_torch_in_onnxruntime(tmp_path, capsys):
+    import torch
+
+    from factorize_weights import build_model, load_factorized
+
+    out = tmp_path / "run"
+    code = main(["compress", "--demo", "--budget", "params=0.3", "--export-onnx", "--out", str(out), "-q",
+                 "--latency-repeats", "2"])
+    assert code == 0, capsys.readouterr().err
+    report = json.loads((out / "report.json").read_text())
+    assert report["export"]["max_abs_diff"] <= report["export"]["tolerance"]
+    assert report["latency"]["runtime"] == "torch"
+    # independently: onnxruntime on the exported file against torch on the rebuilt model
+    x = np.load(demo.HELDOUT)["inputs"][:100]
+    small = load_factorized(build_model(demo.MODEL_SPEC, demo.WEIGHTS), out)
+    with torch.no_grad():
+        expected = small(torch.from_numpy(x)).numpy()
+    sess = ort.InferenceSession(str(out / "model.onnx"), providers=["CPUExecutionProvider"])
+    got = sess.run(None, {sess.get_inputs()[0].name: x})[0]
+    np.testing.assert_allclose(got, expected, rtol=1e-4, atol=1e-4 * np.abs(expected).max())
+
+
+def test_int8_compares_four_variants(tmp_path, capsys):
+    out = tmp_path / "run"
+    code = main(["compress", "--demo", "onnx", "--budget", "params=0.3", "--int8", "--out", str(out), "-q",
+                 "--latency-repeats", "3"])
+    assert code == 0, capsys.readouterr().err
+    q = json.loads((out / "report.json").read_text())["int8"]
+    v = {row["name"]: row for row in q["variants"]}
+    assert list(v) == ["original", "factorized", "int8", "factorized+int8"]
+    # int8 stores a byte per weight instead of four (float32): about a quarter of the size
+    assert v["factorized+int8"]["size_bytes"] < v["factorized"]["size_bytes"] < v["original"]["size_bytes"]
+    assert v["int8"]["size_bytes"] < 0.35 * v["original"]["size_bytes"]
+    assert v["original"]["delta"] == 0.0 and all(row["latency_ms"] > 0 for row in v.values())
+    onnx.checker.check_model(onnx.load(str(out / "model.int8.onnx")), full_check=True)
+    assert v["factorized+int8"]["metric"] >= v["original"]["metric"] - 2.0
+
+
+def test_int8_on_a_torch_model_needs_export(tmp_path, capsys):
+    code = main(["compress", "--demo", "--budget", "params=0.3", "--int8", "--out", str(tmp_path / "o")])
+    err = capsys.readouterr().err
+    assert code == 2 and "--int8 quantizes ONNX models" in err and not (tmp_path / "o").exists()

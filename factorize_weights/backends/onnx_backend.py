@@ -515,3 +515,26 @@ def timer(model: OnnxModel, inputs, threads: int):
     session = _session(model, threads)
     fed = feed(model, inputs)
     return lambda: session.run(None, fed)
+
+
+def quantize_int8(model: OnnxModel) -> OnnxModel:
+    """onnxruntime's dynamic int8 weight quantization (weights int8, activations quantized on the
+    fly); returns the quantized model loaded back into memory."""
+    import logging
+    import shutil
+    import tempfile
+
+    from onnxruntime.quantization import QuantType, quantize_dynamic
+
+    folder = Path(tempfile.mkdtemp(prefix="factorize-weights-int8-"))
+    try:
+        save(model, folder / "in.onnx", external=False)
+        level = logging.getLogger().level
+        logging.getLogger().setLevel(logging.ERROR)  # the quantizer logs advice at WARNING
+        try:
+            quantize_dynamic(str(folder / "in.onnx"), str(folder / "out.onnx"), weight_type=QuantType.QInt8)
+        finally:
+            logging.getLogger().setLevel(level)
+        return load(folder / "out.onnx")
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)
