@@ -94,7 +94,8 @@ def load(path: str | Path) -> OnnxModel:
         except Exception as exc:
             raise InputError(f"--model {path}: cannot read its external data ({type(exc).__name__}: {exc})") from exc
     try:
-        onnx.checker.check_model(proto)
+        # protobuf cannot serialize 2 GB or more: the checker then reads the file itself
+        onnx.checker.check_model(proto if proto.ByteSize() < TWO_GB else str(path))
     except Exception as exc:
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
         raise InputError(f"--model {path}: not a valid ONNX model ({first})") from exc
@@ -404,8 +405,14 @@ def _session(model: OnnxModel, threads: int | None = None, extra_outputs: tuple 
         if threads is not None:
             options.intra_op_num_threads = threads
             options.inter_op_num_threads = 1
-        model._sessions[key] = ort.InferenceSession(proto.SerializeToString(), options,
-                                                    providers=["CPUExecutionProvider"])
+        if proto.ByteSize() < TWO_GB:
+            source = proto.SerializeToString()
+        else:  # too large for one protobuf: hand onnxruntime a file with external data
+            import tempfile
+
+            source = str(Path(tempfile.mkdtemp(prefix="factorize-weights-ort-")) / "model.onnx")
+            save(OnnxModel(proto), source, external=True)
+        model._sessions[key] = ort.InferenceSession(source, options, providers=["CPUExecutionProvider"])
     return model._sessions[key]
 
 
