@@ -78,10 +78,20 @@ def build_parser() -> argparse.ArgumentParser:
     _selection(p)
     g = p.add_argument_group("plan")
     g.add_argument("--budget", required=True, metavar="KIND=VALUE", help="params=F|N, flops=F|N, energy=F or error=F")
-    g.add_argument("--method", choices=METHODS, default="svd", help="how factors are computed (default svd)")
+    g.add_argument("--method", choices=METHODS, default="auto",
+                   help="svd (weights only), whitened (calibrated on real inputs), columns (pivoted-QR columns); "
+                        "auto: whitened with --calibration, else svd")
     g.add_argument("--split", choices=SPLITS, default="balanced", help="how singular values are shared by the factors")
     g.add_argument("--rank-multiple", type=int, default=1, metavar="N", help="round ranks to multiples of N (e.g. 8)")
     g.add_argument("--min-rank", type=int, default=1, metavar="N", help="lowest rank of a factorized layer")
+    g = p.add_argument_group("calibration (data-aware factors; never the held-out set)")
+    g.add_argument("--calibration", metavar="DATA", help="calibration .npz (inputs[, labels]) or FILE.py:FUNCTION")
+    g.add_argument("--allow-overlap", action="store_true", help="allow the same data for --calibration and --heldout")
+    g.add_argument("--sequential", action="store_true",
+                   help="refit layers in forward order to the original outputs (reduced-rank regression)")
+    g.add_argument("--recover", type=int, default=0, metavar="STEPS",
+                   help="PyTorch: fine-tune only the factors for up to STEPS steps on the calibration inputs")
+    g.add_argument("--recover-lr", type=float, default=1e-3, metavar="LR", help="recovery learning rate (default 1e-3)")
     g = p.add_argument_group("evaluation and output")
     g.add_argument("--heldout", metavar="DATA", help="held-out .npz (inputs[, labels]) or FILE.py:FUNCTION")
     g.add_argument("--metric", choices=METRICS, help="default: top1 with class labels, mse with float targets, else cosine")
@@ -184,10 +194,19 @@ def cmd_compress(args) -> int:
                      batch_size=args.batch_size, error_samples=args.error_samples,
                      latency_batch=args.latency_batch, latency_threads=args.latency_threads,
                      latency_repeats=args.latency_repeats, latency_warmup=args.latency_warmup,
-                     export_onnx=args.export_onnx, int8=args.int8)
+                     export_onnx=args.export_onnx, int8=args.int8, sequential=args.sequential,
+                     recover=args.recover, recover_lr=args.recover_lr, allow_overlap=args.allow_overlap)
     model, sources = _load_model(args)
     heldout = _heldout(args)
-    result = compress(model, config, heldout=heldout, out=args.out, force=args.force, sources=sources)
+    calibration = None
+    if args.calibration:
+        from .data import load_heldout
+
+        calibration = load_heldout(args.calibration, flag="--calibration")
+    result = compress(model, config, heldout=heldout, out=args.out, force=args.force, sources=sources,
+                      calibration=calibration)
+    for warning in (result.report.get("calibration") or {}).get("warnings", []):
+        print(f"{PROG}: warning: {warning}", file=sys.stderr)
     if args.json:
         _print_json(result.report)
         return 0

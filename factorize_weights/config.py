@@ -10,7 +10,7 @@ from .factors import SPLITS
 from .metrics import METRICS
 from .spectra import SVD_METHODS
 
-METHODS = ("svd",)
+METHODS = ("auto", "svd", "whitened", "columns")
 
 
 @dataclass
@@ -21,7 +21,7 @@ class CompressConfig:
     """
 
     budget: str = "params=0.5"  # half the selected layers' parameters: a safe first try
-    method: str = "svd"  # truncated SVD of the weights (data-free)
+    method: str = "auto"  # whitened with --calibration data, else svd (data-free)
     svd: str = "auto"  # exact below 1024 on the smaller side, randomized above (speed)
     seed: int = 0  # randomized SVD test matrix; fixed so runs repeat
     oversampling: int = 10  # Halko et al.'s usual p; error within a few % of optimal
@@ -38,6 +38,10 @@ class CompressConfig:
     latency_threads: int = 1  # one core: the common budget on a shared gateway, and the least noisy
     latency_warmup: int = 5  # untimed runs first (allocations, caches)
     latency_repeats: int = 30  # timed runs per model; 0 turns latency measurement off
+    sequential: bool = False  # refit layers in forward order to the original outputs (needs calibration)
+    recover: int = 0  # fine-tuning steps of the factors after factorization (needs calibration); 0: off
+    recover_lr: float = 1e-3  # Adam's usual default
+    allow_overlap: bool = False  # refuse the same file as calibration and held-out set unless set
     export_onnx: bool = False  # also write the factorized PyTorch model as model.onnx (checked)
     int8: bool = False  # also compare dynamic int8 quantization on top (ONNX, onnxruntime)
     quiet: bool = False  # no progress bars
@@ -56,7 +60,9 @@ class CompressConfig:
                 raise InputError(f"--{name.replace('_', '-')} must be one of {', '.join(allowed)}; got {value!r}")
         if self.metric is not None and self.metric not in METRICS:
             raise InputError(f"--metric must be one of {', '.join(METRICS)}; got {self.metric!r}")
-        minimum = {"rank_multiple": 1, "min_rank": 1, "batch_size": 1, "oversampling": 0,
+        if not (isinstance(self.recover_lr, (int, float)) and 0 < self.recover_lr < 1):
+            raise InputError(f"--recover-lr must be in (0, 1); got {self.recover_lr!r}")
+        minimum = {"recover": 0, "rank_multiple": 1, "min_rank": 1, "batch_size": 1, "oversampling": 0,
                    "power_iterations": 0, "error_samples": 0, "seed": 0, "latency_batch": 1,
                    "latency_threads": 1, "latency_warmup": 0, "latency_repeats": 0}
         for name, low in minimum.items():
@@ -80,3 +86,9 @@ class CompressConfig:
         d["only"] = list(self.only)
         d["skip"] = list(self.skip)
         return d
+
+    def resolved_method(self, calibrated: bool) -> str:
+        """``auto`` becomes ``whitened`` with calibration data and ``svd`` without."""
+        if self.method == "auto":
+            return "whitened" if calibrated else "svd"
+        return self.method

@@ -22,7 +22,10 @@ from .budget import parse_budget
 from .config import CompressConfig
 from .data import HeldOut
 from .errors import InputError
+from .columns import column_factors, column_spectrum
 from .factors import svd_factors
+from .records import max_saving_rank
+from .whiten import whitened_factors
 from .metrics import MetricAccumulator, MetricResult, check_metric, default_metric
 from .records import LayerRecord
 from .spectra import Spectrum, choose_method, compute_spectrum
@@ -81,21 +84,25 @@ def compute_spectra(records: list[LayerRecord], config: CompressConfig | None = 
     return out
 
 
-def compute_factors(records: list[LayerRecord], plan: Plan, config: CompressConfig | None = None):
+def compute_factors(records: list[LayerRecord], plan: Plan, config: CompressConfig | None = None,
+                    calibration=None, method: str | None = None):
     """``{name: (A, X)}`` for every layer the plan gives a rank; A (m, k), X (k, n), float64."""
     config = config or CompressConfig()
+    method = method or config.resolved_method(calibration is not None)
     factors = {}
     chosen = [r for r in selected(records) if plan.ranks.get(r.name) is not None]
     for record in _bar(chosen, config, "factors"):
-        factors[record.name] = svd_factors(
-            backend_of(record).weight_matrix(record),
-            plan.ranks[record.name],
-            split=config.split,
-            svd=choose_method(record.matrix_shape, config.svd),
-            seed=config.seed,
-            oversampling=config.oversampling,
-            power_iterations=config.power_iterations,
-        )
+        w, rank = backend_of(record).weight_matrix(record), plan.ranks[record.name]
+        if method == "whitened":
+            factors[record.name] = whitened_factors(w, calibration.whitenings[record.name], rank, split=config.split)
+        elif method == "columns":
+            a, x, _ = column_factors(w, rank)
+            factors[record.name] = (a, x)
+        else:
+            factors[record.name] = svd_factors(
+                w, rank, split=config.split, svd=choose_method(record.matrix_shape, config.svd),
+                seed=config.seed, oversampling=config.oversampling, power_iterations=config.power_iterations,
+            )
     return factors
 
 
@@ -116,25 +123,31 @@ def factorize(model, records: list[LayerRecord], plan: Plan, config: CompressCon
     return backend_for(model).rewrite(model, records, compute_factors(records, plan, config))
 
 
-def check_heldout(model, heldout: HeldOut, metric: str | None) -> str:
-    """Run the first held-out batch through ``model``; return the metric to use."""
+def check_fits(model, data: HeldOut, flag: str = "--heldout") -> np.ndarray:
+    """Run the first batch of ``data`` through ``model``; refuse data that does not fit it."""
     backend = backend_for(model)
-    if isinstance(heldout.inputs, dict) and backend.__name__.endswith("torch_backend"):
-        raise InputError(f"--heldout {heldout.source}: missing array 'inputs' (arrays found: "
-                         f"{', '.join(sorted(heldout.inputs))})")
-    first, labels = next(heldout.batches(batch_size=min(len(heldout), 8)))
+    if isinstance(data.inputs, dict) and backend.__name__.endswith("torch_backend"):
+        raise InputError(f"{flag} {data.source}: missing array 'inputs' (arrays found: "
+                         f"{', '.join(sorted(data.inputs))})")
+    first, _ = next(data.batches(batch_size=min(len(data), 8)))
     try:
         outputs = backend.predict(model, first)
-    except InputError:
-        raise
+    except InputError as exc:
+        raise InputError(str(exc).replace("--heldout", flag, 1)) from exc
     except Exception as exc:
         message = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise InputError(
-            f"--heldout {heldout.source}: inputs of shape {heldout.sample_shape} per sample "
+            f"{flag} {data.source}: inputs of shape {data.sample_shape} per sample "
             f"do not fit the model ({type(exc).__name__}: {message[:300]})"
         ) from exc
     if not np.all(np.isfinite(outputs)):
-        raise InputError(f"--heldout {heldout.source}: the original model gives NaN or Inf outputs")
+        raise InputError(f"{flag} {data.source}: the original model gives NaN or Inf outputs")
+    return outputs
+
+
+def check_heldout(model, heldout: HeldOut, metric: str | None) -> str:
+    """Run the first held-out batch through ``model``; return the metric to use."""
+    outputs = check_fits(model, heldout, "--heldout")
     name = metric or default_metric(heldout.labels, outputs)
     check_metric(name, heldout.labels, outputs)
     return name
@@ -151,10 +164,19 @@ def evaluate(original, factorized, heldout: HeldOut, metric: str | None = None, 
     return acc.result()
 
 
-def plan_for(model, config: CompressConfig, heldout: HeldOut | None = None):
-    """discover -> spectra -> allocate; returns (records, spectra, plan). Validates everything
-    it can (budget, feasibility, held-out fit) before the first SVD."""
+def plan_for(model, config: CompressConfig, heldout: HeldOut | None = None, calibration: HeldOut | None = None):
+    """discover -> (calibrate) -> spectra -> allocate; returns (records, spectra, plan, calibration
+    statistics or None). Validates everything it can before the first SVD."""
+    from .calibrate import calibrate, whitened_spectra
+
     budget = parse_budget(config.budget)
+    method = config.resolved_method(calibration is not None)
+    if method == "whitened" and calibration is None:
+        raise InputError("--method whitened needs --calibration data (the inputs whose outputs it preserves)")
+    if (config.sequential or config.recover) and calibration is None:
+        raise InputError(f"{'--sequential' if config.sequential else '--recover'} needs --calibration data")
+    if config.sequential and method != "whitened":
+        raise InputError(f"--sequential refits whitened factors; it cannot be combined with --method {method}")
     backend = backend_for(model)
     records = backend.discover(model, only=config.only, skip=config.skip)
     chosen = selected(records)
@@ -166,10 +188,33 @@ def plan_for(model, config: CompressConfig, heldout: HeldOut | None = None):
     if heldout is not None:  # one sample tells each layer's output positions, hence its FLOPs
         backend.measure_positions(model, records, heldout.inputs)
     check_feasible(chosen, budget, rank_multiple=config.rank_multiple, min_rank=config.min_rank)
-    spectra = compute_spectra(records, config)
+    cal = None
+    if calibration is not None:
+        check_fits(model, calibration, "--calibration")
+        cal = calibrate(model, records, calibration, config)
+    if method == "whitened":
+        spectra = whitened_spectra(records, cal)
+    elif method == "columns":
+        spectra = {r.name: column_spectrum(r.name, backend.weight_matrix(r), max_saving_rank(*r.matrix_shape))
+                   for r in _bar(chosen, config, "pivoted QR")}
+    else:
+        spectra = compute_spectra(records, config)
     plan = allocate(chosen, [spectra[r.name] for r in chosen], budget,
                     rank_multiple=config.rank_multiple, min_rank=config.min_rank)
-    return records, spectra, plan
+    return records, spectra, plan, cal
+
+
+def _check_overlap(heldout: HeldOut | None, calibration: HeldOut | None, allow: bool) -> None:
+    if heldout is None or calibration is None or allow:
+        return
+    same = heldout.source == calibration.source or (heldout.sha256 is not None and heldout.sha256 == calibration.sha256)
+    if not same and isinstance(heldout.inputs, np.ndarray) and isinstance(calibration.inputs, np.ndarray):
+        same = heldout.inputs.shape == calibration.inputs.shape and np.array_equal(heldout.inputs, calibration.inputs)
+    if same:
+        raise InputError(
+            f"--calibration {calibration.source} is the same data as --heldout {heldout.source}: the accuracy "
+            "would be measured on what the factors were fitted to (give --allow-overlap to do it anyway)"
+        )
 
 
 def compress(
@@ -180,6 +225,7 @@ def compress(
     out: str | Path | None = None,
     force: bool = False,
     sources: dict | None = None,
+    calibration: HeldOut | None = None,
 ) -> CompressResult:
     """Plan, rewrite, evaluate, report and (with ``out``) save, in one call.
 
@@ -195,6 +241,9 @@ def compress(
         into, atomically. A non-empty folder is refused unless ``force``.
     sources : dict, optional
         Provenance recorded in the report (model spec, weights path and hash).
+    calibration : HeldOut, optional
+        Inputs for calibrated (whitened) factors, sequential refits and recovery; must not be
+        the held-out set unless ``config.allow_overlap``.
     """
     from . import store
 
@@ -213,14 +262,30 @@ def compress(
             raise InputError("--int8 needs --heldout (to compare the variants) and --out")
         if backend.__name__.endswith("torch_backend") and not config.export_onnx:
             raise InputError("--int8 quantizes ONNX models: give an ONNX model, or add --export-onnx")
+    if config.recover and not backend.__name__.endswith("torch_backend"):
+        raise InputError("--recover fine-tunes PyTorch factor pairs; an ONNX model has no trainable factors")
+    _check_overlap(heldout, calibration, config.allow_overlap)
     t0 = time.perf_counter()
     metric_name = check_heldout(model, heldout, config.metric) if heldout is not None else None
-    records, spectra, plan = plan_for(model, config, heldout)
+    records, spectra, plan, cal = plan_for(model, config, heldout, calibration)
     timings["plan"] = time.perf_counter() - t0
     t0 = time.perf_counter()
-    factors = compute_factors(records, plan, config)
-    measured = weight_errors(records, factors)
+    method = config.resolved_method(cal is not None)
+    fits = {}
+    if config.sequential:
+        from .calibrate import sequential_factors
+
+        factors, fits = sequential_factors(model, records, plan.ranks, cal, config)
+    else:
+        factors = compute_factors(records, plan, config, cal, method)
     factorized = backend.rewrite(model, records, factors)
+    recovery = None
+    if config.recover:
+        from .calibrate import recover
+
+        recovery = recover(model, factorized, records, cal, config, metric_name)
+        factors = backend.read_factors(factorized, list(factors))
+    measured = weight_errors(records, factors)
     if hasattr(backend, "check"):
         backend.check(factorized)  # onnx.checker, full check: a failure here is our bug
     timings["rewrite"] = time.perf_counter() - t0
@@ -243,6 +308,7 @@ def compress(
         layer_errors=layer_errors, weight_errors=measured, heldout=heldout, sources=sources or {},
         model_params=(backend.count_params(model), backend.count_params(factorized)),
         timings=timings, latency=latency, error_samples=min(config.error_samples, len(heldout)) if heldout is not None else 0,
+        method=method, calibration=cal, fits=fits, recovery=recovery,
     )
     extra = {}
     if config.export_onnx:

@@ -16,7 +16,7 @@ from .records import LayerRecord
 from .spectra import Spectrum
 
 
-def _layer_entry(record: LayerRecord, spectrum: Spectrum, rank: int | None, config: CompressConfig,
+def _layer_entry(record: LayerRecord, spectrum: Spectrum, rank: int | None, method: str,
                  measured_error: float | None) -> dict:
     kept = 1.0 if rank is None else float(spectrum.energy_fraction(rank))
     entry = {
@@ -33,7 +33,7 @@ def _layer_entry(record: LayerRecord, spectrum: Spectrum, rank: int | None, conf
         # measured from the factors actually written (equals the spectrum's tail for an exact SVD)
         "weight_error": 0.0 if rank is None else (
             measured_error if measured_error is not None else float(spectrum.relative_error(rank))),
-        "method": "dense" if rank is None else config.method,
+        "method": "dense" if rank is None else method,
         "svd": spectrum.method,
     }
     if record.positions is not None:  # multiply-adds per sample (weights only)
@@ -72,13 +72,26 @@ def build_report(
     timings: dict[str, float],
     error_samples: int,
     latency: dict | None = None,
+    method: str = "svd",
+    calibration=None,
+    fits: dict | None = None,
+    recovery: dict | None = None,
 ) -> dict:
     """The content of ``report.json``."""
     chosen = [r for r in records if r.skip_reason is None]
     layers = []
     for record in chosen:
-        entry = _layer_entry(record, spectra[record.name], plan.ranks[record.name], config,
+        entry = _layer_entry(record, spectra[record.name], plan.ranks[record.name], method,
                              weight_errors.get(record.name))
+        if calibration is not None:
+            wh = calibration.whitenings[record.name]
+            entry["calibration_rows"] = calibration.stats[record.name]["rows"]
+            entry["whitening"] = {"method": wh.method, "damping": wh.damping, "clamped": wh.clamped}
+            if method == "whitened" and entry["rank"] is not None:
+                # Eckart-Young on W S: the relative output error on the calibration inputs
+                entry["calibration_output_error"] = float(spectra[record.name].relative_error(entry["rank"]))
+            if fits and record.name in fits:
+                entry["sequential_fit"] = fits[record.name]
         if heldout is not None:
             entry["output_error"] = layer_errors.get(record.name, 0.0 if entry["rank"] is None else None)
         layers.append(entry)
@@ -102,7 +115,10 @@ def build_report(
         "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         "sources": sources,
         "budget": budget,
-        "method": config.method,
+        "method": method,
+        "sequential": bool(config.sequential),
+        "recovery": recovery,
+        "calibration": None if calibration is None else calibration.summary(),
         "factor_split": config.split,
         "svd": {"requested": config.svd, "seed": config.seed, "oversampling": config.oversampling,
                 "power_iterations": config.power_iterations},
@@ -237,8 +253,15 @@ def layer_table(report: dict) -> list[str]:
 def render_markdown(report: dict) -> str:
     lines = ["# Factorization report", "", summary_line(report) + ".", ""]
     b = report["budget"]
+    what = {"svd": "truncated SVD of the weights", "whitened": "whitened truncated SVD on calibration inputs",
+            "columns": "columns of W chosen by pivoted QR, least-squares second factor"}[report["method"]]
+    if report.get("sequential"):
+        what += ", refitted sequentially to the original outputs"
+    if report.get("recovery"):
+        rec = report["recovery"]
+        what += f", then {rec['steps_run']} recovery steps ({rec['loss']})"
     lines.append(
-        f"Method `{report['method']}` (truncated SVD, {report['factor_split']} split), ranks chosen globally "
+        f"Method `{report['method']}` ({what}; {report['factor_split']} split), ranks chosen globally "
         f"under `{b['given']}`; rank multiple {b['rank_multiple']}, minimum rank {b['min_rank']}. "
         "Weight error is the relative Frobenius error of the layer matrix; output error is the relative "
         "error of the layer's output on held-out inputs."
@@ -261,6 +284,12 @@ def render_markdown(report: dict) -> str:
                   "| variant | size on disk | metric | delta | median ms |", "|---|---:|---:|---:|---:|"]
         lines += [f"| {v['name']} | {_fmt_int(v['size_bytes'])} B | {_fmt_metric(q['metric'], v['metric'])} | "
                   f"{v['delta']:+.2f} | {v['latency_ms']:.3f} |" for v in q["variants"]]
+    cal = report.get("calibration")
+    if cal:
+        lines += ["", f"Calibration: {cal['samples']} samples from `{cal['source']}` (SHA-256 "
+                  f"{(cal['sha256'] or 'n/a')[:16]}...), Gram matrices {cal['gram_bytes'] / 2**20:.1f} MiB, "
+                  f"peak process memory {cal['peak_rss_bytes'] / 2**20:.0f} MiB."]
+        lines += [f"- warning: {w}" for w in cal["warnings"]]
     if report.get("export"):
         e = report["export"]
         lines += ["", f"Exported `{e['file']}`, checked with {e['checked_with']} on {e['samples']} samples: "

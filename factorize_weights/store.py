@@ -39,7 +39,7 @@ def check_out_dir(out: str | Path, force: bool) -> None:
         raise InputError(f"--out {out}: parent folder {parent} is not writable")
 
 
-def plan_dict(records: list[LayerRecord], plan: Plan, config: CompressConfig) -> dict:
+def plan_dict(records: list[LayerRecord], plan: Plan, config: CompressConfig, method: str) -> dict:
     """plan.json: enough to rebuild the factorized structure from the original model."""
     layers = []
     for r in records:
@@ -52,14 +52,14 @@ def plan_dict(records: list[LayerRecord], plan: Plan, config: CompressConfig) ->
             "shape": list(r.weight_shape),
             "matrix_shape": list(r.matrix_shape),
             "rank": "dense" if rank is None else rank,
-            "method": "dense" if rank is None else config.method,
+            "method": "dense" if rank is None else method,
         })
     return {
         "format": PLAN_FORMAT,
         "version": PLAN_VERSION,
         "tool_version": __version__,
         "budget": plan.budget.text,
-        "method": config.method,
+        "method": method,
         "factor_split": config.split,
         "layers": layers,
     }
@@ -92,7 +92,7 @@ def write_run(out, model, records, plan: Plan, report: dict, config: CompressCon
         write_model(model, tmp)
         for name, src in (extra or {}).items():
             shutil.move(str(src), tmp / name)
-        _dump(tmp / "plan.json", plan_dict(records, plan, config))
+        _dump(tmp / "plan.json", plan_dict(records, plan, config, report.get("method", "svd")))
         _dump(tmp / "report.json", report)
         (tmp / "report.md").write_text(render_markdown(report), encoding="utf-8")
         if out.exists():

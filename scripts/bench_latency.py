@@ -72,7 +72,7 @@ def main() -> None:
             held = fw.HeldOut(data, None, "bench")
             for runtime, original in (("onnxruntime", onnx_model), ("torch", model)):
                 backend = onnx_backend if runtime == "onnxruntime" else torch_backend
-                records, _, plan = plan_for(original, config, held)
+                records, _, plan, _ = plan_for(original, config, held)
                 factorized = fw.factorize(original, records, plan, config)
                 chosen = fw.selected(records)
                 flops_before = sum(r.weight_params * r.positions for r in chosen)

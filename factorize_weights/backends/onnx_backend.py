@@ -545,3 +545,114 @@ def quantize_int8(model: OnnxModel) -> OnnxModel:
         return load(folder / "out.onnx")
     finally:
         shutil.rmtree(folder, ignore_errors=True)
+
+
+# ---------------------------------------------------------------- calibration statistics
+
+UNFOLD_CHUNK_BYTES = 64 * 2**20
+
+
+def _conv_pads(record: LayerRecord, spatial_in: tuple[int, ...]) -> list[tuple[int, int]]:
+    """(begin, end) padding per spatial axis, resolving auto_pad as the ONNX spec defines it."""
+    o = record.options
+    kernel = record.weight_shape[2:]
+    nd = len(kernel)
+    strides = list(o.get("strides", [1] * nd))
+    dil = list(o.get("dilations", [1] * nd))
+    auto = o.get("auto_pad", b"NOTSET")
+    auto = auto.decode() if isinstance(auto, bytes) else auto
+    if auto in ("SAME_UPPER", "SAME_LOWER"):
+        pads = []
+        for size, k, s, d in zip(spatial_in, kernel, strides, dil):
+            out = -(-size // s)
+            total = max((out - 1) * s + (k - 1) * d + 1 - size, 0)
+            small = total // 2
+            pads.append((small, total - small) if auto == "SAME_UPPER" else (total - small, small))
+        return pads
+    if auto == "VALID":
+        return [(0, 0)] * nd
+    p = list(o.get("pads", [0] * (2 * nd)))
+    return list(zip(p[:nd], p[nd:]))
+
+
+def _conv_rows(record: LayerRecord, x: np.ndarray) -> Iterator[np.ndarray]:
+    """Unfolded patches (rows, C*prod(kernel)), ordered like ``weight.reshape(M, -1)``, chunked."""
+    kernel = record.weight_shape[2:]
+    nd = len(kernel)
+    o = record.options
+    strides = list(o.get("strides", [1] * nd))
+    dil = list(o.get("dilations", [1] * nd))
+    pads = _conv_pads(record, x.shape[2:])
+    n = record.matrix_shape[1]
+    per_sample = max(n * 8 * int(np.prod(x.shape[2:])), 1)
+    step = max(1, UNFOLD_CHUNK_BYTES // per_sample)
+    for start in range(0, x.shape[0], step):
+        chunk = np.pad(x[start : start + step].astype(np.float64), [(0, 0), (0, 0)] + pads)
+        span = [(k - 1) * d + 1 for k, d in zip(kernel, dil)]
+        win = np.lib.stride_tricks.sliding_window_view(chunk, span, axis=tuple(range(2, 2 + nd)))
+        # win: (N, C, out..., span...) -> take dilated taps, then stride the output positions
+        taps = win[(...,) + tuple(slice(None, None, d) for d in dil)]
+        taps = taps[(slice(None), slice(None)) + tuple(slice(None, None, s) for s in strides)]
+        # (N, C, out..., k...) -> (N, out..., C, k...) -> (rows, C*prod(k))
+        order = [0] + list(range(2, 2 + nd)) + [1] + list(range(2 + nd, 2 + 2 * nd))
+        yield np.ascontiguousarray(taps.transpose(order)).reshape(-1, n)
+
+
+def layer_rows(record: LayerRecord, x: np.ndarray) -> Iterator[np.ndarray]:
+    """The node's activation input as rows of the matrix view's input space (float64)."""
+    o = record.options
+    x = np.asarray(x)
+    if o["op"] == "Conv":
+        yield from _conv_rows(record, x)
+    elif o["op"] == "Gemm":
+        yield (x.T if o["transA"] else x).astype(np.float64)
+    elif o["side"] == "left":  # W @ X: X (..., in, cols) holds one sample per column
+        yield np.swapaxes(x, -1, -2).reshape(-1, x.shape[-2]).astype(np.float64)
+    else:
+        yield x.reshape(-1, x.shape[-1]).astype(np.float64)
+
+
+def _activations(model: OnnxModel, names: tuple, batch) -> dict[str, np.ndarray]:
+    session = _session(model, None, names)
+    fed = feed(model, batch)
+    values = dict(zip([o.name for o in session.get_outputs()], session.run(None, fed)))
+    values.update(fed)
+    return values
+
+
+def gram_statistics(model: OnnxModel, records: list[LayerRecord], batches) -> dict[str, dict]:
+    """``G = sum x x^T`` per selected node over its activation input (exposed as extra outputs)."""
+    inits = {t.name for t in model.graph.initializer}
+    names = tuple(dict.fromkeys(r.options["activation"] for r in records if r.options["activation"] not in inits))
+    stats = {r.name: {"gram": None, "rows": 0} for r in records}
+    samples = 0
+    for batch in batches:
+        values = _activations(model, names, batch)
+        samples += len(next(iter(batch.values()))) if isinstance(batch, dict) else len(batch)
+        for r in records:
+            st = stats[r.name]
+            for rows in layer_rows(r, values[r.options["activation"]]):
+                g = rows.T @ rows
+                st["gram"] = g if st["gram"] is None else st["gram"] + g
+                st["rows"] += rows.shape[0]
+    return {n: {**st, "samples": samples} for n, st in stats.items()}
+
+
+def call_order(model: OnnxModel, records: list[LayerRecord], sample) -> list[str]:
+    """ONNX nodes are stored in topological order: that is the forward order."""
+    return [r.name for r in records]
+
+
+def cross_statistics(original: OnnxModel, current: OnnxModel, record: LayerRecord, batches) -> dict:
+    """C = sum x x'^T and G' = sum x' x'^T for one node: x from ``original``, x' from ``current``
+    (the same graph with the upstream nodes already split; activation names are unchanged)."""
+    name = (record.options["activation"],)
+    cross = gram = None
+    for batch in batches:
+        xs = list(layer_rows(record, _activations(original, name, batch)[name[0]]))
+        ys = list(layer_rows(record, _activations(current, name, batch)[name[0]]))
+        for x, y in zip(xs, ys):
+            c, g = x.T @ y, y.T @ y
+            cross = c if cross is None else cross + c
+            gram = g if gram is None else gram + g
+    return {"cross": cross, "gram": gram}

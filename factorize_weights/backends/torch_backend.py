@@ -457,3 +457,125 @@ def export_onnx(model: nn.Module, sample: np.ndarray, path, *, opset: int = 17) 
         torch.onnx.export(model, (tensor,), str(path), dynamo=False, input_names=["input"],
                           output_names=["output"], opset_version=opset,
                           dynamic_axes={"input": {0: "batch"}, "output": {0: "batch"}})
+
+
+# ---------------------------------------------------------------- calibration statistics
+
+#: Bytes of unfolded convolution patches materialized at once (the unfold is chunked over samples).
+UNFOLD_CHUNK_BYTES = 64 * 2**20
+
+
+def layer_rows(record: LayerRecord, module: nn.Module, x: torch.Tensor) -> Iterator[torch.Tensor]:
+    """The layer's input as rows of its matrix view's input space, float64, in chunks:
+    (rows, in) for a linear layer, (rows, in_channels*kh*kw) unfolded patches for a convolution.
+    Patch columns are ordered (channel, kh, kw) like ``weight.reshape(out, -1)``."""
+    if record.kind == "linear":
+        yield x.detach().reshape(-1, x.shape[-1]).double()
+        return
+    conv2d = record.kind == "conv2d"
+    x = x.detach()
+    if not conv2d:  # (N, C, L) -> (N, C, 1, L)
+        x = x.unsqueeze(2)
+    kernel = module.kernel_size if conv2d else (1, module.kernel_size[0])
+    dilation = module.dilation if conv2d else (1, module.dilation[0])
+    stride = module.stride if conv2d else (1, module.stride[0])
+    pads = module._reversed_padding_repeated_twice  # (left, right, top, bottom), 'same' resolved
+    if not conv2d:
+        pads = list(pads) + [0, 0]
+    mode = "constant" if module.padding_mode == "zeros" else module.padding_mode
+    n = record.matrix_shape[1]
+    per_sample = max(n * 8 * max(x[:1].numel() // max(x.shape[1], 1), 1), 1)
+    step = max(1, UNFOLD_CHUNK_BYTES // per_sample)
+    for start in range(0, x.shape[0], step):
+        chunk = torch.nn.functional.pad(x[start : start + step].double(), list(pads), mode=mode)
+        cols = torch.nn.functional.unfold(chunk, kernel, dilation=dilation, stride=stride)  # (N, n, L)
+        yield cols.transpose(1, 2).reshape(-1, n)
+
+
+def gram_statistics(model: nn.Module, records: list[LayerRecord], batches) -> dict[str, dict]:
+    """For every selected layer, ``G = sum x x^T`` over its calibration inputs (float64, n x n),
+    streamed over batches and chunks; also the row count and the number of samples."""
+    stats = {r.name: {"gram": None, "rows": 0} for r in records}
+    hooks = []
+    for record in records:
+        def hook(module, args, output, record=record):
+            st = stats[record.name]
+            for rows in layer_rows(record, module, args[0]):
+                g = rows.T @ rows
+                st["gram"] = g if st["gram"] is None else st["gram"] + g
+                st["rows"] += rows.shape[0]
+
+        hooks.append(record.handle.register_forward_hook(hook))
+    samples = 0
+    try:
+        with _inference(model):
+            for batch in batches:
+                model(_to_tensor(batch, model))
+                samples += len(batch)
+    finally:
+        for h in hooks:
+            h.remove()
+    return {name: {"gram": st["gram"].numpy() if st["gram"] is not None else None,
+                   "rows": st["rows"], "samples": samples} for name, st in stats.items()}
+
+
+def call_order(model: nn.Module, records: list[LayerRecord], sample: np.ndarray) -> list[str]:
+    """Names of the records in the order the forward pass first calls them."""
+    order: list[str] = []
+    hooks = [r.handle.register_forward_hook(lambda m, a, o, name=r.name: order.append(name) if name not in order else None)
+             for r in records]
+    try:
+        with _inference(model):
+            model(_to_tensor(sample[:1], model))
+    finally:
+        for h in hooks:
+            h.remove()
+    return order + [r.name for r in records if r.name not in order]
+
+
+def cross_statistics(original: nn.Module, current: nn.Module, record: LayerRecord, batches) -> dict:
+    """For one layer: C = sum x x'^T and G' = sum x' x'^T, where x are its inputs in ``original``
+    and x' the inputs the same samples produce in ``current`` (upstream layers already compressed)."""
+    got: dict[str, list] = {"orig": [], "cur": []}
+    mods = {"orig": original.get_submodule(record.name), "cur": current.get_submodule(record.name)}
+    hooks = [mods[k].register_forward_hook(lambda m, a, o, k=k: got[k].append(list(layer_rows(record, m, a[0]))))
+             for k in mods]
+    cross = gram = None
+    try:
+        with _inference(original), _inference(current):
+            for batch in batches:
+                got["orig"].clear()
+                got["cur"].clear()
+                original(_to_tensor(batch, original))
+                current(_to_tensor(batch, current))
+                for xs, ys in zip(got["orig"], got["cur"]):  # one entry per call of the layer
+                    for x, y in zip(xs, ys):
+                        c, g = x.T @ y, y.T @ y
+                        cross = c if cross is None else cross + c
+                        gram = g if gram is None else gram + g
+    finally:
+        for h in hooks:
+            h.remove()
+    return {"cross": cross.numpy(), "gram": gram.numpy()}
+
+
+def replace_layer(model: nn.Module, record: LayerRecord, a: np.ndarray, x: np.ndarray) -> None:
+    """In place: swap one layer of ``model`` (a working copy) for its factor pair."""
+    old = model.get_submodule(record.name)
+    _set_submodule(model, record.name, _factor_pair(old, record, a, x))
+
+
+def factor_parameters(model: nn.Module) -> list[nn.Parameter]:
+    """The parameters of every FactorPair in ``model`` (what recovery fine-tunes)."""
+    return [p for m in model.modules() if isinstance(m, FactorPair) for p in m.parameters()]
+
+
+def read_factors(model: nn.Module, names: list[str]) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+    """(A, X) back from the FactorPairs of ``model`` as float64 matrices: A (m, k), X (k, n)."""
+    out = {}
+    for name in names:
+        pair = model.get_submodule(name)
+        a = pair.expand.weight.detach().double().cpu().reshape(pair.expand.weight.shape[0], -1).numpy()
+        x = pair.reduce.weight.detach().double().cpu().reshape(pair.rank, -1).numpy()
+        out[name] = (a, x)
+    return out

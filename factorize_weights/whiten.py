@@ -1,0 +1,111 @@
+"""Calibrated (whitened) truncation: factors that are optimal for the layer's *outputs* on real
+inputs, not for its weights.
+
+With calibration inputs as the columns of X (n x N) and their second moment G = X X^T = S S^T,
+``||(W - W') X||_F = ||(W - W') S||_F`` for any W'. So the rank-k W' minimising the output error
+is the truncated SVD of W S mapped back: W S = U Sigma V^T, W' = U_k Sigma_k V_k^T S^{-1}, and the
+error is exactly sqrt(sum_{i>k} sigma_i(W S)^2) (Eckart-Young applied to W S; the truncation-aware
+data whitening of Wang et al., "SVD-LLM", arXiv 2403.07378, 2024).
+
+Sequential calibration fits a layer to the *original* outputs from the inputs X' that the already
+compressed layers upstream now produce: min over rank k of ||W X - W' X'||_F is reduced-rank
+regression, M = W X X'^T (X' X'^T)^{-1} and W' = [M S']_k S'^{-1} with S' S'^T = X' X'^T.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .spectra import Spectrum, _flip_signs
+
+#: Relative eigenvalue floor of the damped fallback: eigenvalues below DAMPING x the largest are
+#: raised to it. Small enough not to change a well-conditioned problem, large enough that S^{-1}
+#: stays finite in float64 (machine epsilon 2.2e-16; its square root ~1.5e-8).
+DAMPING = 1e-8
+
+#: Cholesky is trusted while min(diag L)^2 / max(diag L)^2 stays above this.
+CHOLESKY_MIN_RATIO = 1e-12
+
+
+@dataclass
+class Whitening:
+    """A square root S of a Gram matrix G (S S^T = G, up to the recorded damping).
+
+    Attributes
+    ----------
+    s : ndarray (n, n)
+    s_inv : ndarray (n, n)
+    method : str
+        ``"cholesky"`` or ``"eigh-damped"``.
+    damping : float
+        The eigenvalue floor that was applied (0.0 for Cholesky).
+    clamped : int
+        How many eigenvalues were raised to the floor (a dead input feature shows here).
+    """
+
+    s: np.ndarray
+    s_inv: np.ndarray
+    method: str
+    damping: float = 0.0
+    clamped: int = 0
+
+
+def whitening(gram: np.ndarray, *, damping: float = DAMPING) -> Whitening:
+    """S with S S^T = G: Cholesky when G is well conditioned, else a damped eigendecomposition."""
+    gram = np.asarray(gram, dtype=np.float64)
+    n = gram.shape[0]
+    if gram.shape != (n, n) or not np.all(np.isfinite(gram)):
+        raise ValueError(f"Gram matrix must be a finite square matrix; got shape {gram.shape}")
+    gram = (gram + gram.T) / 2.0
+    try:
+        low = np.linalg.cholesky(gram)
+        d = np.abs(np.diag(low))
+        if d.min() ** 2 > CHOLESKY_MIN_RATIO * d.max() ** 2:
+            return Whitening(low, np.linalg.inv(low), "cholesky")
+    except np.linalg.LinAlgError:
+        pass
+    vals, vecs = np.linalg.eigh(gram)
+    top = max(float(vals.max()), 0.0)
+    floor = damping * top if top > 0 else 1.0
+    clamped = int(np.sum(vals < floor))
+    vals = np.maximum(vals, floor)
+    root = np.sqrt(vals)
+    return Whitening(vecs * root, (vecs / root).T, "eigh-damped", floor, clamped)
+
+
+def whitened_svd(matrix: np.ndarray, wh: Whitening):
+    """U, sigma, Vt of W S (float64, signs fixed)."""
+    u, s, vt = np.linalg.svd(np.asarray(matrix, dtype=np.float64) @ wh.s, full_matrices=False)
+    u, vt = _flip_signs(u, vt)
+    return u, s, vt
+
+
+def whitened_spectrum(name: str, matrix: np.ndarray, wh: Whitening) -> Spectrum:
+    """Singular values of W S; the total is ``||W S||_F^2``, the layer's output energy on the
+    calibration set, so the allocator's normalized errors are relative output errors."""
+    ws = np.asarray(matrix, dtype=np.float64) @ wh.s
+    s = np.linalg.svd(ws, compute_uv=False)
+    return Spectrum(name, tuple(matrix.shape), s, float(np.sum(ws * ws)), "exact")
+
+
+def whitened_factors(matrix: np.ndarray, wh: Whitening, rank: int, *, split: str = "balanced"):
+    """A (m, k), X (k, n) with A @ X = [W S]_k S^{-1}: the rank-k map with the least output error
+    on the calibration inputs."""
+    u, s, vt = whitened_svd(matrix, wh)
+    m, n = matrix.shape
+    if not 1 <= rank <= min(m, n):
+        raise ValueError(f"rank {rank} is outside [1, min(out, in) = {min(m, n)}]")
+    u, s, vt = u[:, :rank], s[:rank], vt[:rank]
+    back = vt @ wh.s_inv  # (k, n)
+    if split == "balanced":
+        root = np.sqrt(s)
+        return u * root, root[:, None] * back
+    return u * s, back
+
+
+def regression_target(matrix: np.ndarray, cross: np.ndarray, gram_new: Whitening) -> np.ndarray:
+    """M = W C G'^{-1} with C = X X'^T and G'^{-1} = S'^{-T} S'^{-1} (reduced-rank regression)."""
+    g_inv = gram_new.s_inv.T @ gram_new.s_inv
+    return np.asarray(matrix, dtype=np.float64) @ cross @ g_inv
