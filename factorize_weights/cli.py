@@ -87,11 +87,12 @@ def build_parser() -> argparse.ArgumentParser:
     g = p.add_argument_group("calibration (data-aware factors; never the held-out set)")
     g.add_argument("--calibration", metavar="DATA", help="calibration .npz (inputs[, labels]) or FILE.py:FUNCTION")
     g.add_argument("--allow-overlap", action="store_true", help="allow the same data for --calibration and --heldout")
-    g.add_argument("--sequential", action="store_true",
-                   help="refit layers in forward order to the original outputs (reduced-rank regression)")
+    g.add_argument("--sequential", action=argparse.BooleanOptionalAction, default=None,
+                   help="refit layers in forward order to the original outputs (reduced-rank regression); "
+                        "on by default with whitened factors")
     g.add_argument("--recover", type=int, default=0, metavar="STEPS",
                    help="PyTorch: fine-tune only the factors for up to STEPS steps on the calibration inputs")
-    g.add_argument("--recover-lr", type=float, default=1e-3, metavar="LR", help="recovery learning rate (default 1e-3)")
+    g.add_argument("--recover-lr", type=float, default=1e-4, metavar="LR", help="recovery learning rate (default 1e-4)")
     g = p.add_argument_group("evaluation and output")
     g.add_argument("--heldout", metavar="DATA", help="held-out .npz (inputs[, labels]) or FILE.py:FUNCTION")
     g.add_argument("--metric", choices=METRICS, help="default: top1 with class labels, mse with float targets, else cosine")
@@ -253,6 +254,11 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print(f"{PROG}: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:  # stdout closed early (| head): not an error of ours
+        import os
+
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 0
     except Exception as exc:  # a bug in this tool
         if args.debug:
             traceback.print_exc()

@@ -38,9 +38,11 @@ class CompressConfig:
     latency_threads: int = 1  # one core: the common budget on a shared gateway, and the least noisy
     latency_warmup: int = 5  # untimed runs first (allocations, caches)
     latency_repeats: int = 30  # timed runs per model; 0 turns latency measurement off
-    sequential: bool = False  # refit layers in forward order to the original outputs (needs calibration)
+    # refit layers in forward order to the original outputs; None: on for whitened (it won or tied
+    # every row of reports/accuracy.md), off otherwise
+    sequential: bool | None = None
     recover: int = 0  # fine-tuning steps of the factors after factorization (needs calibration); 0: off
-    recover_lr: float = 1e-3  # Adam's usual default
+    recover_lr: float = 1e-4  # 1e-3 overshot on whitened factors (validation loss rose at once; measured)
     allow_overlap: bool = False  # refuse the same file as calibration and held-out set unless set
     export_onnx: bool = False  # also write the factorized PyTorch model as model.onnx (checked)
     int8: bool = False  # also compare dynamic int8 quantization on top (ONNX, onnxruntime)
@@ -86,6 +88,9 @@ class CompressConfig:
         d["only"] = list(self.only)
         d["skip"] = list(self.skip)
         return d
+
+    def resolved_sequential(self, method: str) -> bool:
+        return (method == "whitened") if self.sequential is None else bool(self.sequential)
 
     def resolved_method(self, calibrated: bool) -> str:
         """``auto`` becomes ``whitened`` with calibration data and ``svd`` without."""

@@ -173,7 +173,7 @@ def plan_for(model, config: CompressConfig, heldout: HeldOut | None = None, cali
     method = config.resolved_method(calibration is not None)
     if method == "whitened" and calibration is None:
         raise InputError("--method whitened needs --calibration data (the inputs whose outputs it preserves)")
-    if (config.sequential or config.recover) and calibration is None:
+    if (config.sequential or config.recover) and calibration is None:  # asked for explicitly
         raise InputError(f"{'--sequential' if config.sequential else '--recover'} needs --calibration data")
     if config.sequential and method != "whitened":
         raise InputError(f"--sequential refits whitened factors; it cannot be combined with --method {method}")
@@ -272,7 +272,8 @@ def compress(
     t0 = time.perf_counter()
     method = config.resolved_method(cal is not None)
     fits = {}
-    if config.sequential:
+    sequential = config.resolved_sequential(method)
+    if sequential:
         from .calibrate import sequential_factors
 
         factors, fits = sequential_factors(model, records, plan.ranks, cal, config)
@@ -308,7 +309,7 @@ def compress(
         layer_errors=layer_errors, weight_errors=measured, heldout=heldout, sources=sources or {},
         model_params=(backend.count_params(model), backend.count_params(factorized)),
         timings=timings, latency=latency, error_samples=min(config.error_samples, len(heldout)) if heldout is not None else 0,
-        method=method, calibration=cal, fits=fits, recovery=recovery,
+        method=method, calibration=cal, fits=fits, recovery=recovery, sequential=sequential,
     )
     extra = {}
     if config.export_onnx:

@@ -76,6 +76,7 @@ def build_report(
     calibration=None,
     fits: dict | None = None,
     recovery: dict | None = None,
+    sequential: bool = False,
 ) -> dict:
     """The content of ``report.json``."""
     chosen = [r for r in records if r.skip_reason is None]
@@ -116,7 +117,7 @@ def build_report(
         "sources": sources,
         "budget": budget,
         "method": method,
-        "sequential": bool(config.sequential),
+        "sequential": bool(sequential),
         "recovery": recovery,
         "calibration": None if calibration is None else calibration.summary(),
         "factor_split": config.split,

@@ -28,13 +28,16 @@ from factorize_weights.records import max_saving_rank  # noqa: E402
 BUDGETS = (0.8, 0.6, 0.5, 0.3, 0.2, 0.1, 0.05)
 
 
-def uniform_plan(records, budget: fw.Budget) -> Plan:
-    """The largest common rank fraction whose plan fits the budget."""
+def uniform_plan(records, budget: fw.Budget, *, keep_ends: bool = False) -> Plan:
+    """The largest common rank fraction whose plan fits the budget; with ``keep_ends`` the first
+    and last layers stay dense (a common hand-written choice)."""
     before = sum(r.params for r in records)
     limit = np.floor(budget.value * before)
+    dense = {records[0].name, records[-1].name} if keep_ends else set()
 
     def ranks_for(f):
-        return {r.name: int(np.clip(np.floor(f * min(r.matrix_shape)), 1, max_saving_rank(*r.matrix_shape)))
+        return {r.name: None if r.name in dense else
+                int(np.clip(np.floor(f * min(r.matrix_shape)), 1, max_saving_rank(*r.matrix_shape)))
                 for r in records}
 
     lo, hi = 0.0, 1.0
