@@ -6,8 +6,9 @@ reports/accuracy.md.
 Models: the embedded demo CNN and the patch encoder of examples/ (a small transformer trained with
 light weight decay, so less redundant). Data: the demo's UCI digits splits: calibration (180
 images) for everything data-aware, held-out (540 images) only for measuring.
-Rows per budget: uniform rank (what a user writes by hand: the first and last layers left dense,
-the same fraction of min(out, in) as rank in every other layer, plain SVD), allocated plain SVD, whitened, whitened + sequential, columns (pivoted QR),
+Rows per budget: uniform rank (what a user writes by hand: the same fraction of min(out, in) as
+rank in every layer, plain SVD; and the same with the first and last layers left dense, a common
+hand-written refinement), allocated plain SVD, whitened, whitened + sequential, columns (pivoted QR),
 and whitened + recovery.
 """
 
@@ -73,10 +74,11 @@ def main() -> None:
         chosen = fw.selected(records)
         for value in BUDGETS:
             budget = f"params={value}"
-            plan = uniform_plan(chosen, fw.parse_budget(budget), keep_ends=True)
-            small = fw.factorize(model, records, plan, fw.CompressConfig(quiet=True))
-            m = fw.evaluate(model, small, heldout, "top1", fw.CompressConfig(quiet=True))
-            rows.append((budget, "uniform rank", plan.cost_after / plan.cost_before, m) + fidelity(model, small, heldout))
+            for name, ends in (("uniform rank, every layer", False), ("uniform rank, first/last dense", True)):
+                plan = uniform_plan(chosen, fw.parse_budget(budget), keep_ends=ends)
+                small = fw.factorize(model, records, plan, fw.CompressConfig(quiet=True))
+                m = fw.evaluate(model, small, heldout, "top1", fw.CompressConfig(quiet=True))
+                rows.append((budget, name, plan.cost_after / plan.cost_before, m) + fidelity(model, small, heldout))
             for name, options, needs_cal in variants(args.recover):
                 config = fw.CompressConfig(budget=budget, quiet=True, latency_repeats=0, error_samples=0,
                                            metric="top1", **options)
@@ -91,7 +93,7 @@ def main() -> None:
         "",
         "Written by `scripts/bench_accuracy.py`. Held-out: 540 UCI digits images never used for",
         "training or calibration; calibration: 180 other images (the demo's calibration split). Every",
-        "row except *uniform rank* allocates ranks globally under the same budget; *params kept* is the",
+        "row except the *uniform rank* ones allocates ranks globally under the same budget; *params kept* is the",
         "share of the selected layers' parameters after factorization. *Agreement* is the share of",
         "held-out images on which the compressed model's top class equals the original's; *logit error*",
         "is ||f(x) - g(x)||_F / ||f(x)||_F of the logits over the held-out set (lower is better), which",
