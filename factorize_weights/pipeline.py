@@ -6,6 +6,7 @@ reporting meet. The CLI and the Python API both call these functions.
 
 from __future__ import annotations
 
+import dataclasses
 import sys
 import time
 from dataclasses import dataclass, field
@@ -164,30 +165,64 @@ def evaluate(original, factorized, heldout: HeldOut, metric: str | None = None, 
     return acc.result()
 
 
-def plan_for(model, config: CompressConfig, heldout: HeldOut | None = None, calibration: HeldOut | None = None):
-    """discover -> (calibrate) -> spectra -> allocate; returns (records, spectra, plan, calibration
-    statistics or None). Validates everything it can before the first SVD."""
+@dataclass
+class Prepared:
+    """Everything about a run that does not depend on the budget: layers, spectra, calibration
+    statistics and the original model's held-out outputs. Sweeps and budget searches reuse it."""
+
+    model: object
+    config: CompressConfig
+    records: list[LayerRecord]
+    spectra: dict[str, Spectrum]
+    method: str
+    sequential: bool
+    heldout: HeldOut | None = None
+    calibration: object = None  # calibrate.Calibration
+    metric_name: str | None = None
+    reference: list = field(default_factory=list)  # [(original outputs, labels)] per held-out batch
+    timings: dict = field(default_factory=dict)
+
+    @property
+    def backend(self):
+        return backend_for(self.model)
+
+    @property
+    def selected(self) -> list[LayerRecord]:
+        return selected(self.records)
+
+
+def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calibration: HeldOut | None = None,
+            *, budgets: list[str] | None = None) -> Prepared:
+    """Validate, discover, (calibrate) and compute spectra once. Every budget in ``budgets``
+    (default: ``config.budget``) is parsed and checked for feasibility before the first SVD."""
     from .calibrate import calibrate, whitened_spectra
 
-    budget = parse_budget(config.budget)
+    t0 = time.perf_counter()
+    backend = backend_for(model)
+    is_torch = backend.__name__.endswith("torch_backend")
     method = config.resolved_method(calibration is not None)
+    parsed = [parse_budget(b) for b in (budgets or [config.budget])]
     if method == "whitened" and calibration is None:
         raise InputError("--method whitened needs --calibration data (the inputs whose outputs it preserves)")
     if (config.sequential or config.recover) and calibration is None:  # asked for explicitly
         raise InputError(f"{'--sequential' if config.sequential else '--recover'} needs --calibration data")
     if config.sequential and method != "whitened":
         raise InputError(f"--sequential refits whitened factors; it cannot be combined with --method {method}")
-    backend = backend_for(model)
+    if config.recover and not is_torch:
+        raise InputError("--recover fine-tunes PyTorch factor pairs; an ONNX model has no trainable factors")
+    _check_overlap(heldout, calibration, config.allow_overlap)
+    metric_name = check_heldout(model, heldout, config.metric) if heldout is not None else None
     records = backend.discover(model, only=config.only, skip=config.skip)
     chosen = selected(records)
     if not chosen:
         found = f"{len(records)} layer(s) found, all skipped" if records else "no linear or convolution layers found"
         raise InputError(f"nothing to factorize: {found}")
-    if budget.kind == "flops" and heldout is None:
-        raise InputError(f"--budget {budget.text}: a flops budget needs --heldout (to measure layer output sizes)")
+    if any(b.kind == "flops" for b in parsed) and heldout is None:
+        raise InputError("a flops budget needs --heldout (to measure layer output sizes)")
     if heldout is not None:  # one sample tells each layer's output positions, hence its FLOPs
         backend.measure_positions(model, records, heldout.inputs)
-    check_feasible(chosen, budget, rank_multiple=config.rank_multiple, min_rank=config.min_rank)
+    for budget in parsed:
+        check_feasible(chosen, budget, rank_multiple=config.rank_multiple, min_rank=config.min_rank)
     cal = None
     if calibration is not None:
         check_fits(model, calibration, "--calibration")
@@ -199,9 +234,26 @@ def plan_for(model, config: CompressConfig, heldout: HeldOut | None = None, cali
                    for r in _bar(chosen, config, "pivoted QR")}
     else:
         spectra = compute_spectra(records, config)
-    plan = allocate(chosen, [spectra[r.name] for r in chosen], budget,
-                    rank_multiple=config.rank_multiple, min_rank=config.min_rank)
-    return records, spectra, plan, cal
+    reference = []
+    if heldout is not None:
+        for inputs, labels in heldout.batches(config.batch_size):
+            reference.append((backend.predict(model, inputs), labels))
+    prep = Prepared(model, config, records, spectra, method, config.resolved_sequential(method), heldout, cal,
+                    metric_name, reference)
+    prep.timings["prepare"] = time.perf_counter() - t0
+    return prep
+
+
+def plan_budget(prep: Prepared, budget: str) -> Plan:
+    chosen = prep.selected
+    return allocate(chosen, [prep.spectra[r.name] for r in chosen], parse_budget(budget),
+                    rank_multiple=prep.config.rank_multiple, min_rank=prep.config.min_rank)
+
+
+def plan_for(model, config: CompressConfig, heldout: HeldOut | None = None, calibration: HeldOut | None = None):
+    """discover -> (calibrate) -> spectra -> allocate: (records, spectra, plan, calibration)."""
+    prep = prepare(model, config, heldout, calibration)
+    return prep.records, prep.spectra, plan_budget(prep, config.budget), prep.calibration
 
 
 def _check_overlap(heldout: HeldOut | None, calibration: HeldOut | None, allow: bool) -> None:
@@ -215,6 +267,96 @@ def _check_overlap(heldout: HeldOut | None, calibration: HeldOut | None, allow: 
             f"--calibration {calibration.source} is the same data as --heldout {heldout.source}: the accuracy "
             "would be measured on what the factors were fitted to (give --allow-overlap to do it anyway)"
         )
+
+
+def _evaluate_prepared(prep: Prepared, factorized) -> MetricResult:
+    acc = MetricAccumulator(prep.metric_name)
+    backend = backend_for(factorized)
+    batches = prep.heldout.batches(prep.config.batch_size)
+    for (inputs, _), (reference, labels) in _bar(zip(batches, prep.reference), prep.config, "evaluate",
+                                                  len(prep.reference), "batch"):
+        acc.update(reference, backend.predict(factorized, inputs), labels)
+    return acc.result()
+
+
+def realize(prep: Prepared, budget: str, *, sources: dict | None = None, latency: bool = True,
+            layer_errors: bool = True) -> CompressResult:
+    """Allocate ``budget`` on prepared spectra, factorize, (recover), evaluate and report."""
+    from .calibrate import recover, sequential_factors
+
+    config, model, backend = prep.config, prep.model, prep.backend
+    timings = dict(prep.timings)
+    t0 = time.perf_counter()
+    plan = plan_budget(prep, budget)
+    fits = {}
+    if prep.sequential:
+        factors, fits = sequential_factors(model, prep.records, plan.ranks, prep.calibration, config)
+    else:
+        factors = compute_factors(prep.records, plan, config, prep.calibration, prep.method)
+    factorized = backend.rewrite(model, prep.records, factors)
+    recovery = None
+    if config.recover:
+        recovery = recover(model, factorized, prep.records, prep.calibration, config, prep.metric_name)
+        factors = backend.read_factors(factorized, list(factors))
+    measured = weight_errors(prep.records, factors)
+    if hasattr(backend, "check"):
+        backend.check(factorized)  # onnx.checker, full check: a failure here is our bug
+    timings["rewrite"] = time.perf_counter() - t0
+    metric, errors, lat = None, {}, None
+    heldout = prep.heldout
+    if heldout is not None:
+        t0 = time.perf_counter()
+        metric = _evaluate_prepared(prep, factorized)
+        names = [n for n, k in plan.ranks.items() if k is not None]
+        if layer_errors and config.error_samples > 0 and names:
+            batches = (x for x, _ in heldout.batches(config.batch_size, limit=config.error_samples))
+            errors = backend.layer_output_errors(model, factorized, names, batches)
+        timings["evaluate"] = time.perf_counter() - t0
+        if latency and config.latency_repeats > 0:
+            t0 = time.perf_counter()
+            lat = measure_latency(model, factorized, heldout, config)
+            timings["latency"] = time.perf_counter() - t0
+    cfg = dataclasses.replace(config, budget=budget) if budget != config.budget else config
+    report = report_mod.build_report(
+        config=cfg, plan=plan, records=prep.records, spectra=prep.spectra, metric=metric,
+        layer_errors=errors, weight_errors=measured, heldout=heldout, sources=sources or {},
+        model_params=(backend.count_params(model), backend.count_params(factorized)),
+        timings=timings, latency=lat, error_samples=min(config.error_samples, len(heldout)) if heldout is not None else 0,
+        method=prep.method, calibration=prep.calibration, fits=fits, recovery=recovery, sequential=prep.sequential,
+    )
+    return CompressResult(factorized, plan, prep.records, prep.spectra, metric, report, errors)
+
+
+def check_outputs_requested(model, config: CompressConfig, heldout, out) -> None:
+    """Refuse export/int8 requests that cannot be honoured, before any work."""
+    backend = backend_for(model)
+    if config.export_onnx:
+        if not backend.__name__.endswith("torch_backend"):
+            raise InputError("--export-onnx is for PyTorch models; this model is ONNX already")
+        if heldout is None or out is None:
+            raise InputError("--export-onnx needs --heldout (an example input to export with and check on) and --out")
+    if config.int8:
+        if heldout is None or out is None:
+            raise InputError("--int8 needs --heldout (to compare the variants) and --out")
+        if backend.__name__.endswith("torch_backend") and not config.export_onnx:
+            raise InputError("--int8 quantizes ONNX models: give an ONNX model, or add --export-onnx")
+
+
+def save_result(result: CompressResult, prep: Prepared, out, force: bool) -> None:
+    """Export/int8 extras (when asked) and the output folder, atomically."""
+    from . import store
+
+    config, report, extra = prep.config, result.report, {}
+    if config.export_onnx:
+        extra["model.onnx"], report["export"] = export_checked(result.model, prep.heldout)
+    if config.int8:
+        t0 = time.perf_counter()
+        extra["model.int8.onnx"], report["int8"] = int8_comparison(prep.model, result.model, prep.heldout,
+                                                                   prep.metric_name, config, extra.get("model.onnx"))
+        report["wall_seconds"]["int8"] = round(time.perf_counter() - t0, 3)
+    if out is not None:
+        store.write_run(out, result.model, result.records, result.plan, report, config, force=force, extra=extra,
+                        spectra=result.spectra)
 
 
 def compress(
@@ -231,14 +373,14 @@ def compress(
 
     Parameters
     ----------
-    model : torch.nn.Module
+    model : torch.nn.Module or OnnxModel
         Not modified; the result holds a factorized copy.
     config : CompressConfig
     heldout : HeldOut, optional
-        Enables the before/after metric and per-layer output errors.
+        Enables the before/after metric, per-layer output errors and latency.
     out : path, optional
-        Folder to write ``model.safetensors``, ``plan.json``, ``report.json`` and ``report.md``
-        into, atomically. A non-empty folder is refused unless ``force``.
+        Folder to write the model, ``plan.json``, ``report.json``, ``report.md`` and
+        ``report.html`` into, atomically. A non-empty folder is refused unless ``force``.
     sources : dict, optional
         Provenance recorded in the report (model spec, weights path and hash).
     calibration : HeldOut, optional
@@ -248,80 +390,13 @@ def compress(
     from . import store
 
     config = config or CompressConfig()
-    timings = {}
-    backend = backend_for(model)
     if out is not None:
         store.check_out_dir(out, force)
-    if config.export_onnx:
-        if not backend.__name__.endswith("torch_backend"):
-            raise InputError("--export-onnx is for PyTorch models; this model is ONNX already")
-        if heldout is None or out is None:
-            raise InputError("--export-onnx needs --heldout (an example input to export with and check on) and --out")
-    if config.int8:
-        if heldout is None or out is None:
-            raise InputError("--int8 needs --heldout (to compare the variants) and --out")
-        if backend.__name__.endswith("torch_backend") and not config.export_onnx:
-            raise InputError("--int8 quantizes ONNX models: give an ONNX model, or add --export-onnx")
-    if config.recover and not backend.__name__.endswith("torch_backend"):
-        raise InputError("--recover fine-tunes PyTorch factor pairs; an ONNX model has no trainable factors")
-    _check_overlap(heldout, calibration, config.allow_overlap)
-    t0 = time.perf_counter()
-    metric_name = check_heldout(model, heldout, config.metric) if heldout is not None else None
-    records, spectra, plan, cal = plan_for(model, config, heldout, calibration)
-    timings["plan"] = time.perf_counter() - t0
-    t0 = time.perf_counter()
-    method = config.resolved_method(cal is not None)
-    fits = {}
-    sequential = config.resolved_sequential(method)
-    if sequential:
-        from .calibrate import sequential_factors
-
-        factors, fits = sequential_factors(model, records, plan.ranks, cal, config)
-    else:
-        factors = compute_factors(records, plan, config, cal, method)
-    factorized = backend.rewrite(model, records, factors)
-    recovery = None
-    if config.recover:
-        from .calibrate import recover
-
-        recovery = recover(model, factorized, records, cal, config, metric_name)
-        factors = backend.read_factors(factorized, list(factors))
-    measured = weight_errors(records, factors)
-    if hasattr(backend, "check"):
-        backend.check(factorized)  # onnx.checker, full check: a failure here is our bug
-    timings["rewrite"] = time.perf_counter() - t0
-    metric, layer_errors = None, {}
-    if heldout is not None:
-        t0 = time.perf_counter()
-        metric = evaluate(model, factorized, heldout, metric_name, config)
-        names = [n for n, k in plan.ranks.items() if k is not None]
-        if config.error_samples > 0 and names:
-            batches = (x for x, _ in heldout.batches(config.batch_size, limit=config.error_samples))
-            layer_errors = backend.layer_output_errors(model, factorized, names, batches)
-        timings["evaluate"] = time.perf_counter() - t0
-    latency = None
-    if heldout is not None and config.latency_repeats > 0:
-        t0 = time.perf_counter()
-        latency = measure_latency(model, factorized, heldout, config)
-        timings["latency"] = time.perf_counter() - t0
-    report = report_mod.build_report(
-        config=config, plan=plan, records=records, spectra=spectra, metric=metric,
-        layer_errors=layer_errors, weight_errors=measured, heldout=heldout, sources=sources or {},
-        model_params=(backend.count_params(model), backend.count_params(factorized)),
-        timings=timings, latency=latency, error_samples=min(config.error_samples, len(heldout)) if heldout is not None else 0,
-        method=method, calibration=cal, fits=fits, recovery=recovery, sequential=sequential,
-    )
-    extra = {}
-    if config.export_onnx:
-        extra["model.onnx"], report["export"] = export_checked(factorized, heldout)
-    if config.int8:
-        t0 = time.perf_counter()
-        extra["model.int8.onnx"], report["int8"] = int8_comparison(model, factorized, heldout, metric_name, config,
-                                                                   extra.get("model.onnx"))
-        report["wall_seconds"]["int8"] = round(time.perf_counter() - t0, 3)
-    if out is not None:
-        store.write_run(out, factorized, records, plan, report, config, force=force, extra=extra)
-    return CompressResult(factorized, plan, records, spectra, metric, report, layer_errors)
+    check_outputs_requested(model, config, heldout, out)
+    prep = prepare(model, config, heldout, calibration)
+    result = realize(prep, config.budget, sources=sources)
+    save_result(result, prep, out, force)
+    return result
 
 
 def inspect_model(model, config: CompressConfig | None = None) -> dict:

@@ -82,7 +82,7 @@ def write_model(model, folder: Path) -> list[str]:
 
 
 def write_run(out, model, records, plan: Plan, report: dict, config: CompressConfig, *, force: bool = False,
-              extra: dict[str, Path] | None = None) -> Path:
+              extra: dict[str, Path] | None = None, spectra: dict | None = None) -> Path:
     """Write the model, plan.json, report.json and report.md (and ``extra`` files, moved in under
     their given names) into ``out`` atomically; return the folder."""
     out = Path(out)
