@@ -22,7 +22,7 @@ from .report import render_markdown
 
 PLAN_FORMAT = "factorize-weights/plan"
 PLAN_VERSION = 1
-FILES = ("model.safetensors", "plan.json", "report.json", "report.md")
+FILES = ("model.safetensors", "plan.json", "report.html", "report.json", "report.md")
 
 
 def check_out_dir(out: str | Path, force: bool) -> None:
@@ -88,6 +88,8 @@ def write_run(out, model, records, plan: Plan, report: dict, config: CompressCon
     out = Path(out)
     check_out_dir(out, force)
     tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.tmp-", dir=out.resolve().parent))
+    umask = os.umask(0)
+    os.umask(umask)
     try:
         write_model(model, tmp)
         for name, src in (extra or {}).items():
@@ -95,6 +97,14 @@ def write_run(out, model, records, plan: Plan, report: dict, config: CompressCon
         _dump(tmp / "plan.json", plan_dict(records, plan, config, report.get("method", "svd")))
         _dump(tmp / "report.json", report)
         (tmp / "report.md").write_text(render_markdown(report), encoding="utf-8")
+        if spectra is not None:
+            from .report_html import render_report_html
+
+            (tmp / "report.html").write_text(render_report_html(report, spectra), encoding="utf-8")
+        # mkdtemp makes a private folder; give the result the permissions the user's umask asks for
+        os.chmod(tmp, 0o777 & ~umask)
+        for path in tmp.iterdir():
+            os.chmod(path, 0o666 & ~umask)
         if out.exists():
             trash = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=out.resolve().parent))
             os.replace(out, trash / "old")

@@ -1,0 +1,222 @@
+"""report.html and sweep.html: one self-contained file each, plots drawn by matplotlib as inline
+SVG. No network requests, scripts or web fonts; colours from the Okabe-Ito palette (distinguishable
+with the common colour-vision deficiencies) and every series also differs in line style or marker.
+"""
+
+from __future__ import annotations
+
+import html
+import io
+
+import numpy as np
+
+from .report import _fmt_int, _fmt_metric, summary_line
+
+# Okabe & Ito, "Color Universal Design" (2008): safe for protanopia, deuteranopia, tritanopia
+BLUE, ORANGE, VERMILLION, GREEN, GREY = "#0072B2", "#E69F00", "#D55E00", "#009E73", "#666666"
+
+CSS = """
+body { font-family: system-ui, -apple-system, "Segoe UI", sans-serif; margin: 2rem auto; max-width: 1100px;
+       padding: 0 1rem; color: #1a1a1a; line-height: 1.45; }
+h1 { font-size: 1.6rem; } h2 { font-size: 1.25rem; margin-top: 2rem; border-bottom: 1px solid #ccc; }
+table { border-collapse: collapse; margin: 0.5rem 0; font-size: 0.9rem; }
+th, td { border: 1px solid #ccc; padding: 0.25rem 0.5rem; text-align: right; }
+th { background: #f2f2f2; } td:first-child, th:first-child { text-align: left; }
+code { font-size: 0.9em; }
+.summary td:first-child { font-weight: 600; } .summary td { text-align: left; }
+.grid { display: grid; grid-template-columns: repeat(auto-fill, minmax(330px, 1fr)); gap: 0.75rem; }
+figure { margin: 0; border: 1px solid #e0e0e0; padding: 0.25rem; break-inside: avoid; }
+figure svg { width: 100%; height: auto; display: block; }
+figcaption { font-size: 0.8rem; color: #444; }
+.bad { color: #b00020; font-weight: 600; } .good { color: #006b3c; font-weight: 600; }
+@media print { body { margin: 0; max-width: none; } h2 { break-after: avoid; } section { break-inside: avoid; }
+               .grid { grid-template-columns: repeat(2, 1fr); } }
+"""
+
+
+def _svg(fig) -> str:
+    """The figure as an inline <svg> element (text kept as text, no fonts embedded)."""
+    import matplotlib.pyplot as plt
+
+    buf = io.StringIO()
+    fig.savefig(buf, format="svg")
+    plt.close(fig)
+    text = buf.getvalue()
+    return text[text.index("<svg"):]
+
+
+def _pyplot():
+    import matplotlib
+
+    matplotlib.use("Agg", force=True)
+    import matplotlib.pyplot as plt
+
+    plt.rcParams.update({"svg.fonttype": "none", "font.size": 9, "axes.spines.top": False,
+                         "axes.spines.right": False, "figure.dpi": 100})
+    return plt
+
+
+def spectrum_figure(entry: dict, spectrum) -> str:
+    """Singular values on a log scale with the chosen and break-even ranks, and the energy curve."""
+    plt = _pyplot()
+    fig, (ax, bx) = plt.subplots(1, 2, figsize=(5.2, 2.1))
+    s = np.asarray(spectrum.singular_values, dtype=float)
+    ranks = np.arange(1, len(s) + 1)
+    positive = s > 0
+    ax.semilogy(ranks[positive], s[positive], color=BLUE, lw=1.4)
+    bx.plot(ranks, 100 * spectrum.energy_curve(), color=BLUE, lw=1.4)
+    for axis in (ax, bx):
+        axis.axvline(entry["break_even_rank"], color=GREY, ls="--", lw=1, label=f"break-even {entry['break_even_rank']}")
+        if entry["rank"] is not None:
+            axis.axvline(entry["rank"], color=VERMILLION, ls="-", lw=1.6, label=f"chosen rank {entry['rank']}")
+        axis.set_xlabel("rank")
+    ax.set_ylabel("singular value")
+    bx.set_ylabel("energy kept (%)")
+    bx.set_ylim(0, 101)
+    ax.legend(fontsize=7, frameon=False, loc="upper right")
+    fig.tight_layout()
+    return _svg(fig)
+
+
+def params_figure(layers: list[dict]) -> str:
+    """Parameters per layer before and after, horizontal bars (hatched after)."""
+    plt = _pyplot()
+    names = [e["name"] for e in layers]
+    fig, ax = plt.subplots(figsize=(7.5, 0.32 * len(names) + 1.0))
+    y = np.arange(len(names))
+    ax.barh(y - 0.2, [e["params_before"] for e in layers], 0.4, color=GREY, label="before")
+    ax.barh(y + 0.2, [e["params_after"] for e in layers], 0.4, color=BLUE, hatch="//", edgecolor="white",
+            label="after")
+    ax.set_yticks(y, names)
+    ax.invert_yaxis()
+    ax.set_xlabel("parameters")
+    ax.legend(frameon=False)
+    fig.tight_layout()
+    return _svg(fig)
+
+
+def _table(head: list[str] | None, rows: list[list[str]], cls: str = "") -> str:
+    out = [f'<table class="{cls}">' if cls else "<table>"]
+    if head:
+        out.append("<tr>" + "".join(f"<th>{html.escape(h)}</th>" for h in head) + "</tr>")
+    out += ["<tr>" + "".join(f"<td>{c}</td>" for c in row) + "</tr>" for row in rows]
+    return "\n".join(out + ["</table>"])
+
+
+def _page(title: str, body: list[str]) -> str:
+    return "\n".join([
+        "<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
+        '<meta name="viewport" content="width=device-width, initial-scale=1">',
+        f"<title>{html.escape(title)}</title>", f"<style>{CSS}</style></head><body>", *body, "</body></html>", ""])
+
+
+def render_report_html(report: dict, spectra: dict) -> str:
+    """The whole report.html as a string."""
+    t, b, m = report["totals"], report["budget"], report.get("metric")
+    esc = html.escape
+    rows = [
+        ["model", f"<code>{esc(str(report['sources'].get('model', '')))}</code>"],
+        ["budget", f"<code>{esc(b['given'])}</code>" + (f" — limit {_fmt_int(b['limit'])} {b['units']}, "
+                                                       f"under by {_fmt_int(b['under_by'])}" if b["limit"] is not None else "")],
+        ["method", esc(report["method"]) + (" + sequential refits" if report.get("sequential") else "")
+         + (" + recovery" if report.get("recovery") else "")],
+        ["parameters (selected layers)", f"{_fmt_int(t['params_before'])} → {_fmt_int(t['params_after'])} "
+                                         f"({100 * t['params_ratio']:.1f}%)"],
+        ["parameters (whole model)", f"{_fmt_int(t['model_params_before'])} → {_fmt_int(t['model_params_after'])}"],
+        ["size (float32 weights)", f"{t['model_params_before'] * 4 / 2**20:.2f} MiB → {t['model_params_after'] * 4 / 2**20:.2f} MiB"],
+    ]
+    if "flops_before" in t:
+        rows.append(["multiply-adds per sample", f"{_fmt_int(t['flops_before'])} → {_fmt_int(t['flops_after'])} "
+                                                 f"({100 * t['flops_ratio']:.1f}%)"])
+    if m:
+        unit = " points" if m["name"] in ("top1", "top5", "agreement") else ""
+        worse = m["delta"] < 0 if m["higher_is_better"] else m["delta"] > 0
+        rows.append([f"held-out {esc(m['name'])}", f"{_fmt_metric(m['name'], m['before'])} → {_fmt_metric(m['name'], m['after'])} "
+                     f"<span class=\"{'bad' if worse else 'good'}\">({m['delta']:+.2f}{unit})</span> on {m['samples']} samples"])
+    lat = report.get("latency")
+    if lat:
+        rows.append(["CPU latency", f"{lat['before_ms']:.3f} → {lat['after_ms']:.3f} ms (×{lat['speedup']:.2f}; "
+                     f"FLOPs predict ×{lat['predicted_speedup'] or 1:.2f}) — {esc(lat['runtime'])}, batch {lat['batch']}, "
+                     f"{lat['threads']} thread(s)"])
+    body = [f"<h1>Factorization report</h1>", f"<p>{esc(summary_line(report))}.</p>",
+            "<section><h2>Summary</h2>", _table(None, rows, "summary"), "</section>"]
+    body += ["<section><h2>Parameters per layer</h2>", f"<figure>{params_figure(report['layers'])}"
+             "<figcaption>Grey: before; blue, hatched: after.</figcaption></figure></section>"]
+    label = "W·S (whitened)" if report["method"] == "whitened" else ("pivoted-QR steps" if report["method"] == "columns" else "W")
+    body += [f"<section><h2>Spectra</h2><p>Per layer: the singular values of {label} on a log scale and the energy "
+             "kept against rank. Solid vermillion line: chosen rank; dashed grey line: break-even rank (at or "
+             "above it two factors save nothing).</p><div class=\"grid\">"]
+    for e in report["layers"]:
+        if e["name"] in spectra:
+            caption = f"<code>{esc(e['name'])}</code> {esc(e['kind'])} {'×'.join(map(str, e['matrix_shape']))}: " + (
+                "stays dense" if e["rank"] is None else f"rank {e['rank']}, energy kept {100 * e['energy_kept']:.1f}%")
+            body.append(f"<figure>{spectrum_figure(e, spectra[e['name']])}<figcaption>{caption}</figcaption></figure>")
+    body.append("</div></section>")
+    head = ["layer", "kind", "matrix", "rank", "break-even", "params before", "params after", "energy kept", "weight error"]
+    has_out = any("output_error" in e for e in report["layers"])
+    if has_out:
+        head.append("output error")
+    table = []
+    for e in report["layers"]:
+        row = [f"<code>{esc(e['name'])}</code>", esc(e["kind"]), "×".join(map(str, e["matrix_shape"])),
+               "dense" if e["rank"] is None else str(e["rank"]), str(e["break_even_rank"]), _fmt_int(e["params_before"]),
+               _fmt_int(e["params_after"]), f"{100 * e['energy_kept']:.2f}%", f"{e['weight_error']:.4f}"]
+        if has_out:
+            row.append("" if e.get("output_error") is None else f"{e['output_error']:.4f}")
+        table.append(row)
+    body += ["<section><h2>Layers</h2>", _table(head, table), "</section>"]
+    if report["skipped"]:
+        body += ["<section><h2>Skipped layers</h2>",
+                 _table(["layer", "kind", "reason"], [[f"<code>{esc(s['name'])}</code>", esc(s["kind"]), esc(s["reason"])]
+                                                      for s in report["skipped"]]), "</section>"]
+    q = report.get("int8")
+    if q:
+        body += ["<section><h2>int8 on top</h2>", _table(["variant", "size on disk", esc(q["metric"]), "delta", "median ms"],
+                 [[esc(v["name"]), f"{_fmt_int(v['size_bytes'])} B", _fmt_metric(q["metric"], v["metric"]),
+                   f"{v['delta']:+.2f}", f"{v['latency_ms']:.3f}"] for v in q["variants"]]), "</section>"]
+    cal = report.get("calibration")
+    if cal:
+        body += ["<section><h2>Calibration</h2>", f"<p>{cal['samples']} samples from <code>{esc(cal['source'])}</code>; "
+                 f"Gram matrices {cal['gram_bytes'] / 2**20:.1f} MiB; peak process memory {cal['peak_rss_bytes'] / 2**20:.0f} MiB.</p>"]
+        body += [f"<p class=\"bad\">warning: {esc(w)}</p>" for w in cal["warnings"]] + ["</section>"]
+    body.append(f"<p><small>factorize-weights {esc(report['tool_version'])}, {esc(report['created'])}</small></p>")
+    return _page("Factorization report", body)
+
+
+def sweep_figure(points: list[dict], x_key: str, x_label: str) -> str:
+    plt = _pyplot()
+    fig, ax = plt.subplots(figsize=(5.5, 3.2))
+    xs = [p[x_key] for p in points]
+    ys = [p["metric"]["after"] for p in points]
+    ax.plot(xs, ys, color=BLUE, marker="o", lw=1.5, label="factorized")
+    ax.axhline(points[0]["metric"]["before"], color=GREY, ls="--", lw=1, label="original")
+    for p, x, y in zip(points, xs, ys):
+        ax.annotate(p["budget"], (x, y), textcoords="offset points", xytext=(4, -10), fontsize=7)
+    ax.set_xlabel(x_label)
+    ax.set_ylabel(f"held-out {points[0]['metric']['name']}")
+    ax.legend(frameon=False)
+    fig.tight_layout()
+    return _svg(fig)
+
+
+def render_sweep_html(sweep: dict) -> str:
+    esc = html.escape
+    points = sweep["points"]
+    body = ["<h1>Budget sweep</h1>", f"<p>{len(points)} budgets, method <code>{esc(sweep['method'])}</code>, "
+            f"spectra and calibration computed once ({sweep['wall_seconds']['prepare']:.2f} s), then "
+            f"{sweep['wall_seconds']['points']:.2f} s for all points.</p>"]
+    if points and points[0].get("metric"):
+        body.append(f"<figure>{sweep_figure(points, 'params_ratio_pct', 'parameters kept (% of selected layers)')}</figure>")
+        if all(p.get("latency") for p in points):
+            for p in points:
+                p["_after_ms"] = p["latency"]["after_ms"]
+            body.append(f"<figure>{sweep_figure(points, '_after_ms', 'measured latency (ms)')}</figure>")
+            for p in points:
+                p.pop("_after_ms")
+    head = ["budget", "params kept", "parameters after", "layers factorized", "metric after", "delta", "median ms"]
+    rows = [[f"<code>{esc(p['budget'])}</code>", f"{p['params_ratio_pct']:.1f}%", _fmt_int(p["params_after"]),
+             str(p["layers_factorized"]), "" if not p.get("metric") else _fmt_metric(p["metric"]["name"], p["metric"]["after"]),
+             "" if not p.get("metric") else f"{p['metric']['delta']:+.2f}",
+             "" if not p.get("latency") else f"{p['latency']['after_ms']:.3f}"] for p in points]
+    body += ["<h2>Points</h2>", _table(head, rows)]
+    return _page("Budget sweep", body)
