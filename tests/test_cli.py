@@ -13,7 +13,7 @@ import pytest
 import torch
 from safetensors.torch import save_file
 
-from factorize_weights import demo
+from factorize_weights import demo, store
 from factorize_weights.cli import main
 
 
@@ -246,7 +246,7 @@ def test_force_replaces_a_folder_atomically(user, capsys):
     code, _, err = run(capsys, "compress", "--model", f"{user}/usermodel.py:build", "--weights",
                        user / "user.safetensors", "--budget", "params=0.5", "--out", user / "out", "--force", "-q")
     assert code == 0, err
-    assert sorted(p.name for p in (user / "out").iterdir()) == ["model.safetensors", "plan.json", "report.json", "report.md"]
+    assert sorted(p.name for p in (user / "out").iterdir()) == sorted(store.FILES)
 
 
 def test_module_entry_point_runs_as_a_process():
