@@ -7,6 +7,7 @@ on stderr naming the file or flag and what is wrong; ``--debug`` adds the traceb
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import json
 import sys
 import traceback
@@ -21,7 +22,7 @@ from .spectra import SVD_METHODS
 PROG = "factorize-weights"
 
 EPILOG = """\
-exit codes: 0 success, 1 internal error, 2 bad input or usage
+exit codes: 0 success, 1 internal error, 2 bad input or usage, 3 gate failed (--fail-over)
 budgets:    params=0.3 (fraction of the selected layers' parameters), params=1.2M (absolute),
             flops=0.5 (needs --heldout), energy=0.9 (per layer), error=0.1 (per layer)
 model:      MODEL.onnx, or --model FILE.py:FACTORY or package.module:FACTORY (a callable
@@ -47,6 +48,7 @@ def _common(p: argparse.ArgumentParser) -> None:
                    help="use the embedded demo model (PyTorch, or its ONNX export) and its held-out set")
     p.add_argument("--debug", action="store_true", help="show tracebacks")
     p.add_argument("-q", "--quiet", action="store_true", help="no progress bars")
+    p.add_argument("-v", "--verbose", action="store_true", help="stage timings and written files on stderr")
     p.add_argument("--json", action="store_true", help="print the report as JSON on stdout (nothing else)")
 
 
@@ -60,24 +62,8 @@ def _selection(p: argparse.ArgumentParser) -> None:
     g.add_argument("--power-iterations", type=int, default=2, help="randomized SVD power iterations q (default 2)")
 
 
-def build_parser() -> argparse.ArgumentParser:
-    parser = _Parser(prog=PROG, description="Split a trained model's dense layers into two thin low-rank factors.",
-                     epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
-    parser.add_argument("--version", action="version", version=f"{PROG} {__version__}")
-    sub = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
-
-    p = sub.add_parser("inspect", help="spectra and break-even ranks per layer; no rewrite", epilog=EPILOG,
-                       formatter_class=argparse.RawDescriptionHelpFormatter)
-    _common(p)
-    _selection(p)
-    p.set_defaults(func=cmd_inspect)
-
-    p = sub.add_parser("compress", help="plan ranks, rewrite, save, evaluate, report", epilog=EPILOG,
-                       formatter_class=argparse.RawDescriptionHelpFormatter)
-    _common(p)
-    _selection(p)
-    g = p.add_argument_group("plan")
-    g.add_argument("--budget", required=True, metavar="KIND=VALUE", help="params=F|N, flops=F|N, energy=F or error=F")
+def _plan_options(p: argparse.ArgumentParser, *, sweep: bool = False) -> None:
+    g = p.add_argument_group("factors")
     g.add_argument("--method", choices=METHODS, default="auto",
                    help="svd (weights only), whitened (calibrated on real inputs), columns (pivoted-QR columns); "
                         "auto: whitened with --calibration, else svd")
@@ -98,19 +84,61 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--metric", choices=METRICS, help="default: top1 with class labels, mse with float targets, else cosine")
     g.add_argument("--batch-size", type=int, default=256, help="held-out batch size (default 256)")
     g.add_argument("--error-samples", type=int, default=256, help="held-out samples for per-layer output error")
-    g.add_argument("--out", metavar="DIR", help="write the model, plan.json, report.json, report.md here")
+    g.add_argument("--out", metavar="DIR", help="write the results here (atomically)")
     g.add_argument("--force", action="store_true", help="replace a non-empty --out folder")
-    g.add_argument("--export-onnx", action="store_true",
-                   help="PyTorch models: also write model.onnx, checked against torch in onnxruntime")
-    g.add_argument("--int8", action="store_true",
-                   help="ONNX: also quantize to int8 (onnxruntime dynamic) and compare original, factorized, "
-                        "int8-only and factorized+int8 (size, metric, latency)")
+    if not sweep:
+        g.add_argument("--export-onnx", action="store_true",
+                       help="PyTorch models: also write model.onnx, checked against torch in onnxruntime")
+        g.add_argument("--int8", action="store_true",
+                       help="ONNX: also quantize to int8 (onnxruntime dynamic) and compare original, factorized, "
+                            "int8-only and factorized+int8 (size, metric, latency)")
     g = p.add_argument_group("latency (measured on the CPU when --heldout is given)")
     g.add_argument("--latency-batch", type=int, default=1, metavar="N", help="batch size of the timed runs (default 1)")
     g.add_argument("--latency-threads", type=int, default=1, metavar="N", help="CPU threads (default 1)")
     g.add_argument("--latency-repeats", type=int, default=30, metavar="N", help="timed runs per model (default 30; 0: off)")
     g.add_argument("--latency-warmup", type=int, default=5, metavar="N", help="untimed runs first (default 5)")
+    g = p.add_argument_group("run file")
+    g.add_argument("--config", metavar="RUN.toml",
+                   help="read any option of this command from a TOML file; flags on the command line win")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(prog=PROG, description="Split a trained model's dense layers into two thin low-rank factors.",
+                     epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--version", action="version", version=f"{PROG} {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
+    parser._subcommands = sub.choices
+
+    p = sub.add_parser("inspect", help="spectra and break-even ranks per layer; no rewrite", epilog=EPILOG,
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
+    _common(p)
+    _selection(p)
+    p.set_defaults(func=cmd_inspect)
+
+    p = sub.add_parser("compress", help="plan ranks, rewrite, save, evaluate, report", epilog=EPILOG,
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
+    _common(p)
+    _selection(p)
+    g = p.add_argument_group("plan")
+    g.add_argument("--budget", metavar="KIND=VALUE", help="params=F|N, flops=F|N, energy=F or error=F")
+    g.add_argument("--max-drop", type=float, metavar="D",
+                   help="instead of --budget: the smallest params budget whose held-out drop is at most D, in the "
+                        "metric's units (percentage points for top1/top5/agreement, absolute for cosine and mse)")
+    _plan_options(p)
+    g = p.add_argument_group("gate")
+    g.add_argument("--fail-over", type=float, metavar="D",
+                   help="write everything, then exit 3 when the held-out drop exceeds D (metric units as --max-drop)")
     p.set_defaults(func=cmd_compress)
+
+    p = sub.add_parser("sweep", help="several budgets in one go, spectra and calibration computed once",
+                       epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
+    _common(p)
+    _selection(p)
+    g = p.add_argument_group("plan")
+    g.add_argument("--budgets", metavar="LIST", help="comma-separated budgets, e.g. params=0.8,0.6,0.4,0.2")
+    g.add_argument("--save-models", action="store_true", help="also write each point's model folder under --out")
+    _plan_options(p, sweep=True)
+    p.set_defaults(func=cmd_sweep)
 
     p = sub.add_parser("evaluate", help="compare an original and a factorized model on a held-out set",
                        epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -147,13 +175,22 @@ def _load_model(args):
     if spec.lower().endswith(".onnx") or onnx_backend.looks_like_onnx(spec):
         if args.weights:
             raise InputError(f"--weights is for PyTorch models; the ONNX file {spec} holds its own weights")
-        return onnx_backend.load(spec), {"model": spec, "format": "onnx", "model_sha256": file_sha256(spec)}
+        return onnx_backend.load(spec), _run_sources(args, {"model": spec, "format": "onnx",
+                                                            "model_sha256": file_sha256(spec)})
     if ":" not in spec:
         raise InputError(f"--model {spec!r}: not an ONNX file and not FILE.py:FACTORY or package.module:FACTORY")
     model = torch_backend.build_model(spec, args.weights)
     sources = {"model": spec, "format": "torch", "weights": args.weights,
                "weights_sha256": file_sha256(args.weights) if args.weights else None}
-    return model, sources
+    return model, _run_sources(args, sources)
+
+
+def _run_sources(args, sources: dict) -> dict:
+    """Provenance: the run file (if any) and the command line."""
+    if getattr(args, "config_file", None):
+        sources["config_file"] = {k: args.config_file[k] for k in ("path", "sha256")}
+    sources["argv"] = list(getattr(args, "argv", sys.argv[1:]))
+    return sources
 
 
 def _heldout(args):
@@ -186,39 +223,119 @@ def cmd_inspect(args) -> int:
     return 0
 
 
+def _plan_config(args, budget: str) -> CompressConfig:
+    return _config(args, budget=budget, method=args.method, split=args.split,
+                   rank_multiple=args.rank_multiple, min_rank=args.min_rank, metric=args.metric,
+                   batch_size=args.batch_size, error_samples=args.error_samples,
+                   latency_batch=args.latency_batch, latency_threads=args.latency_threads,
+                   latency_repeats=args.latency_repeats, latency_warmup=args.latency_warmup,
+                   export_onnx=getattr(args, "export_onnx", False), int8=getattr(args, "int8", False),
+                   sequential=args.sequential, recover=args.recover, recover_lr=args.recover_lr,
+                   allow_overlap=args.allow_overlap)
+
+
+def _calibration(args):
+    from .data import load_heldout
+
+    return load_heldout(args.calibration, flag="--calibration") if args.calibration else None
+
+
+def _warn(text: str) -> None:
+    print(f"{PROG}: {_colour('warning', '33')}: {text}", file=sys.stderr)
+
+
+def _colour(text: str, code: str) -> str:
+    """ANSI colour only on a terminal, and never when NO_COLOR is set (no-color.org)."""
+    import os
+
+    if sys.stderr.isatty() and not os.environ.get("NO_COLOR"):
+        return f"\033[{code}m{text}\033[0m"
+    return text
+
+
+def _verbose(args, report: dict) -> None:
+    if getattr(args, "verbose", False):
+        stages = ", ".join(f"{k} {v:.2f} s" for k, v in report.get("wall_seconds", {}).items())
+        print(f"{PROG}: stages: {stages}", file=sys.stderr)
+
+
 def cmd_compress(args) -> int:
-    from .pipeline import compress
+    from pathlib import Path
+
+    from .pipeline import check_outputs_requested, prepare, realize, save_result
     from .report import layer_table, summary_line
+    from .store import check_out_dir
+    from .sweep import POINT_UNITS, drop_of, search_budget
 
-    config = _config(args, budget=args.budget, method=args.method, split=args.split,
-                     rank_multiple=args.rank_multiple, min_rank=args.min_rank, metric=args.metric,
-                     batch_size=args.batch_size, error_samples=args.error_samples,
-                     latency_batch=args.latency_batch, latency_threads=args.latency_threads,
-                     latency_repeats=args.latency_repeats, latency_warmup=args.latency_warmup,
-                     export_onnx=args.export_onnx, int8=args.int8, sequential=args.sequential,
-                     recover=args.recover, recover_lr=args.recover_lr, allow_overlap=args.allow_overlap)
+    if (args.budget is None) == (args.max_drop is None):
+        raise InputError("give exactly one of --budget and --max-drop")
+    if args.max_drop is not None and args.max_drop < 0:
+        raise InputError(f"--max-drop must be >= 0; got {args.max_drop}")
+    if (args.max_drop is not None or args.fail_over is not None) and not args.heldout and not args.demo:
+        raise InputError(f"{'--max-drop' if args.max_drop is not None else '--fail-over'} needs --heldout "
+                         "(the drop is measured on it)")
+    config = _plan_config(args, args.budget or "params=1")
     model, sources = _load_model(args)
-    heldout = _heldout(args)
-    calibration = None
-    if args.calibration:
-        from .data import load_heldout
-
-        calibration = load_heldout(args.calibration, flag="--calibration")
-    result = compress(model, config, heldout=heldout, out=args.out, force=args.force, sources=sources,
-                      calibration=calibration)
+    if args.out:
+        check_out_dir(args.out, args.force)
+    heldout, calibration = _heldout(args), _calibration(args)
+    check_outputs_requested(model, config, heldout, args.out)
+    if args.max_drop is not None:
+        prep = prepare(model, config, heldout, calibration, budgets=["params=1"])
+        budget, search, _ = search_budget(prep, args.max_drop)
+        prep.config = config = dataclasses.replace(config, budget=budget)
+        result = realize(prep, budget, sources=sources)
+        result.report["search"] = search
+    else:
+        prep = prepare(model, config, heldout, calibration)
+        result = realize(prep, config.budget, sources=sources)
+    save_result(result, prep, args.out, args.force)
     for warning in (result.report.get("calibration") or {}).get("warnings", []):
-        print(f"{PROG}: warning: {warning}", file=sys.stderr)
+        _warn(warning)
+    _verbose(args, result.report)
     if args.json:
         _print_json(result.report)
-        return 0
-    print("\n".join(layer_table(result.report)))
-    if result.report["skipped"]:
-        print("skipped: " + "; ".join(f"{s['name']} ({s['reason']})" for s in result.report["skipped"]))
-    print(summary_line(result.report))
-    if args.out:
-        from pathlib import Path
+    else:
+        print("\n".join(layer_table(result.report)))
+        if result.report["skipped"]:
+            print("skipped: " + "; ".join(f"{s['name']} ({s['reason']})" for s in result.report["skipped"]))
+        if "search" in result.report:
+            sr = result.report["search"]
+            print(f"search: {sr['chosen']} is the smallest budget within a drop of {sr['max_drop']} "
+                  f"{sr['unit']} ({sr['evaluations']} evaluations: "
+                  + ", ".join(f"{t['budget']} {t['drop']:+.2f}" for t in sr["tried"]) + ")")
+        print(summary_line(result.report))
+        if args.out:
+            print(f"wrote {args.out}/ ({', '.join(sorted(p.name for p in Path(args.out).iterdir()))})")
+    if args.fail_over is not None and result.metric is not None:
+        drop = drop_of(result.metric)
+        if drop > args.fail_over:
+            print(f"{PROG}: {_colour('gate failed', '31')}: held-out {result.metric.name} dropped {drop:.4g} "
+                  f"{POINT_UNITS[result.metric.name]}, more than --fail-over {args.fail_over:g} "
+                  f"(by {drop - args.fail_over:.4g})", file=sys.stderr)
+            return 3
+    return 0
 
-        print(f"wrote {args.out}/ ({', '.join(sorted(p.name for p in Path(args.out).iterdir()))})")
+
+def cmd_sweep(args) -> int:
+    from .sweep import parse_budget_list, sweep
+
+    if not args.budgets:
+        raise InputError("--budgets is required, e.g. --budgets params=0.8,0.6,0.4,0.2")
+    budgets = parse_budget_list(args.budgets)
+    config = _plan_config(args, budgets[0])
+    model, sources = _load_model(args)
+    doc = sweep(model, config, budgets, heldout=_heldout(args), calibration=_calibration(args), out=args.out,
+                force=args.force, save_models=args.save_models, sources=sources)
+    if args.json:
+        _print_json(doc)
+        return 0
+    from .sweep import render_markdown
+
+    print(render_markdown(doc), end="")
+    if args.out:
+        print(f"wrote {args.out}/ (sweep.json, sweep.csv, sweep.md, sweep.html"
+              f"{', one folder per budget' if args.save_models else ''})")
     return 0
 
 
@@ -241,15 +358,59 @@ def cmd_evaluate(args) -> int:
     return 0
 
 
+def apply_run_file(parser, argv: list[str], args):
+    """Re-parse with the TOML run file's values as defaults: flags on the command line win.
+    Keys are the long option names (``rank-multiple`` or ``rank_multiple``); unknown keys are
+    refused by name."""
+    try:
+        import tomllib
+    except ModuleNotFoundError:  # Python 3.10
+        import tomli as tomllib
+    from pathlib import Path
+
+    from .data import file_sha256
+
+    path = Path(args.config)
+    if not path.is_file():
+        raise InputError(f"--config {path}: file does not exist")
+    try:
+        values = tomllib.loads(path.read_text(encoding="utf-8"))
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise InputError(f"--config {path}: not valid TOML ({exc})") from exc
+    sub = parser._subcommands[args.command]
+    dests = {a.dest for a in sub._actions if a.dest not in ("help", "config", "func", "model_path")}
+    defaults, unknown = {}, []
+    for key, value in values.items():
+        dest = key.replace("-", "_")
+        if dest not in dests:
+            unknown.append(key)
+            continue
+        if dest == "budgets" and isinstance(value, list):
+            value = ",".join(str(v) for v in value)
+        if dest in ("only", "skip") and isinstance(value, str):
+            value = [value]
+        defaults[dest] = value
+    if unknown:
+        raise InputError(f"--config {path}: unknown key(s) {', '.join(sorted(unknown))} for '{args.command}'")
+    sub.set_defaults(**defaults)
+    new = parser.parse_args(argv)
+    new.config_file = {"path": str(path), "sha256": file_sha256(path), "values": values}
+    return new
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
+    argv = list(sys.argv[1:] if argv is None else argv)
     args = parser.parse_args(argv)
     try:
+        if getattr(args, "config", None):
+            args = apply_run_file(parser, argv, args)
+        args.argv = argv
         return args.func(args)
     except InputError as exc:
         if args.debug:
             traceback.print_exc()
-        print(f"{PROG}: error: {exc}", file=sys.stderr)
+        print(f"{PROG}: {_colour('error', '31')}: {exc}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print(f"{PROG}: interrupted", file=sys.stderr)

@@ -316,3 +316,11 @@ def render_inspect(report: dict) -> str:
     if report["skipped"]:
         lines += ["", "skipped:"] + [f"  {s['name']} ({s['kind']}): {s['reason']}" for s in report["skipped"]]
     return "\n".join(lines)
+
+
+def schema(name: str = "report") -> dict:
+    """The JSON Schema shipped for ``report.json`` (``name="report"``) or ``sweep.json``."""
+    import json
+    from importlib import resources
+
+    return json.loads(resources.files("factorize_weights").joinpath("schemas", f"{name}.schema.json").read_text())

@@ -21,3 +21,34 @@ def planted(m: int, n: int, singular_values, seed: int = 0) -> np.ndarray:
 @pytest.fixture
 def rng():
     return np.random.default_rng(12345)
+
+
+@pytest.fixture(autouse=True)
+def validate_every_report(monkeypatch):
+    """Every report.json written and every --json report printed is checked against the JSON
+    Schema the package ships (jsonschema is the validator)."""
+    import jsonschema
+
+    from factorize_weights import cli, report, store, sweep
+
+    schemas = {name: report.schema(name) for name in ("report", "sweep")}
+    real_write, real_print, real_sweep_write = store.write_run, cli._print_json, sweep._write_sweep
+
+    def write_run(out, model, records, plan, rep, *args, **kwargs):
+        jsonschema.validate(rep, schemas["report"])
+        return real_write(out, model, records, plan, rep, *args, **kwargs)
+
+    def print_json(obj):
+        if "layers" in obj and "budget" in obj:
+            jsonschema.validate(obj, schemas["report"])
+        elif "points" in obj:
+            jsonschema.validate(obj, schemas["sweep"])
+        return real_print(obj)
+
+    def write_sweep(out, doc, *args, **kwargs):
+        jsonschema.validate(doc, schemas["sweep"])
+        return real_sweep_write(out, doc, *args, **kwargs)
+
+    monkeypatch.setattr(store, "write_run", write_run)
+    monkeypatch.setattr(cli, "_print_json", print_json)
+    monkeypatch.setattr(sweep, "_write_sweep", write_sweep)

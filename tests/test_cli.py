@@ -198,21 +198,25 @@ def _bad(user, kind):
         (user / "out" / "keep.txt").write_text("mine")
         return base, "folder exists and is not empty (give --force"
     if kind == "missing budget":
-        return ["compress", "--model", model], "the following arguments are required: --budget"
+        return ["compress", "--model", model], "give exactly one of --budget and --max-drop"
+    if kind == "usage error":
+        return ["compress", "--model", model, "--budget", "params=0.5", "--rank-multiple", "eight"], \
+            "argument --rank-multiple: invalid int value: 'eight'"
     raise AssertionError(kind)
 
 
 BAD = ["missing checkpoint", "corrupt checkpoint", "pickled object", "mismatched tensors",
        "factory raises", "missing factory", "missing inputs array", "wrong input shape",
-       "label rows", "nan weight", "infeasible budget", "bad budget", "nonempty out", "missing budget"]
+       "label rows", "nan weight", "infeasible budget", "bad budget", "nonempty out", "missing budget",
+       "usage error"]
 
 
 @pytest.mark.parametrize("kind", BAD)
 def test_bad_input_gets_one_line_and_exit_2(user, capsys, kind):
     argv, message = _bad(user, kind)
-    with pytest.raises(SystemExit) if kind == "missing budget" else _nullcontext() as exc:
+    with pytest.raises(SystemExit) if kind == "usage error" else _nullcontext() as exc:
         code, stdout, err = run(capsys, *argv)
-    if kind == "missing budget":
+    if kind == "usage error":
         code = exc.value.code
         err = capsys.readouterr().err
     assert code == 2

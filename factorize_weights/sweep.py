@@ -1,0 +1,209 @@
+"""Several budgets in one go (``sweep``) and the smallest budget within an accuracy loss
+(``compress --max-drop``). Both prepare spectra and calibration statistics once and reuse them.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import math
+import os
+import shutil
+import tempfile
+import time
+from pathlib import Path
+
+from ._version import __version__
+from .allocate import check_feasible
+from .budget import parse_budget
+from .config import CompressConfig
+from .errors import InputError
+from .pipeline import Prepared, prepare, realize
+
+POINT_UNITS = {"top1": "percentage points", "top5": "percentage points", "agreement": "percentage points",
+               "cosine": "cosine (absolute)", "mse": "mse (absolute increase)"}
+
+
+def parse_budget_list(text: str) -> list[str]:
+    """``params=0.8,0.6,0.4`` -> ["params=0.8", "params=0.6", "params=0.4"]; a part without a kind
+    takes the previous part's kind."""
+    out, kind = [], None
+    for part in (p.strip() for p in text.split(",")):
+        if not part:
+            continue
+        if "=" in part:
+            kind = part.split("=", 1)[0].strip()
+        elif kind is None:
+            raise InputError(f"--budgets {text!r}: the first entry needs a kind, e.g. params=0.8,0.6")
+        else:
+            part = f"{kind}={part}"
+        parse_budget(part)
+        out.append(part)
+    if not out:
+        raise InputError(f"--budgets {text!r}: no budgets given")
+    if len(set(out)) != len(out):
+        raise InputError(f"--budgets {text!r}: a budget is listed twice")
+    return out
+
+
+def drop_of(metric) -> float:
+    """How much worse the factorized model is, in the metric's own units (positive = worse)."""
+    return metric.before - metric.after if metric.higher_is_better else metric.after - metric.before
+
+
+def _point(result, budget: str) -> dict:
+    report = result.report
+    t = report["totals"]
+    layers = [e for e in report["layers"] if e["rank"] is not None]
+    return {
+        "budget": budget,
+        "params_before": t["params_before"],
+        "params_after": t["params_after"],
+        "params_ratio_pct": 100 * t["params_ratio"],
+        "flops_ratio_pct": 100 * t["flops_ratio"] if "flops_ratio" in t else None,
+        "layers_factorized": t["layers_factorized"],
+        "mean_weight_error": (sum(e["weight_error"] for e in layers) / len(layers)) if layers else 0.0,
+        "weight_error_squared_sum": sum(e["weight_error"] ** 2 for e in report["layers"]),
+        "metric": report["metric"],
+        "latency": report["latency"],
+        "ranks": {e["name"]: e["rank"] for e in report["layers"]},
+    }
+
+
+def sweep(model, config: CompressConfig, budgets: list[str], *, heldout=None, calibration=None,
+          out=None, force: bool = False, save_models: bool = False, sources: dict | None = None) -> dict:
+    """Compress at every budget, reusing one preparation; write sweep.json/.csv/.md/.html."""
+    from . import store
+
+    if out is not None:
+        store.check_out_dir(out, force)
+    if save_models and out is None:
+        raise InputError("--save-models needs --out")
+    t0 = time.perf_counter()
+    prep = prepare(model, config, heldout, calibration, budgets=budgets)
+    t_prepare = time.perf_counter() - t0
+    points, results = [], []
+    t0 = time.perf_counter()
+    for budget in budgets:
+        result = realize(prep, budget, sources=sources, layer_errors=False)
+        points.append(_point(result, budget))
+        if save_models:
+            results.append((budget, result))
+    t_points = time.perf_counter() - t0
+    doc = {"tool_version": __version__, "method": prep.method, "sequential": prep.sequential,
+           "sources": sources or {}, "config": config.to_dict(), "points": points,
+           "heldout": None if heldout is None else {"source": heldout.source, "sha256": heldout.sha256},
+           "calibration": None if prep.calibration is None else prep.calibration.summary(),
+           "wall_seconds": {"prepare": round(t_prepare, 3), "points": round(t_points, 3)}}
+    if out is not None:
+        _write_sweep(Path(out), doc, results, force)
+    return doc
+
+
+def _slug(budget: str) -> str:
+    return budget.replace("=", "-").replace(".", "_")
+
+
+def _write_sweep(out: Path, doc: dict, results, force: bool) -> None:
+    from . import store
+    from .report_html import render_sweep_html
+
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.tmp-", dir=out.resolve().parent))
+    try:
+        (tmp / "sweep.json").write_text(json.dumps(doc, indent=2, allow_nan=False) + "\n", encoding="utf-8")
+        (tmp / "sweep.csv").write_text(render_csv(doc), encoding="utf-8")
+        (tmp / "sweep.md").write_text(render_markdown(doc), encoding="utf-8")
+        (tmp / "sweep.html").write_text(render_sweep_html(doc), encoding="utf-8")
+        for budget, result in results:
+            store.write_run(tmp / _slug(budget), result.model, result.records, result.plan, result.report,
+                            CompressConfig(**{**doc["config"], "budget": budget}), spectra=result.spectra)
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o777 & ~umask)
+        if out.exists():
+            trash = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=out.resolve().parent))
+            os.replace(out, trash / "old")
+            os.replace(tmp, out)
+            shutil.rmtree(trash, ignore_errors=True)
+        else:
+            os.replace(tmp, out)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+
+
+def render_csv(doc: dict) -> str:
+    buf = io.StringIO()
+    writer = csv.writer(buf)
+    writer.writerow(["budget", "params_before", "params_after", "params_ratio_pct", "layers_factorized",
+                     "mean_weight_error", "metric", "metric_before", "metric_after", "metric_delta",
+                     "latency_before_ms", "latency_after_ms"])
+    for p in doc["points"]:
+        m, lat = p["metric"] or {}, p["latency"] or {}
+        writer.writerow([p["budget"], p["params_before"], p["params_after"], f"{p['params_ratio_pct']:.3f}",
+                         p["layers_factorized"], f"{p['mean_weight_error']:.6f}", m.get("name", ""),
+                         m.get("before", ""), m.get("after", ""), m.get("delta", ""),
+                         lat.get("before_ms", ""), lat.get("after_ms", "")])
+    return buf.getvalue()
+
+
+def render_markdown(doc: dict) -> str:
+    lines = ["# Budget sweep", "", f"Method `{doc['method']}`; spectra and calibration once "
+             f"({doc['wall_seconds']['prepare']:.2f} s), all points {doc['wall_seconds']['points']:.2f} s.", "",
+             "| budget | params kept | parameters after | layers factorized | mean weight error | metric after | delta | latency ms |",
+             "|---|---:|---:|---:|---:|---:|---:|---:|"]
+    for p in doc["points"]:
+        m, lat = p["metric"], p["latency"]
+        after = "" if not m else format(m["after"], ".4f")
+        delta = "" if not m else format(m["delta"], "+.4f")
+        ms = "" if not lat else format(lat["after_ms"], ".3f")
+        lines.append(f"| `{p['budget']}` | {p['params_ratio_pct']:.1f}% | {p['params_after']:,} | {p['layers_factorized']} | "
+                     f"{p['mean_weight_error']:.4f} | {after} | {delta} | {ms} |")
+    return "\n".join(lines) + "\n"
+
+
+def search_budget(prep: Prepared, max_drop: float, *, steps: int = 7) -> tuple[str, dict, object]:
+    """The smallest params fraction whose held-out drop is at most ``max_drop``, by bisection.
+
+    Returns (budget, search record for the report, result at that budget or None when the answer
+    is params=1, i.e. nothing can be factorized within the drop).
+    """
+    if prep.heldout is None:
+        raise InputError("--max-drop needs --heldout (the drop is measured on it)")
+    chosen = prep.selected
+    lo = 1.0  # the smallest fraction on a coarse ladder that some plan can meet
+    for f in (0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1.0):
+        try:
+            check_feasible(chosen, parse_budget(f"params={f}"), rank_multiple=prep.config.rank_multiple,
+                           min_rank=prep.config.min_rank)
+            lo = f
+            break
+        except InputError:
+            continue
+    tried, best = [], None
+
+    def evaluate(f: float):
+        budget = f"params={f:.4f}".rstrip("0").rstrip(".")
+        result = realize(prep, budget, latency=False, layer_errors=False)
+        d = drop_of(result.metric)
+        tried.append({"budget": budget, "metric": result.metric.after, "drop": d, "within": d <= max_drop})
+        return d <= max_drop, budget, result
+
+    ok, budget, result = evaluate(lo)
+    if ok:
+        best = (budget, result)
+    else:
+        hi = 1.0
+        for _ in range(steps):
+            mid = math.floor((lo + hi) / 2 * 1e4) / 1e4
+            if mid <= lo or mid >= hi:
+                break
+            ok, budget, result = evaluate(mid)
+            if ok:
+                hi, best = mid, (budget, result)
+            else:
+                lo = mid
+    record = {"max_drop": max_drop, "unit": POINT_UNITS[prep.metric_name], "evaluations": len(tried),
+              "tried": tried, "chosen": best[0] if best else "params=1"}
+    return (best[0], record, best[1]) if best else ("params=1", record, None)
