@@ -27,6 +27,7 @@ code { font-size: 0.9em; }
 .grid { display: grid; grid-template-columns: repeat(auto-fill, minmax(330px, 1fr)); gap: 0.75rem; }
 figure { margin: 0; border: 1px solid #e0e0e0; padding: 0.25rem; break-inside: avoid; }
 figure svg { width: 100%; height: auto; display: block; }
+figure.chart { max-width: 760px; }
 figcaption { font-size: 0.8rem; color: #444; }
 .bad { color: #b00020; font-weight: 600; } .good { color: #006b3c; font-weight: 600; }
 @media print { body { margin: 0; max-width: none; } h2 { break-after: avoid; } section { break-inside: avoid; }
@@ -39,7 +40,8 @@ def _svg(fig) -> str:
     import matplotlib.pyplot as plt
 
     buf = io.StringIO()
-    fig.savefig(buf, format="svg")
+    # no metadata block: no dates (reproducible files) and no namespace URLs in the page
+    fig.savefig(buf, format="svg", metadata={"Creator": None, "Date": None, "Format": None, "Type": None})
     plt.close(fig)
     text = buf.getvalue()
     return text[text.index("<svg"):]
@@ -183,12 +185,13 @@ def render_report_html(report: dict, spectra: dict) -> str:
     return _page("Factorization report", body)
 
 
-def sweep_figure(points: list[dict], x_key: str, x_label: str) -> str:
+def sweep_figure(points: list[dict], x_key: str, x_label: str, *, line: bool = True) -> str:
     plt = _pyplot()
     fig, ax = plt.subplots(figsize=(5.5, 3.2))
+    points = sorted(points, key=lambda p: p[x_key])
     xs = [p[x_key] for p in points]
     ys = [p["metric"]["after"] for p in points]
-    ax.plot(xs, ys, color=BLUE, marker="o", lw=1.5, label="factorized")
+    ax.plot(xs, ys, color=BLUE, marker="o", lw=1.5 if line else 0, label="factorized")
     ax.axhline(points[0]["metric"]["before"], color=GREY, ls="--", lw=1, label="original")
     for p, x, y in zip(points, xs, ys):
         ax.annotate(p["budget"], (x, y), textcoords="offset points", xytext=(4, -10), fontsize=7)
@@ -206,11 +209,13 @@ def render_sweep_html(sweep: dict) -> str:
             f"spectra and calibration computed once ({sweep['wall_seconds']['prepare']:.2f} s), then "
             f"{sweep['wall_seconds']['points']:.2f} s for all points.</p>"]
     if points and points[0].get("metric"):
-        body.append(f"<figure>{sweep_figure(points, 'params_ratio_pct', 'parameters kept (% of selected layers)')}</figure>")
+        body.append(f"<figure class=\"chart\">{sweep_figure(points, 'params_ratio_pct', 'parameters kept (% of selected layers)')}"
+                    "<figcaption>Held-out metric against parameters kept; dashed: the original model.</figcaption></figure>")
         if all(p.get("latency") for p in points):
             for p in points:
                 p["_after_ms"] = p["latency"]["after_ms"]
-            body.append(f"<figure>{sweep_figure(points, '_after_ms', 'measured latency (ms)')}</figure>")
+            body.append(f"<figure class=\"chart\">{sweep_figure(points, '_after_ms', 'measured median latency (ms)', line=False)}"
+                        "<figcaption>Held-out metric against measured CPU latency of the factorized model.</figcaption></figure>")
             for p in points:
                 p.pop("_after_ms")
     head = ["budget", "params kept", "parameters after", "layers factorized", "metric after", "delta", "median ms"]
