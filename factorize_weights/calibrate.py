@@ -36,6 +36,7 @@ class Calibration:
     stats: dict
     whitenings: dict[str, Whitening]
     warnings: list[str] = field(default_factory=list)
+    damping: float = 0.0
 
     def summary(self) -> dict:
         gram_bytes = int(sum(st["gram"].nbytes for st in self.stats.values()))
@@ -47,6 +48,7 @@ class Calibration:
             "gram_bytes": gram_bytes,
             "peak_rss_bytes": _peak_rss(),
             "warnings": list(self.warnings),
+            "ridge": self.damping,
         }
 
 
@@ -70,14 +72,14 @@ def calibrate(model, records: list[LayerRecord], data: HeldOut, config: Compress
         if st["gram"] is None:
             raise InputError(f"--calibration {data.source}: layer {record.name!r} never ran on the calibration inputs")
         n = record.matrix_shape[1]
-        wh = whitening(st["gram"])
+        wh = whitening(_ridge(st["gram"], config.damping))
         if st["rows"] < n:
             warnings.append(
                 f"layer {record.name!r}: {st['rows']} calibration rows for {n} input features; its input "
-                f"second moment is rank-deficient, so it was damped ({wh.clamped} directions raised to the floor)"
+                f"second moment is rank-deficient (a ridge of {config.damping:g} x its mean diagonal keeps it usable)"
             )
         whitenings[record.name] = wh
-    return Calibration(data, stats, whitenings, warnings)
+    return Calibration(data, stats, whitenings, warnings, config.damping)
 
 
 def whitened_spectra(records: list[LayerRecord], cal: Calibration) -> dict[str, Spectrum]:
@@ -101,12 +103,23 @@ def sequential_factors(model, records: list[LayerRecord], ranks: dict, cal: Cali
     for name in order:
         record = chosen[name]
         st = backend.cross_statistics(model, current, record, _batches(cal.data, config))
-        wh_new = whitening(st["gram"])
-        target = regression_target(backend.weight_matrix(record), st["cross"], wh_new)
+        # the same ridge on both moments: where the calibration data says nothing, M stays W
+        wh_new = whitening(_ridge(st["gram"], config.damping))
+        target = regression_target(backend.weight_matrix(record), _ridge(st["cross"], config.damping, st["gram"]), wh_new)
         factors[name] = whitened_factors(target, wh_new, ranks[name], split=config.split)
         fits[name] = {"method": wh_new.method, "damping": wh_new.damping}
         current = backend.rewrite(model, records, factors)
     return factors, fits
+
+
+def _ridge(matrix: np.ndarray, alpha: float, reference: np.ndarray | None = None) -> np.ndarray:
+    """``matrix + alpha * mean(diag(reference)) * I``: a relative ridge (common practice, e.g. 1%
+    of the mean input energy) that keeps directions the calibration set never visits."""
+    if alpha <= 0:
+        return matrix
+    ref = matrix if reference is None else reference
+    lam = alpha * float(np.mean(np.diag(ref)))
+    return matrix + lam * np.eye(matrix.shape[0])
 
 
 def _first_inputs(data: HeldOut):

@@ -73,6 +73,8 @@ def _plan_options(p: argparse.ArgumentParser, *, sweep: bool = False) -> None:
     g = p.add_argument_group("calibration (data-aware factors; never the held-out set)")
     g.add_argument("--calibration", metavar="DATA", help="calibration .npz (inputs[, labels]) or FILE.py:FUNCTION")
     g.add_argument("--allow-overlap", action="store_true", help="allow the same data for --calibration and --heldout")
+    g.add_argument("--damping", type=float, default=0.01, metavar="A",
+                   help="ridge added to the calibration moments, as a fraction of their mean diagonal (default 0.01)")
     g.add_argument("--sequential", action=argparse.BooleanOptionalAction, default=None,
                    help="refit layers in forward order to the original outputs (reduced-rank regression); "
                         "on by default with whitened factors")
@@ -231,7 +233,7 @@ def _plan_config(args, budget: str) -> CompressConfig:
                    latency_repeats=args.latency_repeats, latency_warmup=args.latency_warmup,
                    export_onnx=getattr(args, "export_onnx", False), int8=getattr(args, "int8", False),
                    sequential=args.sequential, recover=args.recover, recover_lr=args.recover_lr,
-                   allow_overlap=args.allow_overlap)
+                   allow_overlap=args.allow_overlap, damping=args.damping)
 
 
 def _calibration(args):
