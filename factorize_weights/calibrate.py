@@ -58,8 +58,11 @@ def _peak_rss() -> int:
     return int(peak if sys.platform == "darwin" else peak * 1024)
 
 
-def _batches(data: HeldOut, config: CompressConfig):
-    return (x for x, _ in data.batches(config.batch_size))
+def _batches(data: HeldOut, config: CompressConfig, desc: str = "calibration"):
+    from .pipeline import _bar
+
+    total = -(-len(data) // config.batch_size)
+    return (x for x, _ in _bar(data.batches(config.batch_size), config, desc, total, "batch"))
 
 
 def calibrate(model, records: list[LayerRecord], data: HeldOut, config: CompressConfig) -> Calibration:

@@ -6,6 +6,7 @@ one step, so a failed or interrupted run never leaves a half-written folder behi
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import shutil
@@ -81,30 +82,18 @@ def write_model(model, folder: Path) -> list[str]:
     return ["model.safetensors"]
 
 
-def write_run(out, model, records, plan: Plan, report: dict, config: CompressConfig, *, force: bool = False,
-              extra: dict[str, Path] | None = None, spectra: dict | None = None) -> Path:
-    """Write the model, plan.json, report.json and report.md (and ``extra`` files, moved in under
-    their given names) into ``out`` atomically; return the folder."""
-    out = Path(out)
-    check_out_dir(out, force)
+@contextlib.contextmanager
+def atomic_folder(out: Path):
+    """Yield a fresh temporary folder next to ``out``; on success it replaces ``out`` in one rename
+    (with the permissions the umask asks for), on any error it is removed and ``out`` untouched."""
     tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.tmp-", dir=out.resolve().parent))
     umask = os.umask(0)
     os.umask(umask)
     try:
-        write_model(model, tmp)
-        for name, src in (extra or {}).items():
-            shutil.move(str(src), tmp / name)
-        _dump(tmp / "plan.json", plan_dict(records, plan, config, report.get("method", "svd")))
-        _dump(tmp / "report.json", report)
-        (tmp / "report.md").write_text(render_markdown(report), encoding="utf-8")
-        if spectra is not None:
-            from .report_html import render_report_html
-
-            (tmp / "report.html").write_text(render_report_html(report, spectra), encoding="utf-8")
-        # mkdtemp makes a private folder; give the result the permissions the user's umask asks for
-        os.chmod(tmp, 0o777 & ~umask)
-        for path in tmp.iterdir():
-            os.chmod(path, 0o666 & ~umask)
+        yield tmp
+        os.chmod(tmp, 0o777 & ~umask)  # mkdtemp makes a private folder
+        for path in tmp.rglob("*"):
+            os.chmod(path, (0o777 if path.is_dir() else 0o666) & ~umask)
         if out.exists():
             trash = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=out.resolve().parent))
             os.replace(out, trash / "old")
@@ -115,6 +104,31 @@ def write_run(out, model, records, plan: Plan, report: dict, config: CompressCon
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
+
+
+def write_run_files(folder: Path, model, records, plan: Plan, report: dict, config: CompressConfig, *,
+                    extra: dict[str, Path] | None = None, spectra: dict | None = None) -> None:
+    """The model, plan.json, report.json, report.md and report.html into an existing folder."""
+    write_model(model, folder)
+    for name, src in (extra or {}).items():
+        shutil.move(str(src), folder / name)
+    _dump(folder / "plan.json", plan_dict(records, plan, config, report.get("method", "svd")))
+    _dump(folder / "report.json", report)
+    (folder / "report.md").write_text(render_markdown(report), encoding="utf-8")
+    if spectra is not None:
+        from .report_html import render_report_html
+
+        (folder / "report.html").write_text(render_report_html(report, spectra), encoding="utf-8")
+
+
+def write_run(out, model, records, plan: Plan, report: dict, config: CompressConfig, *, force: bool = False,
+              extra: dict[str, Path] | None = None, spectra: dict | None = None) -> Path:
+    """Write the model, plan.json, report.json, report.md, report.html (and ``extra`` files, moved
+    in under their given names) into ``out`` atomically; return the folder."""
+    out = Path(out)
+    check_out_dir(out, force)
+    with atomic_folder(out) as tmp:
+        write_run_files(tmp, model, records, plan, report, config, extra=extra, spectra=spectra)
     return out
 
 

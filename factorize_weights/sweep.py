@@ -8,9 +8,6 @@ import csv
 import io
 import json
 import math
-import os
-import shutil
-import tempfile
 import time
 from pathlib import Path
 
@@ -85,7 +82,9 @@ def sweep(model, config: CompressConfig, budgets: list[str], *, heldout=None, ca
     t_prepare = time.perf_counter() - t0
     points, results = [], []
     t0 = time.perf_counter()
-    for budget in budgets:
+    from .pipeline import _bar
+
+    for budget in _bar(budgets, config, "sweep", unit="budget"):
         result = realize(prep, budget, sources=sources, layer_errors=False)
         points.append(_point(result, budget))
         if save_models:
@@ -109,28 +108,16 @@ def _write_sweep(out: Path, doc: dict, results, force: bool) -> None:
     from . import store
     from .report_html import render_sweep_html
 
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.tmp-", dir=out.resolve().parent))
-    try:
+    with store.atomic_folder(out) as tmp:
         (tmp / "sweep.json").write_text(json.dumps(doc, indent=2, allow_nan=False) + "\n", encoding="utf-8")
         (tmp / "sweep.csv").write_text(render_csv(doc), encoding="utf-8")
         (tmp / "sweep.md").write_text(render_markdown(doc), encoding="utf-8")
         (tmp / "sweep.html").write_text(render_sweep_html(doc), encoding="utf-8")
         for budget, result in results:
-            store.write_run(tmp / _slug(budget), result.model, result.records, result.plan, result.report,
-                            CompressConfig(**{**doc["config"], "budget": budget}), spectra=result.spectra)
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o777 & ~umask)
-        if out.exists():
-            trash = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=out.resolve().parent))
-            os.replace(out, trash / "old")
-            os.replace(tmp, out)
-            shutil.rmtree(trash, ignore_errors=True)
-        else:
-            os.replace(tmp, out)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
+            folder = tmp / _slug(budget)
+            folder.mkdir()
+            store.write_run_files(folder, result.model, result.records, result.plan, result.report,
+                                  CompressConfig(**{**doc["config"], "budget": budget}), spectra=result.spectra)
 
 
 def render_csv(doc: dict) -> str:

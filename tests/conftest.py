@@ -32,11 +32,11 @@ def validate_every_report(monkeypatch):
     from factorize_weights import cli, report, store, sweep
 
     schemas = {name: report.schema(name) for name in ("report", "sweep")}
-    real_write, real_print, real_sweep_write = store.write_run, cli._print_json, sweep._write_sweep
+    real_write, real_print, real_sweep_write = store.write_run_files, cli._print_json, sweep._write_sweep
 
-    def write_run(out, model, records, plan, rep, *args, **kwargs):
+    def write_run_files(folder, model, records, plan, rep, *args, **kwargs):
         jsonschema.validate(rep, schemas["report"])
-        return real_write(out, model, records, plan, rep, *args, **kwargs)
+        return real_write(folder, model, records, plan, rep, *args, **kwargs)
 
     def print_json(obj):
         if "layers" in obj and "budget" in obj:
@@ -49,6 +49,6 @@ def validate_every_report(monkeypatch):
         jsonschema.validate(doc, schemas["sweep"])
         return real_sweep_write(out, doc, *args, **kwargs)
 
-    monkeypatch.setattr(store, "write_run", write_run)
+    monkeypatch.setattr(store, "write_run_files", write_run_files)
     monkeypatch.setattr(cli, "_print_json", print_json)
     monkeypatch.setattr(sweep, "_write_sweep", write_sweep)

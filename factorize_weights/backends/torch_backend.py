@@ -386,12 +386,7 @@ def measure_positions(model: nn.Module, records: list[LayerRecord], sample: np.n
                 record.positions += int(np.prod(shape[2:]))
 
         hooks.append(record.handle.register_forward_hook(hook))
-    try:
-        with _inference(model):
-            model(_to_tensor(sample[:1], model))
-    finally:
-        for h in hooks:
-            h.remove()
+    _run_once(model, sample, hooks)
 
 
 def layer_output_errors(
@@ -524,13 +519,18 @@ def call_order(model: nn.Module, records: list[LayerRecord], sample: np.ndarray)
     order: list[str] = []
     hooks = [r.handle.register_forward_hook(lambda m, a, o, name=r.name: order.append(name) if name not in order else None)
              for r in records]
+    _run_once(model, sample, hooks)
+    return order + [r.name for r in records if r.name not in order]
+
+
+def _run_once(model: nn.Module, sample: np.ndarray, hooks: list) -> None:
+    """One forward pass on the first sample, then remove ``hooks`` whatever happens."""
     try:
         with _inference(model):
             model(_to_tensor(sample[:1], model))
     finally:
         for h in hooks:
             h.remove()
-    return order + [r.name for r in records if r.name not in order]
 
 
 def cross_statistics(original: nn.Module, current: nn.Module, record: LayerRecord, batches) -> dict:
