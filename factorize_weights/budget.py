@@ -64,6 +64,8 @@ def parse_budget(text: str) -> Budget:
     kind = kind.lower()
     if kind not in KINDS:
         raise InputError(f"--budget {raw!r}: unknown kind {kind!r}; expected one of {', '.join(KINDS)}")
+    if value_text.startswith("-"):
+        raise InputError(f"--budget {raw!r}: {kind} must be positive; got {value_text}")
     match = re.fullmatch(r"([0-9]*\.?[0-9]+(?:[eE][-+]?[0-9]+)?)\s*([kKmMgG]?)", value_text)
     if match is None:
         raise InputError(f"--budget {raw!r}: {value_text!r} is not a number")

@@ -79,7 +79,8 @@ def calibrate(model, records: list[LayerRecord], data: HeldOut, config: Compress
         if st["rows"] < n:
             warnings.append(
                 f"layer {record.name!r}: {st['rows']} calibration rows for {n} input features; its input "
-                f"second moment is rank-deficient (a ridge of {config.damping:g} x its mean diagonal keeps it usable)"
+                + (f"second moment is rank-deficient (a ridge of {config.damping:g} x its mean diagonal keeps it usable)"
+                   if config.damping > 0 else "second moment is rank-deficient and was only floored (--damping 0)")
             )
         whitenings[record.name] = wh
     return Calibration(data, stats, whitenings, warnings, config.damping)

@@ -48,7 +48,7 @@ def _common(p: argparse.ArgumentParser) -> None:
                    help="use the embedded demo model (PyTorch, or its ONNX export) and its held-out set")
     p.add_argument("--debug", action="store_true", help="show tracebacks")
     p.add_argument("-q", "--quiet", action="store_true", help="no progress bars")
-    p.add_argument("-v", "--verbose", action="store_true", help="stage timings and written files on stderr")
+    p.add_argument("-v", "--verbose", action="store_true", help="stage timings on stderr")
     p.add_argument("--json", action="store_true", help="print the report as JSON on stdout (nothing else)")
 
 
@@ -182,8 +182,12 @@ def _load_model(args):
     if ":" not in spec:
         raise InputError(f"--model {spec!r}: not an ONNX file and not FILE.py:FACTORY or package.module:FACTORY")
     model = torch_backend.build_model(spec, args.weights)
-    sources = {"model": spec, "format": "torch", "weights": args.weights,
-               "weights_sha256": file_sha256(args.weights) if args.weights else None}
+    from pathlib import Path
+
+    target = spec.rpartition(":")[0]
+    sources = {"model": spec, "format": "torch",
+               "model_sha256": file_sha256(target) if Path(target).is_file() else None,
+               "weights": args.weights, "weights_sha256": file_sha256(args.weights) if args.weights else None}
     return model, _run_sources(args, sources)
 
 
@@ -271,16 +275,21 @@ def cmd_compress(args) -> int:
 
     if (args.budget is None) == (args.max_drop is None):
         raise InputError("give exactly one of --budget and --max-drop")
-    if args.max_drop is not None and args.max_drop < 0:
-        raise InputError(f"--max-drop must be >= 0; got {args.max_drop}")
+    import math
+
+    for flag, value in (("--max-drop", args.max_drop), ("--fail-over", args.fail_over)):
+        if value is not None and not (math.isfinite(value) and value >= 0):
+            raise InputError(f"{flag} must be a finite number >= 0 (in the metric's units); got {value}")
     if (args.max_drop is not None or args.fail_over is not None) and not args.heldout and not args.demo:
         raise InputError(f"{'--max-drop' if args.max_drop is not None else '--fail-over'} needs --heldout "
                          "(the drop is measured on it)")
     config = _plan_config(args, args.budget or "params=1")
     model, sources = _load_model(args)
-    if args.out:
-        check_out_dir(args.out, args.force)
     heldout, calibration = _heldout(args), _calibration(args)
+    if args.out:
+        from .pipeline import input_paths
+
+        check_out_dir(args.out, args.force, input_paths(sources, heldout, calibration))
     check_outputs_requested(model, config, heldout, args.out)
     if args.max_drop is not None:
         prep = prepare(model, config, heldout, calibration, budgets=["params=1"])
@@ -308,7 +317,7 @@ def cmd_compress(args) -> int:
                   + ", ".join(f"{t['budget']} {t['drop']:+.2f}" for t in sr["tried"]) + ")")
         print(summary_line(result.report))
         if args.out:
-            print(f"wrote {args.out}/ ({', '.join(sorted(p.name for p in Path(args.out).iterdir()))})")
+            print(f"wrote {str(args.out).rstrip('/')}/ ({', '.join(sorted(p.name for p in Path(args.out).iterdir()))})")
     if args.fail_over is not None and result.metric is not None:
         drop = drop_of(result.metric)
         if drop > args.fail_over:
@@ -360,6 +369,28 @@ def cmd_evaluate(args) -> int:
     return 0
 
 
+def _run_file_value(path, key: str, value, action):
+    """Check a run-file value against the option it sets, as the command line would."""
+    def bad(expected: str):
+        return InputError(f"--config {path}: {key} must be {expected}; got {value!r}")
+
+    if isinstance(action, (argparse._StoreTrueAction, argparse.BooleanOptionalAction)):
+        if not isinstance(value, bool):
+            raise bad("true or false")
+    elif isinstance(action, argparse._AppendAction):
+        if not (isinstance(value, list) and all(isinstance(v, str) for v in value)):
+            raise bad("a string or a list of strings")
+    elif action.type in (int, float):
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or (action.type is int and not isinstance(value, int)):
+            raise bad("an integer" if action.type is int else "a number")
+        value = action.type(value)
+    elif not isinstance(value, str):
+        raise bad("a string (quote it in TOML)")
+    if action.choices is not None and value not in action.choices and not isinstance(value, list):
+        raise bad(f"one of {', '.join(map(str, action.choices))}")
+    return value
+
+
 def apply_run_file(parser, argv: list[str], args):
     """Re-parse with the TOML run file's values as defaults: flags on the command line win.
     Keys are the long option names (``rank-multiple`` or ``rank_multiple``); unknown keys are
@@ -380,18 +411,18 @@ def apply_run_file(parser, argv: list[str], args):
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
         raise InputError(f"--config {path}: not valid TOML ({exc})") from exc
     sub = parser._subcommands[args.command]
-    dests = {a.dest for a in sub._actions if a.dest not in ("help", "config", "func", "model_path")}
+    actions = {a.dest: a for a in sub._actions if a.dest not in ("help", "config", "func", "model_path")}
     defaults, unknown = {}, []
     for key, value in values.items():
         dest = key.replace("-", "_")
-        if dest not in dests:
+        if dest not in actions:
             unknown.append(key)
             continue
         if dest == "budgets" and isinstance(value, list):
             value = ",".join(str(v) for v in value)
         if dest in ("only", "skip") and isinstance(value, str):
             value = [value]
-        defaults[dest] = value
+        defaults[dest] = _run_file_value(path, key, value, actions[dest])
     if unknown:
         raise InputError(f"--config {path}: unknown key(s) {', '.join(sorted(unknown))} for '{args.command}'")
     sub.set_defaults(**defaults)

@@ -327,17 +327,31 @@ def realize(prep: Prepared, budget: str, *, sources: dict | None = None, latency
     return CompressResult(factorized, plan, prep.records, prep.spectra, metric, report, errors)
 
 
+def input_paths(sources: dict | None, *data) -> tuple:
+    """Files a run reads (model, weights, run file, data): an output folder must not hold them."""
+    sources = sources or {}
+    paths = [sources.get("model"), sources.get("weights"), (sources.get("config_file") or {}).get("path")]
+    if paths[0] and ":" in str(paths[0]) and not str(paths[0]).lower().endswith(".onnx"):
+        paths[0] = str(paths[0]).rpartition(":")[0]
+    paths += [d.source for d in data if d is not None]
+    return tuple(p for p in paths if p and Path(str(p)).exists())
+
+
 def check_outputs_requested(model, config: CompressConfig, heldout, out) -> None:
     """Refuse export/int8 requests that cannot be honoured, before any work."""
     backend = backend_for(model)
     if config.export_onnx:
         if not backend.__name__.endswith("torch_backend"):
             raise InputError("--export-onnx is for PyTorch models; this model is ONNX already")
-        if heldout is None or out is None:
-            raise InputError("--export-onnx needs --heldout (an example input to export with and check on) and --out")
+        if heldout is None:
+            raise InputError("--export-onnx needs --heldout (an example input to export with and check on)")
+        if out is None:
+            raise InputError("--export-onnx needs --out (the folder model.onnx is written to)")
     if config.int8:
-        if heldout is None or out is None:
-            raise InputError("--int8 needs --heldout (to compare the variants) and --out")
+        if heldout is None:
+            raise InputError("--int8 needs --heldout (to compare the variants)")
+        if out is None:
+            raise InputError("--int8 needs --out (the folder model.int8.onnx is written to)")
         if backend.__name__.endswith("torch_backend") and not config.export_onnx:
             raise InputError("--int8 quantizes ONNX models: give an ONNX model, or add --export-onnx")
 
@@ -346,17 +360,21 @@ def save_result(result: CompressResult, prep: Prepared, out, force: bool) -> Non
     """Export/int8 extras (when asked) and the output folder, atomically."""
     from . import store
 
+    import tempfile
+
     config, report, extra = prep.config, result.report, {}
-    if config.export_onnx:
-        extra["model.onnx"], report["export"] = export_checked(result.model, prep.heldout)
-    if config.int8:
-        t0 = time.perf_counter()
-        extra["model.int8.onnx"], report["int8"] = int8_comparison(prep.model, result.model, prep.heldout,
-                                                                   prep.metric_name, config, extra.get("model.onnx"))
-        report["wall_seconds"]["int8"] = round(time.perf_counter() - t0, 3)
-    if out is not None:
-        store.write_run(out, result.model, result.records, result.plan, report, config, force=force, extra=extra,
-                        spectra=result.spectra)
+    with tempfile.TemporaryDirectory(prefix="factorize-weights-") as work:
+        work = Path(work)
+        if config.export_onnx:
+            extra["model.onnx"], report["export"] = export_checked(result.model, prep.heldout, work)
+        if config.int8:
+            t0 = time.perf_counter()
+            extra["model.int8.onnx"], report["int8"] = int8_comparison(
+                prep.model, result.model, prep.heldout, prep.metric_name, config, extra.get("model.onnx"), work)
+            report["wall_seconds"]["int8"] = round(time.perf_counter() - t0, 3)
+        if out is not None:
+            store.write_run(out, result.model, result.records, result.plan, report, config, force=force,
+                            extra=extra, spectra=result.spectra)
 
 
 def compress(
@@ -391,7 +409,7 @@ def compress(
 
     config = config or CompressConfig()
     if out is not None:
-        store.check_out_dir(out, force)
+        store.check_out_dir(out, force, input_paths(sources, heldout, calibration))
     check_outputs_requested(model, config, heldout, out)
     prep = prepare(model, config, heldout, calibration)
     result = realize(prep, config.budget, sources=sources)
@@ -422,15 +440,12 @@ def measure_latency(original, factorized, heldout: HeldOut, config: CompressConf
     return {"runtime": runtime, "batch": config.latency_batch, "threads": config.latency_threads, **result}
 
 
-def export_checked(model, heldout: HeldOut):
+def export_checked(model, heldout: HeldOut, work: Path):
     """Export a factorized PyTorch model to ONNX and check it against torch in onnxruntime on the
-    first held-out batch; returns (path of the temporary file, report entry)."""
-    import tempfile
-
+    first held-out batch; returns (path of the file written in ``work``, report entry)."""
     from .backends import onnx_backend, torch_backend
 
-    folder = Path(tempfile.mkdtemp(prefix="factorize-weights-export-"))
-    path = folder / "model.onnx"
+    path = work / "model.onnx"
     inputs, _ = next(heldout.batches(64))
     torch_backend.export_onnx(model, inputs, path)
     exported = onnx_backend.load(path)
@@ -447,18 +462,16 @@ def export_checked(model, heldout: HeldOut):
 
 
 def int8_comparison(original, factorized, heldout: HeldOut, metric: str, config: CompressConfig,
-                    exported_path: Path | None = None):
+                    exported_path: Path | None, work: Path):
     """Original, factorized, int8-only and factorized+int8, side by side in onnxruntime: size on
-    disk, held-out metric and latency. Returns (path of factorized+int8 file, report entry)."""
-    import tempfile
-
+    disk, held-out metric and latency (unless ``latency_repeats`` is 0). Returns (path of the
+    factorized+int8 file in ``work``, report entry)."""
     from .backends import onnx_backend, torch_backend
 
     if not isinstance(original, onnx_backend.OnnxModel):  # a PyTorch run with --export-onnx
-        folder = Path(tempfile.mkdtemp(prefix="factorize-weights-int8-"))
         inputs, _ = next(heldout.batches(8))
-        torch_backend.export_onnx(original, inputs, folder / "original.onnx")
-        original, factorized = onnx_backend.load(folder / "original.onnx"), onnx_backend.load(exported_path)
+        torch_backend.export_onnx(original, inputs, work / "original.onnx")
+        original, factorized = onnx_backend.load(work / "original.onnx"), onnx_backend.load(exported_path)
     variants = {"original": original, "factorized": factorized,
                 "int8": onnx_backend.quantize_int8(original), "factorized+int8": onnx_backend.quantize_int8(factorized)}
     accs = {name: MetricAccumulator(metric) for name in variants}
@@ -466,20 +479,22 @@ def int8_comparison(original, factorized, heldout: HeldOut, metric: str, config:
         reference = onnx_backend.predict(original, inputs)
         for name, model in variants.items():
             accs[name].update(reference, onnx_backend.predict(model, inputs), labels)
-    batch = latency_mod.batch_of(heldout.inputs, config.latency_batch)
-    times = latency_mod.measure_many(
-        [onnx_backend.timer(m, batch, config.latency_threads) for m in variants.values()],
-        warmup=config.latency_warmup, repeats=max(config.latency_repeats, 1))
-    folder = Path(tempfile.mkdtemp(prefix="factorize-weights-int8-"))
+    times = [None] * len(variants)
+    if config.latency_repeats > 0:
+        batch = latency_mod.batch_of(heldout.inputs, config.latency_batch)
+        times = latency_mod.measure_many(
+            [onnx_backend.timer(m, batch, config.latency_threads) for m in variants.values()],
+            warmup=config.latency_warmup, repeats=config.latency_repeats)
     rows = []
     for (name, model), acc, t in zip(variants.items(), accs.values(), times):
-        path = folder / f"{name}.onnx"
+        path = work / f"{name.replace('+', '_')}.int8cmp.onnx"
         onnx_backend.save(model, path, external=False)
         result = acc.result()
         rows.append({"name": name, "size_bytes": path.stat().st_size, "metric": result.after,
                      "delta": result.after - accs["original"].result().after,
-                     "latency_ms": t["median_ms"], "latency_spread_ms": [t["p10_ms"], t["p90_ms"]]})
+                     "latency_ms": None if t is None else t["median_ms"],
+                     "latency_spread_ms": None if t is None else [t["p10_ms"], t["p90_ms"]]})
     entry = {"metric": metric, "runtime": "onnxruntime", "quantization": "dynamic, int8 weights (QInt8)",
              "batch": config.latency_batch, "threads": config.latency_threads, "variants": rows,
              "file": "model.int8.onnx"}
-    return folder / "factorized+int8.onnx", entry
+    return work / "factorized_int8.int8cmp.onnx", entry

@@ -88,7 +88,7 @@ def build_report(
             wh = calibration.whitenings[record.name]
             entry["calibration_rows"] = calibration.stats[record.name]["rows"]
             entry["whitening"] = {"method": wh.method, "damping": wh.damping, "clamped": wh.clamped}
-            if method == "whitened" and entry["rank"] is not None:
+            if method == "whitened" and entry["rank"] is not None and not sequential and not recovery:
                 # Eckart-Young on W S: the relative output error on the calibration inputs
                 entry["calibration_output_error"] = float(spectra[record.name].relative_error(entry["rank"]))
             if fits and record.name in fits:
@@ -284,7 +284,8 @@ def render_markdown(report: dict) -> str:
                   f"{q['threads']} thread(s). Metric: {q['metric']} (delta against the original).", "",
                   "| variant | size on disk | metric | delta | median ms |", "|---|---:|---:|---:|---:|"]
         lines += [f"| {v['name']} | {_fmt_int(v['size_bytes'])} B | {_fmt_metric(q['metric'], v['metric'])} | "
-                  f"{v['delta']:+.2f} | {v['latency_ms']:.3f} |" for v in q["variants"]]
+                  f"{v['delta']:+.2f} | {'' if v['latency_ms'] is None else format(v['latency_ms'], '.3f')} |"
+                  for v in q["variants"]]
     cal = report.get("calibration")
     if cal:
         lines += ["", f"Calibration: {cal['samples']} samples from `{cal['source']}` (SHA-256 "

@@ -175,7 +175,8 @@ def render_report_html(report: dict, spectra: dict) -> str:
     if q:
         body += ["<section><h2>int8 on top</h2>", _table(["variant", "size on disk", esc(q["metric"]), "delta", "median ms"],
                  [[esc(v["name"]), f"{_fmt_int(v['size_bytes'])} B", _fmt_metric(q["metric"], v["metric"]),
-                   f"{v['delta']:+.2f}", f"{v['latency_ms']:.3f}"] for v in q["variants"]]), "</section>"]
+                   f"{v['delta']:+.2f}", "" if v["latency_ms"] is None else f"{v['latency_ms']:.3f}"]
+                  for v in q["variants"]]), "</section>"]
     cal = report.get("calibration")
     if cal:
         body += ["<section><h2>Calibration</h2>", f"<p>{cal['samples']} samples from <code>{esc(cal['source'])}</code>; "

@@ -26,9 +26,21 @@ PLAN_VERSION = 1
 FILES = ("model.safetensors", "plan.json", "report.html", "report.json", "report.md")
 
 
-def check_out_dir(out: str | Path, force: bool) -> None:
-    """Refuse an existing non-empty folder (unless ``force``) or a path that is a file."""
+def check_out_dir(out: str | Path, force: bool, inputs: tuple = ()) -> None:
+    """Refuse an existing non-empty folder (unless ``force``), a path that is a file, and a folder
+    that holds any of ``inputs`` or the current folder (``--force`` would delete them)."""
+    if str(out).strip() == "":
+        raise InputError("--out: empty path")
     out = Path(out)
+    if out.is_dir():
+        root = out.resolve()
+        for item in [Path.cwd(), *(Path(p) for p in inputs if p)]:
+            try:
+                item.resolve().relative_to(root)
+            except ValueError:
+                continue
+            what = "the current folder" if item == Path.cwd() else f"the input {item}"
+            raise InputError(f"--out {out}: holds {what}; replacing the folder would delete it (choose another --out)")
     if out.exists() and not out.is_dir():
         raise InputError(f"--out {out}: exists and is not a folder")
     if out.is_dir() and any(out.iterdir()) and not force:

@@ -28,7 +28,7 @@ def parse_budget_list(text: str) -> list[str]:
     out, kind = [], None
     for part in (p.strip() for p in text.split(",")):
         if not part:
-            continue
+            raise InputError(f"--budgets {text!r}: an empty entry (two commas in a row?)")
         if "=" in part:
             kind = part.split("=", 1)[0].strip()
         elif kind is None:
@@ -74,7 +74,9 @@ def sweep(model, config: CompressConfig, budgets: list[str], *, heldout=None, ca
     from . import store
 
     if out is not None:
-        store.check_out_dir(out, force)
+        from .pipeline import input_paths
+
+        store.check_out_dir(out, force, input_paths(sources, heldout, calibration))
     if save_models and out is None:
         raise InputError("--save-models needs --out")
     t0 = time.perf_counter()

@@ -41,7 +41,7 @@ def test_parse_budget(text, kind, value, absolute):
 @pytest.mark.parametrize(
     "text, message",
     [("params", "expected KIND=VALUE"), ("size=0.3", "unknown kind 'size'"),
-     ("params=-0.2", "is not a number"), ("params=1.5", r"fraction must be in \(0, 1\]"),
+     ("params=-0.2", "params must be positive"), ("params=1.5", r"fraction must be in \(0, 1\]"),
      ("params=0", r"fraction must be in \(0, 1\]"), ("energy=1.2", r"energy fraction must be in \(0, 1\]"),
      ("error=1", r"relative error must be in \[0, 1\)"), ("energy=5k", "plain fraction"),
      ("params=abc", "is not a number")],

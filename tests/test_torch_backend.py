@@ -40,9 +40,34 @@ def test_discovery_finds_every_layer_and_gives_reasons():
     assert "transposed" in recs["up"].skip_reason
     assert "MultiheadAttention" in recs["attn.out_proj"].skip_reason
     assert "no rank would save" in recs["score"].skip_reason  # 1x24: break-even 0
-    assert recs["tied"].skip_reason is None
-    assert "shared with layer 'tied'" in recs["tied_again"].skip_reason
+    # both layers that share one weight stay dense: rewriting one would keep the dense copy alive
+    assert "shared with 'tied_again'" in recs["tied"].skip_reason
+    assert "shared with 'tied'" in recs["tied_again"].skip_reason
     assert recs["stem"].options["padding"] == (1, 1) and recs["stem"].has_bias
+
+
+def test_weights_tied_to_other_modules_aliases_and_parametrizations():
+    class Net(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.emb = nn.Embedding(50, 16)
+            self.head = nn.Linear(16, 50)
+            self.head.weight = self.emb.weight  # tied to an Embedding, not to a Linear
+            self.a = nn.Linear(16, 16)
+            self.b = self.a  # one module under two names
+            self.norm = nn.utils.parametrizations.weight_norm(nn.Linear(16, 16))
+            self.norm2 = nn.utils.parametrizations.weight_norm(nn.Linear(16, 16))
+
+    model = Net().eval()
+    recs = {r.name: r for r in tb.discover(model)}
+    assert "shared with 'emb'" in recs["head"].skip_reason
+    assert "reachable as 'a', 'b'" in recs["a"].skip_reason
+    # parametrized weights are computed tensors: not a tie, and they factorize like any other
+    assert recs["norm"].skip_reason is None and recs["norm2"].skip_reason is None
+    new = tb.rewrite(model, list(recs.values()), {"norm": svd_factors(tb.weight_matrix(recs["norm"]), 16)})
+    x = torch.randn(3, 16)
+    with torch.no_grad():
+        torch.testing.assert_close(new.norm(x), model.norm(x), rtol=1e-5, atol=1e-5)
 
 
 def test_only_and_skip_globs():

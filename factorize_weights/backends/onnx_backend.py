@@ -150,6 +150,9 @@ def discover(model: OnnxModel, *, only: Sequence[str] = (), skip: Sequence[str] 
 
 def _weight_problem(wname, inits, graph_inputs, producers) -> str | None:
     if wname in graph_inputs:
+        if wname in inits:
+            return (f"weight {wname!r} is also listed as a graph input, so it can be replaced at run time "
+                    "(re-export without keep_initializers_as_inputs to compress it)")
         return f"weight {wname!r} is a graph input (it can change at run time)"
     if wname in inits:
         return None

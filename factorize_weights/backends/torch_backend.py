@@ -168,7 +168,15 @@ def discover(
     selected when it matches some ``only`` pattern (or none are given) and no ``skip`` pattern.
     """
     records: list[LayerRecord] = []
-    owners: dict[int, str] = {}
+    # every place each Parameter object is registered, and every name each module is reachable
+    # under: a weight registered twice is tied (to an Embedding, another layer...), a module
+    # reachable twice is an alias; rewriting either would leave a dense copy behind
+    owners: dict[int, list[str]] = {}
+    for pname, param in model.named_parameters(remove_duplicate=False):
+        owners.setdefault(id(param), []).append(pname)
+    aliases: dict[int, list[str]] = {}
+    for mname, mod in model.named_modules(remove_duplicate=False):
+        aliases.setdefault(id(mod), []).append(mname)
     parents = {}
     for parent_name, parent in model.named_modules():
         for child_name, child in parent.named_children():
@@ -203,21 +211,25 @@ def discover(
             }
         record = LayerRecord(name, kind, shape, (m, n), module.bias is not None,
                              str(weight.dtype).removeprefix("torch."), options, handle=module)
-        record.skip_reason = _skip_reason(name, module, record, parents.get(id(module)), owners, only, skip)
-        owners.setdefault(id(weight), name)
+        record.skip_reason = _skip_reason(name, module, record, parents.get(id(module)), owners,
+                                          aliases.get(id(module), [name]), only, skip)
         records.append(record)
     return records
 
 
-def _skip_reason(name, module, record, parent, owners, only, skip) -> str | None:
+def _skip_reason(name, module, record, parent, owners, names, only, skip) -> str | None:
     if only and not _matches(name, only):
         return f"not matched by --only {' '.join(repr(p) for p in only)}"
     if skip and _matches(name, skip):
         return f"excluded by --skip {' '.join(repr(p) for p in skip if fnmatch.fnmatchcase(name, p))}"
     if isinstance(parent, nn.MultiheadAttention):
         return "read directly by its parent MultiheadAttention, so replacing it would have no effect"
-    if id(module.weight) in owners:
-        return f"weight is shared with layer {owners[id(module.weight)]!r} (tied weights)"
+    if len(names) > 1:
+        return f"the same module is reachable as {', '.join(repr(n) for n in names)} (an alias)"
+    own = module._parameters.get("weight")  # None for a parametrized weight (weight_norm etc.)
+    if own is not None and len(owners.get(id(own), [])) > 1:
+        others = [p.removesuffix(".weight") for p in owners[id(own)] if p != f"{name}.weight"]
+        return f"weight is shared with {', '.join(repr(o) for o in others)} (tied weights)"
     if not module.weight.dtype.is_floating_point:
         return f"weight dtype {record.dtype} is not floating point"
     groups = record.options.get("groups", 1)
