@@ -182,6 +182,8 @@ def _load_model(args):
     if ":" not in spec:
         raise InputError(f"--model {spec!r}: not an ONNX file and not FILE.py:FACTORY or package.module:FACTORY")
     model = torch_backend.build_model(spec, args.weights)
+    if not args.weights:
+        _warn(f"no --weights: {spec} is used with the weights its factory creates")
     from pathlib import Path
 
     target = spec.rpartition(":")[0]
@@ -246,8 +248,19 @@ def _calibration(args):
     return load_heldout(args.calibration, flag="--calibration") if args.calibration else None
 
 
+_WARNINGS: list[str] = []
+
+
 def _warn(text: str) -> None:
-    print(f"{PROG}: {_colour('warning', '33')}: {text}", file=sys.stderr)
+    """Queue a warning: printed when the command finishes, dropped when it fails (so a failure is
+    always exactly one line)."""
+    _WARNINGS.append(text)
+
+
+def _flush_warnings() -> None:
+    for text in _WARNINGS:
+        print(f"{PROG}: {_colour('warning', '33')}: {text}", file=sys.stderr)
+    _WARNINGS.clear()
 
 
 def _colour(text: str, code: str) -> str:
@@ -439,8 +452,12 @@ def main(argv: list[str] | None = None) -> int:
         if getattr(args, "config", None):
             args = apply_run_file(parser, argv, args)
         args.argv = argv
-        return args.func(args)
+        _WARNINGS.clear()
+        code = args.func(args)
+        _flush_warnings()
+        return code
     except InputError as exc:
+        _WARNINGS.clear()
         if args.debug:
             traceback.print_exc()
         print(f"{PROG}: {_colour('error', '31')}: {exc}", file=sys.stderr)

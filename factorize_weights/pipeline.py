@@ -134,7 +134,10 @@ def check_fits(model, data: HeldOut, flag: str = "--heldout") -> np.ndarray:
     try:
         outputs = backend.predict(model, first)
     except InputError as exc:
-        raise InputError(str(exc).replace("--heldout", flag, 1)) from exc
+        text = str(exc)
+        if text.startswith("--heldout:"):  # the backend's message without the file: name it
+            text = f"{flag} {data.source}:" + text[len("--heldout:"):]
+        raise InputError(text) from exc
     except Exception as exc:
         message = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise InputError(
