@@ -148,7 +148,9 @@ def load_weights(model: nn.Module, path: str | Path) -> None:
 
 
 def _describe(exc: BaseException) -> str:
-    text = str(exc).strip().splitlines()
+    import re
+
+    text = re.sub(r"\x1b\[[0-9;]*m", "", str(exc)).strip().splitlines()  # torch colours some errors
     return f"{type(exc).__name__}: {text[0]}" if text else type(exc).__name__
 
 
