@@ -411,9 +411,13 @@ def _session(model: OnnxModel, threads: int | None = None, extra_outputs: tuple 
         if proto.ByteSize() < TWO_GB:
             source = proto.SerializeToString()
         else:  # too large for one protobuf: hand onnxruntime a file with external data
+            import atexit
+            import shutil
             import tempfile
 
-            source = str(Path(tempfile.mkdtemp(prefix="factorize-weights-ort-")) / "model.onnx")
+            folder = tempfile.mkdtemp(prefix="factorize-weights-ort-")
+            atexit.register(shutil.rmtree, folder, True)  # the session reads it lazily: remove at exit
+            source = str(Path(folder) / "model.onnx")
             save(OnnxModel(proto), source, external=True)
         model._sessions[key] = ort.InferenceSession(source, options, providers=["CPUExecutionProvider"])
     return model._sessions[key]
