@@ -13,7 +13,7 @@ break-even rank, because such ranks are not on the menu.
 from __future__ import annotations
 
 import heapq
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -50,7 +50,6 @@ class Plan:
     limit: float | None = None
     rank_multiple: int = 1
     min_rank: int = 1
-    notes: list[str] = field(default_factory=list)
 
     @property
     def slack(self) -> float | None:

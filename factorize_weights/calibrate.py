@@ -142,8 +142,8 @@ def recover(original, factorized, records, cal: Calibration, config: CompressCon
     if isinstance(cal.data.inputs, dict):
         raise InputError(f"--calibration {cal.data.source}: recovery needs one 'inputs' array")
     sample = torch_backend.predict(original, cal.data.inputs[:2])
-    loss = "kl" if sample.ndim == 2 and (metric in (None, "top1", "top5", "agreement")) and sample.shape[1] > 1 else "mse"
-    if metric in ("mse", "cosine"):
-        loss = "mse"
+    # KL on logits for classifiers (2-D outputs, a classification metric or none); MSE otherwise
+    classifier = sample.ndim == 2 and sample.shape[1] > 1 and metric in (None, "top1", "top5", "agreement")
+    loss = "kl" if classifier else "mse"
     return torch_recovery.recover(original, factorized, cal.data.inputs, steps=config.recover, loss=loss,
                                   lr=config.recover_lr, seed=config.seed, quiet=config.quiet)

@@ -364,7 +364,7 @@ def cmd_sweep(args) -> int:
 
 
 def cmd_evaluate(args) -> int:
-    from .pipeline import CompressConfig as _C, evaluate
+    from .pipeline import evaluate
     from .store import load_factorized
 
     model, _ = _load_model(args)
@@ -372,7 +372,7 @@ def cmd_evaluate(args) -> int:
         raise InputError("--heldout is required for evaluate")
     heldout = _heldout(args)
     factorized = load_factorized(model, args.factorized)
-    result = evaluate(model, factorized, heldout, args.metric, _C(quiet=args.quiet, batch_size=args.batch_size))
+    result = evaluate(model, factorized, heldout, args.metric, CompressConfig(quiet=args.quiet, batch_size=args.batch_size))
     if args.json:
         _print_json({"metric": result.to_dict(), "factorized": args.factorized, "heldout": heldout.source})
     else:

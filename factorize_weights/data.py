@@ -78,7 +78,7 @@ def file_sha256(path: str | Path) -> str:
     return digest.hexdigest()
 
 
-def _as_array(value, what: str) -> np.ndarray:
+def _as_array(value) -> np.ndarray:
     if hasattr(value, "detach"):  # a torch tensor
         value = value.detach().cpu().numpy()
     return np.asarray(value)
@@ -130,9 +130,9 @@ def _load_spec(spec: str, flag: str) -> HeldOut:
         inputs, labels = [], []
         for item in fn():
             x, y = item if isinstance(item, (tuple, list)) else (item, None)
-            inputs.append(_as_array(x, "inputs"))
+            inputs.append(_as_array(x))
             if y is not None:
-                labels.append(_as_array(y, "labels"))
+                labels.append(_as_array(y))
     except InputError:
         raise
     except Exception as exc:

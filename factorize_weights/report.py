@@ -43,7 +43,7 @@ def _layer_entry(record: LayerRecord, spectrum: Spectrum, rank: int | None, meth
     return entry
 
 
-def spectrum_summary(spectrum: Spectrum, top: int = 64) -> dict:
+def spectrum_summary(spectrum: Spectrum) -> dict:
     s = spectrum.singular_values
     return {
         "method": spectrum.method,

@@ -140,7 +140,7 @@ def render_report_html(report: dict, spectra: dict) -> str:
         rows.append(["CPU latency", f"{lat['before_ms']:.3f} → {lat['after_ms']:.3f} ms (×{lat['speedup']:.2f}; "
                      f"FLOPs predict ×{lat['predicted_speedup'] or 1:.2f}) — {esc(lat['runtime'])}, batch {lat['batch']}, "
                      f"{lat['threads']} thread(s)"])
-    body = [f"<h1>Factorization report</h1>", f"<p>{esc(summary_line(report))}.</p>",
+    body = ["<h1>Factorization report</h1>", f"<p>{esc(summary_line(report))}.</p>",
             "<section><h2>Summary</h2>", _table(None, rows, "summary"), "</section>"]
     body += ["<section><h2>Parameters per layer</h2>", f"<figure>{params_figure(report['layers'])}"
              "<figcaption>Grey: before; blue, hatched: after.</figcaption></figure></section>"]

@@ -13,7 +13,7 @@ import pytest
 import torch
 from safetensors.torch import save_file
 
-from factorize_weights import demo, store
+from factorize_weights import store
 from factorize_weights.cli import main
 
 

@@ -10,7 +10,6 @@ from torch import nn
 
 import factorize_weights as fw
 from factorize_weights import demo
-from factorize_weights.backends import torch_backend as tb
 from factorize_weights.errors import InputError
 
 

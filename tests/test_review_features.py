@@ -14,7 +14,6 @@ from pathlib import Path
 
 import pytest
 
-from factorize_weights import demo
 from factorize_weights.cli import main
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")

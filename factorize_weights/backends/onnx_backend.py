@@ -162,8 +162,6 @@ def _weight_problem(wname, inits, graph_inputs, producers) -> str | None:
 
 
 def _record(name, node, inits, graph_inputs, producers, uses, only, skip) -> LayerRecord:
-    from onnx import numpy_helper
-
     attrs = _attrs(node)
     op = node.op_type
     options: dict = {"op": op, "node_outputs": list(node.output)}
@@ -189,7 +187,7 @@ def _record(name, node, inits, graph_inputs, producers, uses, only, skip) -> Lay
     if tensor is None:
         return LayerRecord(name, op.lower(), (), (1, 1), False, "unknown", options, reason, node, backend="onnx")
     dims = tuple(int(d) for d in tensor.dims)
-    dtype = np.dtype(_NP_OF.get(tensor.data_type, np.float32)).name if tensor.data_type in _NP_OF else "unknown"
+    dtype = np.dtype(_NP_OF[tensor.data_type]).name if tensor.data_type in _NP_OF else "unknown"
     kind = "linear"
     if op == "Conv":
         kind = {3: "conv1d", 4: "conv2d"}.get(len(dims), f"conv{len(dims) - 2}d")

@@ -336,7 +336,7 @@ def save_weights(model: nn.Module, path: str | Path) -> None:
 def load_saved_weights(model: nn.Module, path: str | Path) -> None:
     from safetensors.torch import load_model
 
-    missing, unexpected = load_model(model, str(path), strict=True)
+    load_model(model, str(path), strict=True)
 
 
 # ---------------------------------------------------------------- running
