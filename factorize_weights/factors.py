@@ -58,7 +58,16 @@ def svd_factors(
         )
     else:
         u, s, vt = exact_svd(matrix)
-        u, s, vt = u[:, :rank], s[:rank], vt[:rank]
+    return split_factors(u, s, vt, rank, split)
+
+
+def split_factors(u: np.ndarray, s: np.ndarray, vt: np.ndarray, rank: int, split: str = "balanced"):
+    """Rank-``rank`` factors from a thin SVD ``U diag(s) Vt`` (any number of columns >= rank).
+
+    Returns A (m, rank) and X (rank, n) with A @ X = U_k diag(s_k) Vt_k, the singular values
+    placed as ``split`` says (see the module docstring).
+    """
+    u, s, vt = u[:, :rank], s[:rank], vt[:rank]
     if split == "balanced":
         root = np.sqrt(s)
         return u * root, root[:, None] * vt  # (m, k), (k, n)

@@ -15,21 +15,20 @@ from pathlib import Path
 import numpy as np
 from tqdm.auto import tqdm
 
+from . import latency as latency_mod
 from . import report as report_mod
 from .allocate import Plan, allocate, check_feasible
-from . import latency as latency_mod
 from .backends import backend_for, backend_of
 from .budget import parse_budget
+from .columns import column_factors, column_spectrum
 from .config import CompressConfig
 from .data import HeldOut
 from .errors import InputError
-from .columns import column_factors, column_spectrum
-from .factors import svd_factors
-from .records import max_saving_rank
-from .whiten import whitened_factors
+from .factors import split_factors, svd_factors
 from .metrics import MetricAccumulator, MetricResult, check_metric, default_metric
-from .records import LayerRecord
-from .spectra import Spectrum, choose_method, compute_spectrum
+from .records import LayerRecord, max_saving_rank
+from .spectra import Spectrum, choose_method, compute_spectrum, exact_svd
+from .whiten import whitened_factors, whitened_svd
 
 
 def _bar(iterable, config: CompressConfig, desc: str, total=None, unit="layer"):
@@ -86,25 +85,40 @@ def compute_spectra(records: list[LayerRecord], config: CompressConfig | None = 
 
 
 def compute_factors(records: list[LayerRecord], plan: Plan, config: CompressConfig | None = None,
-                    calibration=None, method: str | None = None):
-    """``{name: (A, X)}`` for every layer the plan gives a rank; A (m, k), X (k, n), float64."""
+                    calibration=None, method: str | None = None, cache: dict | None = None):
+    """``{name: (A, X)}`` for every layer the plan gives a rank; A (m, k), X (k, n), float64.
+
+    With a ``cache`` dict, each layer's full (exact or whitened) SVD is kept there on first use,
+    so later budgets of the same prepared run only slice it instead of decomposing again.
+    """
     config = config or CompressConfig()
     method = method or config.resolved_method(calibration is not None)
     factors = {}
     chosen = [r for r in selected(records) if plan.ranks.get(r.name) is not None]
     for record in _bar(chosen, config, "factors"):
         w, rank = backend_of(record).weight_matrix(record), plan.ranks[record.name]
+        exact = choose_method(record.matrix_shape, config.svd) == "exact"
         if method == "whitened":
-            factors[record.name] = whitened_factors(w, calibration.whitenings[record.name], rank, split=config.split)
+            wh = calibration.whitenings[record.name]
+            usv = None if cache is None else _cached(cache, record.name, lambda: whitened_svd(w, wh))
+            factors[record.name] = whitened_factors(w, wh, rank, split=config.split, usv=usv)
         elif method == "columns":
             a, x, _ = column_factors(w, rank)
             factors[record.name] = (a, x)
-        else:
+        elif exact and cache is not None:
+            factors[record.name] = split_factors(*_cached(cache, record.name, lambda: exact_svd(w)), rank, config.split)
+        else:  # randomized sketches depend on the rank: nothing to reuse
             factors[record.name] = svd_factors(
-                w, rank, split=config.split, svd=choose_method(record.matrix_shape, config.svd),
+                w, rank, split=config.split, svd="exact" if exact else "randomized",
                 seed=config.seed, oversampling=config.oversampling, power_iterations=config.power_iterations,
             )
     return factors
+
+
+def _cached(cache: dict, key: str, compute):
+    if key not in cache:
+        cache[key] = compute()
+    return cache[key]
 
 
 def weight_errors(records: list[LayerRecord], factors: dict) -> dict[str, float]:
@@ -184,6 +198,7 @@ class Prepared:
     metric_name: str | None = None
     reference: list = field(default_factory=list)  # [(original outputs, labels)] per held-out batch
     timings: dict = field(default_factory=dict)
+    decompositions: dict | None = None  # per-layer SVDs kept for later budgets (reuse=True)
 
     @property
     def backend(self):
@@ -195,9 +210,10 @@ class Prepared:
 
 
 def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calibration: HeldOut | None = None,
-            *, budgets: list[str] | None = None) -> Prepared:
+            *, budgets: list[str] | None = None, reuse: bool = False) -> Prepared:
     """Validate, discover, (calibrate) and compute spectra once. Every budget in ``budgets``
-    (default: ``config.budget``) is parsed and checked for feasibility before the first SVD."""
+    (default: ``config.budget``) is parsed and checked for feasibility before the first SVD.
+    With ``reuse`` (several budgets will be realized) each layer's SVD is kept after first use."""
     from .calibrate import calibrate, whitened_spectra
 
     t0 = time.perf_counter()
@@ -242,7 +258,7 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
         for inputs, labels in heldout.batches(config.batch_size):
             reference.append((backend.predict(model, inputs), labels))
     prep = Prepared(model, config, records, spectra, method, config.resolved_sequential(method), heldout, cal,
-                    metric_name, reference)
+                    metric_name, reference, decompositions={} if reuse else None)
     prep.timings["prepare"] = time.perf_counter() - t0
     return prep
 
@@ -295,7 +311,7 @@ def realize(prep: Prepared, budget: str, *, sources: dict | None = None, latency
     if prep.sequential:
         factors, fits = sequential_factors(model, prep.records, plan.ranks, prep.calibration, config)
     else:
-        factors = compute_factors(prep.records, plan, config, prep.calibration, prep.method)
+        factors = compute_factors(prep.records, plan, config, prep.calibration, prep.method, prep.decompositions)
     factorized = backend.rewrite(model, prep.records, factors)
     recovery = None
     if config.recover:

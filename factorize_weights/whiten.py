@@ -18,6 +18,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .factors import split_factors
 from .spectra import Spectrum, _flip_signs
 
 #: Relative eigenvalue floor of the damped fallback: eigenvalues below DAMPING x the largest are
@@ -90,19 +91,16 @@ def whitened_spectrum(name: str, matrix: np.ndarray, wh: Whitening) -> Spectrum:
     return Spectrum(name, tuple(matrix.shape), s, float(np.sum(ws * ws)), "exact")
 
 
-def whitened_factors(matrix: np.ndarray, wh: Whitening, rank: int, *, split: str = "balanced"):
+def whitened_factors(matrix: np.ndarray, wh: Whitening, rank: int, *, split: str = "balanced", usv=None):
     """A (m, k), X (k, n) with A @ X = [W S]_k S^{-1}: the rank-k map with the least output error
-    on the calibration inputs."""
-    u, s, vt = whitened_svd(matrix, wh)
+    on the calibration inputs. ``usv`` is a precomputed :func:`whitened_svd` (reused across
+    budgets)."""
     m, n = matrix.shape
     if not 1 <= rank <= min(m, n):
         raise ValueError(f"rank {rank} is outside [1, min(out, in) = {min(m, n)}]")
-    u, s, vt = u[:, :rank], s[:rank], vt[:rank]
-    back = vt @ wh.s_inv  # (k, n)
-    if split == "balanced":
-        root = np.sqrt(s)
-        return u * root, root[:, None] * back
-    return u * s, back
+    u, s, vt = whitened_svd(matrix, wh) if usv is None else usv
+    a, x = split_factors(u, s, vt, rank, split)
+    return a, x @ wh.s_inv  # the split scales rows of V^T, so S^{-1} can come after it
 
 
 def regression_target(matrix: np.ndarray, cross: np.ndarray, gram_new: Whitening) -> np.ndarray:
