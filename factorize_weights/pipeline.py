@@ -175,10 +175,17 @@ def evaluate(original, factorized, heldout: HeldOut, metric: str | None = None, 
     """The held-out metric of ``original`` (before) and ``factorized`` (after)."""
     config = config or CompressConfig()
     name = check_heldout(original, heldout, metric)
-    acc = MetricAccumulator(name)
-    total = -(-len(heldout) // config.batch_size)
-    for inputs, labels in _bar(heldout.batches(config.batch_size), config, "evaluate", total, "batch"):
-        acc.update(backend_for(original).predict(original, inputs), backend_for(factorized).predict(factorized, inputs), labels)
+    predict = backend_for(original).predict
+    triples = ((x, predict(original, x), y) for x, y in heldout.batches(config.batch_size))
+    return _score(name, factorized, triples, -(-len(heldout) // config.batch_size), config)
+
+
+def _score(metric: str, factorized, triples, total: int, config: CompressConfig) -> MetricResult:
+    """Stream ``(inputs, original outputs, labels)`` batches into the metric of ``factorized``."""
+    acc = MetricAccumulator(metric)
+    predict = backend_for(factorized).predict
+    for inputs, reference, labels in _bar(triples, config, "evaluate", total, "batch"):
+        acc.update(reference, predict(factorized, inputs), labels)
     return acc.result()
 
 
@@ -289,13 +296,10 @@ def _check_overlap(heldout: HeldOut | None, calibration: HeldOut | None, allow: 
 
 
 def _evaluate_prepared(prep: Prepared, factorized) -> MetricResult:
-    acc = MetricAccumulator(prep.metric_name)
-    backend = backend_for(factorized)
+    """The held-out metric against the original's outputs cached by :func:`prepare`."""
     batches = prep.heldout.batches(prep.config.batch_size)
-    for (inputs, _), (reference, labels) in _bar(zip(batches, prep.reference), prep.config, "evaluate",
-                                                  len(prep.reference), "batch"):
-        acc.update(reference, backend.predict(factorized, inputs), labels)
-    return acc.result()
+    triples = ((x, ref, y) for (x, _), (ref, y) in zip(batches, prep.reference))
+    return _score(prep.metric_name, factorized, triples, len(prep.reference), prep.config)
 
 
 def realize(prep: Prepared, budget: str, *, sources: dict | None = None, latency: bool = True,
