@@ -18,6 +18,15 @@ def planted(m: int, n: int, singular_values, seed: int = 0) -> np.ndarray:
     return (u * np.asarray(singular_values, dtype=float)) @ v.T
 
 
+def run_cli(capsys, *argv):
+    """Run the CLI in-process; (exit code, stdout, stderr)."""
+    from factorize_weights.cli import main
+
+    code = main([str(a) for a in argv])
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
 @pytest.fixture
 def rng():
     return np.random.default_rng(12345)

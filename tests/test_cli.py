@@ -14,13 +14,11 @@ import torch
 from safetensors.torch import save_file
 
 from factorize_weights import store
+from conftest import run_cli
 from factorize_weights.cli import main
 
 
-def run(capsys, *argv):
-    code = main([str(a) for a in argv])
-    out, err = capsys.readouterr()
-    return code, out, err
+run = run_cli
 
 
 @pytest.fixture(scope="module")

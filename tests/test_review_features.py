@@ -14,15 +14,13 @@ from pathlib import Path
 
 import pytest
 
+from conftest import run_cli
 from factorize_weights.cli import main
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 
 
-def run(capsys, *argv):
-    code = main([str(a) for a in argv])
-    out, err = capsys.readouterr()
-    return code, out, err
+run = run_cli
 
 
 @pytest.fixture(scope="module")

@@ -87,12 +87,17 @@ CASES = [
 ]
 
 
-@pytest.mark.parametrize("name, make, shape", CASES, ids=[c[0] for c in CASES])
-def test_full_rank_rewrite_equals_the_original(name, make, shape):
-    torch.manual_seed(0)
+def one_layer(make, seed):
+    """A float64 model of one layer, its record and its matrix view."""
+    torch.manual_seed(seed)
     model = nn.Sequential(make()).double().eval()
     rec = tb.discover(model)[0]
-    w = tb.weight_matrix(rec)
+    return model, rec, tb.weight_matrix(rec)
+
+
+@pytest.mark.parametrize("name, make, shape", CASES, ids=[c[0] for c in CASES])
+def test_full_rank_rewrite_equals_the_original(name, make, shape):
+    model, rec, w = one_layer(make, 0)
     full = min(w.shape)
     new = tb.rewrite(model, [rec], {rec.name: svd_factors(w, full)})
     assert isinstance(new[0], tb.FactorPair) and new[0].rank == full
@@ -105,10 +110,7 @@ def test_full_rank_rewrite_equals_the_original(name, make, shape):
 @pytest.mark.parametrize("name, make, shape", CASES, ids=[c[0] for c in CASES])
 def test_rank_k_rewrite_equals_numpy_reconstruction(name, make, shape):
     # oracle: the same layer with its weight replaced by numpy's rank-k truncated SVD
-    torch.manual_seed(1)
-    model = nn.Sequential(make()).double().eval()
-    rec = tb.discover(model)[0]
-    w = tb.weight_matrix(rec)
+    model, rec, w = one_layer(make, 1)
     k = 3
     u, s, vt = np.linalg.svd(w, full_matrices=False)
     w_k = (u[:, :k] * s[:k]) @ vt[:k]
