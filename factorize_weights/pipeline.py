@@ -140,18 +140,11 @@ def factorize(model, records: list[LayerRecord], plan: Plan, config: CompressCon
 
 def check_fits(model, data: HeldOut, flag: str = "--heldout") -> np.ndarray:
     """Run the first batch of ``data`` through ``model``; refuse data that does not fit it."""
-    backend = backend_for(model)
-    if isinstance(data.inputs, dict) and backend.__name__.endswith("torch_backend"):
-        raise InputError(f"{flag} {data.source}: missing array 'inputs' (arrays found: "
-                         f"{', '.join(sorted(data.inputs))})")
     first, _ = next(data.batches(batch_size=min(len(data), 8)))
     try:
-        outputs = backend.predict(model, first)
-    except InputError as exc:
-        text = str(exc)
-        if text.startswith("--heldout:"):  # the backend's message without the file: name it
-            text = f"{flag} {data.source}:" + text[len("--heldout:"):]
-        raise InputError(text) from exc
+        outputs = backend_for(model).predict(model, first, source=f"{flag} {data.source}")
+    except InputError:
+        raise
     except Exception as exc:
         message = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise InputError(
@@ -225,7 +218,7 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
 
     t0 = time.perf_counter()
     backend = backend_for(model)
-    is_torch = backend.__name__.endswith("torch_backend")
+    is_torch = backend.FORMAT == "torch"
     method = config.resolved_method(calibration is not None)
     parsed = [parse_budget(b) for b in (budgets or [config.budget])]
     if method == "whitened" and calibration is None:
@@ -364,7 +357,7 @@ def check_outputs_requested(model, config: CompressConfig, heldout, out) -> None
     """Refuse export/int8 requests that cannot be honoured, before any work."""
     backend = backend_for(model)
     if config.export_onnx:
-        if not backend.__name__.endswith("torch_backend"):
+        if backend.FORMAT != "torch":
             raise InputError("--export-onnx is for PyTorch models; this model is ONNX already")
         if heldout is None:
             raise InputError("--export-onnx needs --heldout (an example input to export with and check on)")
@@ -375,7 +368,7 @@ def check_outputs_requested(model, config: CompressConfig, heldout, out) -> None
             raise InputError("--int8 needs --heldout (to compare the variants)")
         if out is None:
             raise InputError("--int8 needs --out (the folder model.int8.onnx is written to)")
-        if backend.__name__.endswith("torch_backend") and not config.export_onnx:
+        if backend.FORMAT == "torch" and not config.export_onnx:
             raise InputError("--int8 quantizes ONNX models: give an ONNX model, or add --export-onnx")
 
 
@@ -459,8 +452,7 @@ def measure_latency(original, factorized, heldout: HeldOut, config: CompressConf
         backend.timer(factorized, batch, config.latency_threads),
         warmup=config.latency_warmup, repeats=config.latency_repeats,
     )
-    runtime = "onnxruntime" if backend.__name__.endswith("onnx_backend") else "torch"
-    return {"runtime": runtime, "batch": config.latency_batch, "threads": config.latency_threads, **result}
+    return {"runtime": backend.RUNTIME, "batch": config.latency_batch, "threads": config.latency_threads, **result}
 
 
 def export_checked(model, heldout: HeldOut, work: Path):

@@ -1,8 +1,9 @@
 """Model-format backends. Each knows one format and nothing else (see DESIGN.md).
 
 A backend module offers: ``discover``, ``weight_matrix``, ``rewrite``, ``predict``,
-``measure_positions``, ``layer_output_errors``, ``count_params``, ``check_inputs`` and
-``latency``; the pipeline picks one with :func:`backend_for`.
+``measure_positions``, ``layer_output_errors``, ``count_params``, ``gram_statistics``,
+``cross_statistics``, ``call_order`` and ``timer``, plus the constants ``FORMAT`` and ``RUNTIME``;
+the pipeline picks one with :func:`backend_for`.
 """
 
 from __future__ import annotations

@@ -27,6 +27,9 @@ import numpy as np
 from ..errors import InputError
 from ..records import LayerRecord, max_saving_rank
 
+FORMAT = "onnx"
+RUNTIME = "onnxruntime"
+
 _FLOAT_TYPES = {1: np.float32, 10: np.float16, 11: np.float64}  # TensorProto.FLOAT/FLOAT16/DOUBLE
 _NP_OF = {1: np.float32, 10: np.float16, 11: np.float64, 6: np.int32, 7: np.int64, 9: np.bool_,
           2: np.uint8, 3: np.int8}
@@ -460,9 +463,10 @@ def feed(model: OnnxModel, inputs, *, source: str = "--heldout") -> dict[str, np
     return out
 
 
-def predict(model: OnnxModel, inputs) -> np.ndarray:
-    """Run the graph on one batch with onnxruntime; the first output as float64."""
-    result = _session(model).run(None, feed(model, inputs))
+def predict(model: OnnxModel, inputs, *, source: str = "--heldout") -> np.ndarray:
+    """Run the graph on one batch with onnxruntime; the first output as float64. ``source``
+    names the data in errors."""
+    result = _session(model).run(None, feed(model, inputs, source=source))
     return np.asarray(result[0], dtype=np.float64)
 
 

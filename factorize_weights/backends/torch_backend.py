@@ -23,6 +23,9 @@ from torch import nn
 from ..errors import InputError
 from ..records import LayerRecord, max_saving_rank
 
+FORMAT = "torch"
+RUNTIME = "torch"  # what latency is measured in
+
 _KINDS = {nn.Linear: "linear", nn.Conv1d: "conv1d", nn.Conv2d: "conv2d"}
 _UNSUPPORTED = {
     nn.Conv3d: "3-D convolution is not supported yet",
@@ -376,8 +379,11 @@ def _inference(model: nn.Module):
             m.training = flag
 
 
-def predict(model: nn.Module, inputs: np.ndarray) -> np.ndarray:
-    """Run ``model`` (in eval mode) on one batch; the first output as a float64 array."""
+def predict(model: nn.Module, inputs: np.ndarray, *, source: str = "--heldout") -> np.ndarray:
+    """Run ``model`` (in eval mode) on one batch; the first output as a float64 array. ``source``
+    names the data in errors."""
+    if isinstance(inputs, dict):
+        raise InputError(f"{source}: missing array 'inputs' (arrays found: {', '.join(sorted(inputs))})")
     with _inference(model):
         return _to_numpy(model(_to_tensor(inputs, model)))
 
