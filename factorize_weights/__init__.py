@@ -4,29 +4,45 @@ The stages, each importable from here::
 
     discover -> compute_spectra -> allocate -> factorize -> evaluate      (or: compress)
 
-See the README for the CLI and the report fields.
+Names are imported on first use, so ``import factorize_weights.spectra`` (the numeric core) does
+not import torch. See the README for the CLI and the report fields.
 """
 
-from ._version import __version__
-from .allocate import Plan, allocate
-from .backends.torch_backend import FactorPair, build_model, discover
-from .budget import Budget, parse_budget
-from .config import CompressConfig
-from .data import HeldOut, load_heldout
-from .errors import InputError
-from .factors import svd_factors
-from .metrics import MetricResult
-from .pipeline import (
-    CompressResult, compress, compute_factors, compute_spectra, evaluate, factorize, inspect_model, selected,
-)
-from .records import LayerRecord, break_even_rank
-from .spectra import Spectrum, compute_spectrum, randomized_svd
-from .store import load_factorized
+from __future__ import annotations
 
-__all__ = [
-    "__version__", "Budget", "CompressConfig", "CompressResult", "FactorPair", "HeldOut", "InputError",
-    "LayerRecord", "MetricResult", "Plan", "Spectrum", "allocate", "break_even_rank", "build_model",
-    "compress", "compute_factors", "compute_spectra", "compute_spectrum", "discover", "evaluate", "factorize",
-    "inspect_model", "load_factorized", "load_heldout", "parse_budget", "randomized_svd", "selected",
-    "svd_factors",
-]
+import importlib
+
+from ._version import __version__
+
+_EXPORTS = {
+    "Plan": "allocate", "allocate": "allocate",
+    "FactorPair": "backends.torch_backend", "build_model": "backends.torch_backend",
+    "discover": "backends.torch_backend",
+    "Budget": "budget", "parse_budget": "budget",
+    "CompressConfig": "config",
+    "HeldOut": "data", "load_heldout": "data",
+    "InputError": "errors",
+    "svd_factors": "factors",
+    "MetricResult": "metrics",
+    "CompressResult": "pipeline", "Prepared": "pipeline", "compress": "pipeline", "compute_factors": "pipeline",
+    "compute_spectra": "pipeline", "evaluate": "pipeline", "factorize": "pipeline", "inspect_model": "pipeline",
+    "prepare": "pipeline", "realize": "pipeline", "selected": "pipeline",
+    "LayerRecord": "records", "break_even_rank": "records",
+    "Spectrum": "spectra", "compute_spectrum": "spectra", "randomized_svd": "spectra",
+    "load_factorized": "store",
+    "search_budget": "sweep",
+}
+
+__all__ = ["__version__", *sorted(_EXPORTS)]
+
+
+def __getattr__(name: str):
+    if name in _EXPORTS:
+        value = getattr(importlib.import_module(f".{_EXPORTS[name]}", __name__), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
+
+def __dir__():
+    return __all__

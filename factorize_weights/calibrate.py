@@ -1,5 +1,15 @@
-"""Calibration: second moments of every selected layer's inputs, whitenings, sequential refits
-and short recovery. Part of the orchestrator (it calls backends); the math is in whiten.py.
+"""Calibration: the second moments of every selected layer's inputs (one forward sweep), sequential
+refits (one paired sweep per group of layers) and short recovery. Part of the orchestrator: it
+calls a backend through its interface; the statistics are in stats.py and the math in whiten.py.
+
+Cost, in passes over the calibration set:
+
+- moments: one forward pass of the original model; a Gram matrix per selected layer;
+- sequential refits, per budget: the layers are split into groups in forward order whose paired
+  moments (C and G', two n x n float64 matrices per layer) fit :data:`PAIRED_BYTES`; per group one
+  pass of the original and of the working copy, then the group's layers are refitted and patched
+  into the working copy in place, so the next group sees them. One group on models whose paired
+  moments fit (every layer then sees its upstream layers' whitened factors, not their refits).
 """
 
 from __future__ import annotations
@@ -10,13 +20,18 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .backends import backend_for, backend_of
+from .backends import backend_for
 from .config import CompressConfig
 from .data import HeldOut
 from .errors import InputError
+from .methods import Whitened
+from .progress import bar
 from .records import LayerRecord
-from .spectra import Spectrum
-from .whiten import Whitening, regression_target, whitened_factors, whitened_spectrum, whitening
+from .stats import CrossMoments, Moments, ridge, weight_error
+from .whiten import regression_target, whitening
+
+#: Memory for the paired moments of one group of sequential refits (two n x n float64 per layer).
+PAIRED_BYTES = 1 << 30
 
 
 @dataclass
@@ -27,108 +42,140 @@ class Calibration:
     ----------
     data : HeldOut
         The calibration set (never the held-out set unless the user allowed the overlap).
-    stats : dict of layer name to {"gram": (n, n) float64, "rows": int, "samples": int}
-    whitenings : dict of layer name to Whitening
+    moments : dict of layer name to Moments
+        Their Gram matrices are released once each layer is decomposed (``rows`` stays).
     warnings : list of str
+    damping : float
+        The relative ridge added to every moment before use.
+    gram_bytes : int
+        Memory the Gram matrices took while they were held.
     """
 
     data: HeldOut
-    stats: dict
-    whitenings: dict[str, Whitening]
+    moments: dict[str, Moments]
     warnings: list[str] = field(default_factory=list)
     damping: float = 0.0
+    gram_bytes: int = 0
+    batch_size: int = 256
+    passes: int = 1
 
     def summary(self) -> dict:
-        gram_bytes = int(sum(st["gram"].nbytes for st in self.stats.values()))
         return {
             "source": self.data.source,
             "sha256": self.data.sha256,
             "samples": len(self.data),
-            "rows": {name: st["rows"] for name, st in self.stats.items()},
-            "gram_bytes": gram_bytes,
-            "peak_rss_bytes": _peak_rss(),
+            "rows": {name: st.rows for name, st in self.moments.items()},
+            "gram_bytes": self.gram_bytes,
+            "peak_rss_bytes": peak_rss(),
             "warnings": list(self.warnings),
             "ridge": self.damping,
         }
 
+    def release(self, name: str) -> np.ndarray:
+        """The Gram matrix of ``name``, dropped from this object (it is used once)."""
+        g = self.moments[name].gram
+        self.moments[name].gram = None
+        return g
 
-def _peak_rss() -> int:
+
+def peak_rss() -> int:
     """The process's peak resident memory so far (Linux reports KiB, macOS bytes)."""
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
     return int(peak if sys.platform == "darwin" else peak * 1024)
 
 
-def _batches(data: HeldOut, config: CompressConfig, desc: str = "calibration"):
-    from .pipeline import _bar
-
-    total = -(-len(data) // config.batch_size)
-    return (x for x, _ in _bar(data.batches(config.batch_size), config, desc, total, "batch"))
+def _batches(data: HeldOut, batch_size: int, config: CompressConfig, desc: str):
+    total = -(-len(data) // batch_size)
+    return (x for x, _ in bar(data.batches(batch_size), config, desc, total, "batch"))
 
 
-def calibrate(model, records: list[LayerRecord], data: HeldOut, config: CompressConfig) -> Calibration:
-    """Stream the calibration set once; a Gram matrix and its whitening per selected layer."""
+def input_moments(backend, model, records: list[LayerRecord], batches) -> tuple[dict[str, Moments], int]:
+    """``G = sum x x^T`` of every record's inputs over ``batches`` (one pass); and the sample count."""
+    acc = {r.name: Moments(r.matrix_shape[1]) for r in records}
+    samples = backend.stream_inputs(model, records, batches, lambda name, rows: acc[name].add(rows))
+    return acc, samples
+
+
+def paired_moments(backend, original, current, records: list[LayerRecord], batches) -> dict[str, CrossMoments]:
+    """``C = sum x x'^T`` and ``G' = sum x' x'^T`` per record (one pass of each model)."""
+    acc = {r.name: CrossMoments(r.matrix_shape[1]) for r in records}
+    backend.stream_paired_inputs(original, current, records, batches, lambda name, x, y: acc[name].add(x, y))
+    return acc
+
+
+def calibrate(model, records: list[LayerRecord], data: HeldOut, config: CompressConfig,
+              batch_size: int | None = None, *, moments: bool = True) -> Calibration:
+    """Stream the calibration set once; the Gram matrix of every selected layer's inputs (not
+    computed when ``moments`` is false: methods that do not whiten only need the data)."""
     chosen = [r for r in records if r.skip_reason is None]
-    stats = backend_for(model).gram_statistics(model, chosen, _batches(data, config))
-    whitenings, warnings = {}, []
+    batch_size = batch_size or config.batch_size
+    if not moments:
+        return Calibration(data, {}, [], config.damping, 0, batch_size, 0)
+    backend = backend_for(model)
+    moments, _ = input_moments(backend, model, chosen, _batches(data, batch_size, config, "calibration"))
+    warnings = []
     for record in chosen:
-        st = stats[record.name]
-        if st["gram"] is None:
+        st = moments[record.name]
+        if st.gram is None:
             raise InputError(f"--calibration {data.source}: layer {record.name!r} never ran on the calibration inputs")
         n = record.matrix_shape[1]
-        wh = whitening(_ridge(st["gram"], config.damping))
-        if st["rows"] < n:
+        if st.rows < n:
             warnings.append(
-                f"layer {record.name!r}: {st['rows']} calibration rows for {n} input features; its input "
+                f"layer {record.name!r}: {st.rows} calibration rows for {n} input features; its input "
                 + (f"second moment is rank-deficient (a ridge of {config.damping:g} x its mean diagonal keeps it usable)"
                    if config.damping > 0 else "second moment is rank-deficient and was only floored (--damping 0)")
             )
-        whitenings[record.name] = wh
-    return Calibration(data, stats, whitenings, warnings, config.damping)
+    gram_bytes = int(sum(st.nbytes for st in moments.values()))
+    return Calibration(data, moments, warnings, config.damping, gram_bytes, batch_size)
 
 
-def whitened_spectra(records: list[LayerRecord], cal: Calibration) -> dict[str, Spectrum]:
-    """Spectra of W S per selected layer: the allocator then trades calibration output error."""
-    out = {}
-    for record in records:
-        if record.skip_reason is None:
-            w = backend_of(record).weight_matrix(record)
-            out[record.name] = whitened_spectrum(record.name, w, cal.whitenings[record.name])
-    return out
-
-
-def sequential_factors(model, records: list[LayerRecord], ranks: dict, cal: Calibration, config: CompressConfig):
-    """Refit layers in forward order to the original outputs from the inputs the already
-    compressed upstream layers produce (reduced-rank regression, then whitened truncation)."""
-    backend = backend_for(model)
-    chosen = {r.name: r for r in records if r.skip_reason is None and ranks.get(r.name) is not None}
-    order = [n for n in backend.call_order(model, list(chosen.values()), _first_inputs(cal.data)) if n in chosen]
-    factors, fits = {}, {}
-    current = model
+def groups_in_order(order: list[str], records: dict[str, LayerRecord], limit: int = PAIRED_BYTES) -> list[list[str]]:
+    """Consecutive groups of layer names whose paired moments (2 n^2 float64 each) fit ``limit``."""
+    groups, current, used = [], [], 0
     for name in order:
-        record = chosen[name]
-        st = backend.cross_statistics(model, current, record, _batches(cal.data, config))
-        # the same ridge on both moments: where the calibration data says nothing, M stays W
-        wh_new = whitening(_ridge(st["gram"], config.damping))
-        target = regression_target(backend.weight_matrix(record), _ridge(st["cross"], config.damping, st["gram"]), wh_new)
-        factors[name] = whitened_factors(target, wh_new, ranks[name], split=config.split)
-        fits[name] = {"method": wh_new.method, "damping": wh_new.damping}
-        current = backend.rewrite(model, records, factors)
-    return factors, fits
+        need = 2 * 8 * records[name].matrix_shape[1] ** 2
+        if current and used + need > limit:
+            groups.append(current)
+            current, used = [], 0
+        current.append(name)
+        used += need
+    return groups + ([current] if current else [])
 
 
-def _ridge(matrix: np.ndarray, alpha: float, reference: np.ndarray | None = None) -> np.ndarray:
-    """``matrix + alpha * mean(diag(reference)) * I``: a relative ridge (common practice, e.g. 1%
-    of the mean input energy) that keeps directions the calibration set never visits."""
-    if alpha <= 0:
-        return matrix
-    ref = matrix if reference is None else reference
-    lam = alpha * float(np.mean(np.diag(ref)))
-    return matrix + lam * np.eye(matrix.shape[0])
+def sequential_refit(model, records: list[LayerRecord], factors, ranks: dict, cal: Calibration,
+                     config: CompressConfig, order: list[str]):
+    """Refit the factorized layers to the *original* outputs from the inputs that the compressed
+    layers upstream produce (reduced-rank regression, then whitened truncation), group by group in
+    forward ``order``, on one working copy patched in place.
 
-
-def _first_inputs(data: HeldOut):
-    x, _ = next(data.batches(1))
-    return x
+    ``factors`` is the mapping of first factors (whitened, at ``ranks``) the working copy starts
+    from. Returns (the working copy, per-layer fit records, per-layer relative weight errors).
+    """
+    backend = backend_for(model)
+    by_name = {r.name: r for r in records}
+    chosen = [n for n in order if ranks.get(n) is not None]
+    working = backend.rewrite(model, records, factors)
+    fits, errors = {}, {}
+    groups = groups_in_order(chosen, by_name)
+    for i, group in enumerate(groups):
+        recs = [by_name[n] for n in group]
+        desc = "sequential refit" if len(groups) == 1 else f"sequential refit {i + 1}/{len(groups)}"
+        acc = paired_moments(backend, model, working, recs, _batches(cal.data, cal.batch_size, config, desc))
+        done = {}
+        for name in group:
+            st = acc.pop(name)
+            # the same ridge on both moments: where the calibration data says nothing, M stays W
+            wh_new = whitening(ridge(st.gram, config.damping))
+            w = backend.weight_matrix(by_name[name])
+            target = regression_target(w, ridge(st.cross, config.damping, st.gram), wh_new)
+            del st
+            dec = Whitened.decompose_whitened(name, target, wh_new, dtype=by_name[name].dtype)
+            a, x = done[name] = dec.factors(ranks[name], config.split)
+            errors[name] = weight_error(w, a, x)
+            fits[name] = {"method": wh_new.method, "damping": wh_new.damping}
+        working = backend.rewrite(working, records, done, in_place=True)
+    cal.passes += len(groups)
+    return working, fits, errors
 
 
 def recover(original, factorized, records, cal: Calibration, config: CompressConfig, metric: str | None) -> dict:

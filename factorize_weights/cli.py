@@ -305,7 +305,7 @@ def cmd_compress(args) -> int:
         check_out_dir(args.out, args.force, input_paths(sources, heldout, calibration))
     check_outputs_requested(model, config, heldout, args.out)
     if args.max_drop is not None:
-        prep = prepare(model, config, heldout, calibration, budgets=["params=1"], reuse=True)
+        prep = prepare(model, config, heldout, calibration, budgets=["params=1"])
         budget, search, _ = search_budget(prep, args.max_drop)
         prep.config = config = dataclasses.replace(config, budget=budget)
         result = realize(prep, budget, sources=sources)

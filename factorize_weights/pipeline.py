@@ -7,34 +7,33 @@ reporting meet. The CLI and the Python API both call these functions.
 from __future__ import annotations
 
 import dataclasses
-import sys
 import time
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
-from tqdm.auto import tqdm
 
 from . import latency as latency_mod
+from . import methods
 from . import report as report_mod
 from .allocate import Plan, allocate, check_feasible
 from .backends import backend_for, backend_of
 from .budget import parse_budget
-from .columns import column_factors, column_spectrum
+from .calibrate import calibrate, recover, sequential_refit
 from .config import CompressConfig
 from .data import HeldOut
 from .errors import InputError
-from .factors import split_factors, svd_factors
 from .metrics import MetricAccumulator, MetricResult, check_metric, default_metric
-from .records import LayerRecord, max_saving_rank
-from .spectra import Spectrum, choose_method, compute_spectrum, exact_svd
-from .whiten import whitened_factors, whitened_svd
+from .progress import bar
+from .records import LayerRecord
+from .spectra import Spectrum, compute_spectrum
+from .stats import relative_error, weight_error
 
 
-def _bar(iterable, config: CompressConfig, desc: str, total=None, unit="layer"):
-    """A progress bar on stderr that stays away when quiet or when stderr is not a terminal."""
-    disable = config.quiet or not sys.stderr.isatty()
-    return tqdm(iterable, desc=desc, total=total, disable=disable, leave=False, unit=unit)
+#: Memory for one batch's activations: evaluation and calibration batches are cut to fit it
+#: (measured per sample on the first input), so 224x224 images at batch 256 do not take gigabytes.
+ACTIVATION_BYTES = 256 * 2**20
 
 
 @dataclass
@@ -65,72 +64,66 @@ def selected(records: list[LayerRecord]) -> list[LayerRecord]:
     return [r for r in records if r.skip_reason is None]
 
 
-def compute_spectra(records: list[LayerRecord], config: CompressConfig | None = None) -> dict[str, Spectrum]:
-    """Spectrum of every selected layer (exact or randomized as ``config.svd`` says)."""
-    config = config or CompressConfig()
+def _weight(record: LayerRecord) -> np.ndarray:
+    return backend_of(record).weight_matrix(record)
+
+
+def decompose(records: list[LayerRecord], method, config: CompressConfig, calibration=None) -> dict:
+    """One decomposition per selected layer (``{name: Decomposition}``); with calibration, each
+    layer's Gram matrix is released as soon as that layer is done."""
     out = {}
-    for record in _bar(selected(records), config, "spectra"):
+    for record in bar(selected(records), config, f"{method.name} decomposition"):
+        moments = calibration.release(record.name) if calibration is not None else None
         try:
-            out[record.name] = compute_spectrum(
-                record.name,
-                backend_of(record).weight_matrix(record),
-                svd=config.svd,
-                seed=config.seed,
-                oversampling=config.oversampling,
-                power_iterations=config.power_iterations,
-            )
+            out[record.name] = method.decompose(record.name, _weight(record), dtype=record.dtype, moments=moments)
         except ValueError as exc:  # NaN/Inf in a weight is the user's model, not our bug
             raise InputError(str(exc)) from exc
     return out
 
 
-def compute_factors(records: list[LayerRecord], plan: Plan, config: CompressConfig | None = None,
-                    calibration=None, method: str | None = None, cache: dict | None = None):
-    """``{name: (A, X)}`` for every layer the plan gives a rank; A (m, k), X (k, n), float64.
-
-    With a ``cache`` dict, each layer's full (exact or whitened) SVD is kept there on first use,
-    so later budgets of the same prepared run only slice it instead of decomposing again.
-    """
+def compute_spectra(records: list[LayerRecord], config: CompressConfig | None = None) -> dict[str, Spectrum]:
+    """Spectrum (singular values only) of every selected layer's weights, as ``config.svd`` says."""
     config = config or CompressConfig()
-    method = method or config.resolved_method(calibration is not None)
-    factors = {}
-    chosen = [r for r in selected(records) if plan.ranks.get(r.name) is not None]
-    for record in _bar(chosen, config, "factors"):
-        w, rank = backend_of(record).weight_matrix(record), plan.ranks[record.name]
-        exact = choose_method(record.matrix_shape, config.svd) == "exact"
-        if method == "whitened":
-            wh = calibration.whitenings[record.name]
-            usv = None if cache is None else _cached(cache, record.name, lambda: whitened_svd(w, wh))
-            factors[record.name] = whitened_factors(w, wh, rank, split=config.split, usv=usv)
-        elif method == "columns":
-            a, x, _ = column_factors(w, rank)
-            factors[record.name] = (a, x)
-        elif exact and cache is not None:
-            factors[record.name] = split_factors(*_cached(cache, record.name, lambda: exact_svd(w)), rank, config.split)
-        else:  # randomized sketches depend on the rank: nothing to reuse
-            factors[record.name] = svd_factors(
-                w, rank, split=config.split, svd="exact" if exact else "randomized",
-                seed=config.seed, oversampling=config.oversampling, power_iterations=config.power_iterations,
-            )
-    return factors
-
-
-def _cached(cache: dict, key: str, compute):
-    if key not in cache:
-        cache[key] = compute()
-    return cache[key]
-
-
-def weight_errors(records: list[LayerRecord], factors: dict) -> dict[str, float]:
-    """Measured ``||W - A X||_F / ||W||_F`` of each factorized layer (float64)."""
     out = {}
-    for record in records:
-        if record.name in factors:
-            w = backend_of(record).weight_matrix(record)
-            a, x = factors[record.name]
-            norm = np.linalg.norm(w)
-            out[record.name] = float(np.linalg.norm(w - a @ x) / norm) if norm > 0 else 0.0
+    for record in bar(selected(records), config, "spectra"):
+        try:
+            out[record.name] = compute_spectrum(record.name, _weight(record), svd=config.svd, seed=config.seed,
+                                                oversampling=config.oversampling,
+                                                power_iterations=config.power_iterations)
+        except ValueError as exc:
+            raise InputError(str(exc)) from exc
     return out
+
+
+class PlannedFactors(Mapping):
+    """``{name: (A, X)}`` for every layer a plan ranks, made on access from the decompositions (so
+    a rewrite holds one layer's factors at a time). Each access records the measured relative
+    weight error ``||W - A X||_F / ||W||_F`` in :attr:`weight_errors`."""
+
+    def __init__(self, records: list[LayerRecord], ranks: dict, decompositions: dict, split: str):
+        self._records = {r.name: r for r in records}
+        self._ranks = {n: k for n, k in ranks.items() if k is not None}
+        self._decompositions, self._split = decompositions, split
+        self.weight_errors: dict[str, float] = {}
+
+    def __getitem__(self, name):
+        a, x = self._decompositions[name].factors(self._ranks[name], self._split)
+        self.weight_errors[name] = weight_error(_weight(self._records[name]), a, x)
+        return a, x
+
+    def __iter__(self):
+        return iter(self._ranks)
+
+    def __len__(self):
+        return len(self._ranks)
+
+
+def compute_factors(records: list[LayerRecord], plan: Plan, config: CompressConfig | None = None) -> dict:
+    """``{name: (A, X)}`` (float64) for every layer the plan ranks, from plain SVD factors."""
+    config = config or CompressConfig()
+    chosen = [r for r in selected(records) if plan.ranks.get(r.name) is not None]
+    decs = decompose(chosen, methods.make("svd", config), config)
+    return dict(PlannedFactors(chosen, plan.ranks, decs, config.split))
 
 
 def factorize(model, records: list[LayerRecord], plan: Plan, config: CompressConfig | None = None):
@@ -168,29 +161,37 @@ def evaluate(original, factorized, heldout: HeldOut, metric: str | None = None, 
     """The held-out metric of ``original`` (before) and ``factorized`` (after)."""
     config = config or CompressConfig()
     name = check_heldout(original, heldout, metric)
-    predict = backend_for(original).predict
-    triples = ((x, predict(original, x), y) for x, y in heldout.batches(config.batch_size))
-    return _score(name, factorized, triples, -(-len(heldout) // config.batch_size), config)
+    backend = backend_for(original)
+    size = batch_size_for(config, backend.measure_positions(original, backend.discover(original), heldout.inputs))
+    predict = backend.predict
+    triples = ((x, predict(original, x), y) for x, y in heldout.batches(size))
+    return _score(name, factorized, triples, -(-len(heldout) // size), config)
+
+
+def batch_size_for(config: CompressConfig, per_sample_bytes: int) -> int:
+    """``config.batch_size``, cut so that one batch's activations fit :data:`ACTIVATION_BYTES`."""
+    return max(1, min(config.batch_size, ACTIVATION_BYTES // max(int(per_sample_bytes), 1)))
 
 
 def _score(metric: str, factorized, triples, total: int, config: CompressConfig) -> MetricResult:
     """Stream ``(inputs, original outputs, labels)`` batches into the metric of ``factorized``."""
     acc = MetricAccumulator(metric)
     predict = backend_for(factorized).predict
-    for inputs, reference, labels in _bar(triples, config, "evaluate", total, "batch"):
+    for inputs, reference, labels in bar(triples, config, "evaluate", total, "batch"):
         acc.update(reference, predict(factorized, inputs), labels)
     return acc.result()
 
 
 @dataclass
 class Prepared:
-    """Everything about a run that does not depend on the budget: layers, spectra, calibration
-    statistics and the original model's held-out outputs. Sweeps and budget searches reuse it."""
+    """Everything about a run that does not depend on the budget: layers, one decomposition per
+    layer, calibration statistics and the original model's held-out outputs. Sweeps and budget
+    searches reuse it."""
 
     model: object
     config: CompressConfig
     records: list[LayerRecord]
-    spectra: dict[str, Spectrum]
+    decompositions: dict
     method: str
     sequential: bool
     heldout: HeldOut | None = None
@@ -198,7 +199,8 @@ class Prepared:
     metric_name: str | None = None
     reference: list = field(default_factory=list)  # [(original outputs, labels)] per held-out batch
     timings: dict = field(default_factory=dict)
-    decompositions: dict | None = None  # per-layer SVDs kept for later budgets (reuse=True)
+    batch_size: int = 256
+    order: list = field(default_factory=list)  # selected layer names in forward order
 
     @property
     def backend(self):
@@ -208,17 +210,19 @@ class Prepared:
     def selected(self) -> list[LayerRecord]:
         return selected(self.records)
 
+    @property
+    def spectra(self) -> dict[str, Spectrum]:
+        return {name: d.spectrum for name, d in self.decompositions.items()}
+
 
 def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calibration: HeldOut | None = None,
-            *, budgets: list[str] | None = None, reuse: bool = False) -> Prepared:
-    """Validate, discover, (calibrate) and compute spectra once. Every budget in ``budgets``
-    (default: ``config.budget``) is parsed and checked for feasibility before the first SVD.
-    With ``reuse`` (several budgets will be realized) each layer's SVD is kept after first use."""
-    from .calibrate import calibrate, whitened_spectra
-
+            *, budgets: list[str] | None = None) -> Prepared:
+    """Validate, discover, calibrate (one pass) and decompose every selected layer once. Every
+    budget in ``budgets`` (default: ``config.budget``) is parsed and checked for feasibility
+    before the first SVD."""
+    timings = {"prepare": 0.0}  # the whole preparation; calibrate and decompose are parts of it
     t0 = time.perf_counter()
     backend = backend_for(model)
-    is_torch = backend.FORMAT == "torch"
     method = config.resolved_method(calibration is not None)
     parsed = [parse_budget(b) for b in (budgets or [config.budget])]
     if method == "whitened" and calibration is None:
@@ -227,7 +231,7 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
         raise InputError(f"{'--sequential' if config.sequential else '--recover'} needs --calibration data")
     if config.sequential and method != "whitened":
         raise InputError(f"--sequential refits whitened factors; it cannot be combined with --method {method}")
-    if config.recover and not is_torch:
+    if config.recover and backend.FORMAT != "torch":
         raise InputError("--recover fine-tunes PyTorch factor pairs; an ONNX model has no trainable factors")
     _check_overlap(heldout, calibration, config.allow_overlap)
     metric_name = check_heldout(model, heldout, config.metric) if heldout is not None else None
@@ -238,39 +242,42 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
         raise InputError(f"nothing to factorize: {found}")
     if any(b.kind == "flops" for b in parsed) and heldout is None:
         raise InputError("a flops budget needs --heldout (to measure layer output sizes)")
-    if heldout is not None:  # one sample tells each layer's output positions, hence its FLOPs
-        backend.measure_positions(model, records, heldout.inputs)
+    size = config.batch_size
+    sample = heldout if heldout is not None else calibration
+    if sample is not None:  # one sample tells each layer's output positions (FLOPs) and memory
+        size = batch_size_for(config, backend.measure_positions(model, records, sample.inputs))
     for budget in parsed:
         check_feasible(chosen, budget, rank_multiple=config.rank_multiple, min_rank=config.min_rank)
-    cal = None
+    sequential = config.resolved_sequential(method)
+    cal, order = None, [r.name for r in chosen]
     if calibration is not None:
         check_fits(model, calibration, "--calibration")
-        cal = calibrate(model, records, calibration, config)
-    if method == "whitened":
-        spectra = whitened_spectra(records, cal)
-    elif method == "columns":
-        spectra = {r.name: column_spectrum(r.name, backend.weight_matrix(r), max_saving_rank(*r.matrix_shape))
-                   for r in _bar(chosen, config, "pivoted QR")}
-    else:
-        spectra = compute_spectra(records, config)
+        if sequential:
+            order = backend.call_order(model, chosen, calibration.inputs)
+        t1 = time.perf_counter()
+        cal = calibrate(model, records, calibration, config, size, moments=method == "whitened")
+        timings["calibrate"] = time.perf_counter() - t1
+    t1 = time.perf_counter()
+    decompositions = decompose(records, methods.make(method, config), config,
+                               cal if method == "whitened" else None)
+    timings["decompose"] = time.perf_counter() - t1
     reference = []
     if heldout is not None:
-        for inputs, labels in heldout.batches(config.batch_size):
+        for inputs, labels in heldout.batches(size):
             reference.append((backend.predict(model, inputs), labels))
-    prep = Prepared(model, config, records, spectra, method, config.resolved_sequential(method), heldout, cal,
-                    metric_name, reference, decompositions={} if reuse else None)
-    prep.timings["prepare"] = time.perf_counter() - t0
-    return prep
+    timings["prepare"] = time.perf_counter() - t0
+    return Prepared(model, config, records, decompositions, method, sequential, heldout, cal, metric_name,
+                    reference, timings, size, order)
 
 
 def plan_budget(prep: Prepared, budget: str) -> Plan:
     chosen = prep.selected
-    return allocate(chosen, [prep.spectra[r.name] for r in chosen], parse_budget(budget),
+    return allocate(chosen, [prep.decompositions[r.name].spectrum for r in chosen], parse_budget(budget),
                     rank_multiple=prep.config.rank_multiple, min_rank=prep.config.min_rank)
 
 
 def plan_for(model, config: CompressConfig, heldout: HeldOut | None = None, calibration: HeldOut | None = None):
-    """discover -> (calibrate) -> spectra -> allocate: (records, spectra, plan, calibration)."""
+    """discover -> (calibrate) -> decompose -> allocate: (records, spectra, plan, calibration)."""
     prep = prepare(model, config, heldout, calibration)
     return prep.records, prep.spectra, plan_budget(prep, config.budget), prep.calibration
 
@@ -290,33 +297,50 @@ def _check_overlap(heldout: HeldOut | None, calibration: HeldOut | None, allow: 
 
 def _evaluate_prepared(prep: Prepared, factorized) -> MetricResult:
     """The held-out metric against the original's outputs cached by :func:`prepare`."""
-    batches = prep.heldout.batches(prep.config.batch_size)
+    batches = prep.heldout.batches(prep.batch_size)
     triples = ((x, ref, y) for (x, _), (ref, y) in zip(batches, prep.reference))
     return _score(prep.metric_name, factorized, triples, len(prep.reference), prep.config)
 
 
+def layer_output_errors(prep: Prepared, factorized, names: list[str]) -> dict[str, float]:
+    """Relative output error ``||f(x) - g(x)||_F / ||f(x)||_F`` of each factorized layer on the
+    inputs the original layer sees, over the first ``config.error_samples`` held-out samples."""
+    num, den = dict.fromkeys(names, 0.0), dict.fromkeys(names, 0.0)
+
+    def sink(name, exact, approx):
+        exact = np.asarray(exact, dtype=np.float64)
+        num[name] += float(np.sum((exact - np.asarray(approx, dtype=np.float64)) ** 2))
+        den[name] += float(np.sum(exact * exact))
+
+    batches = (x for x, _ in prep.heldout.batches(prep.batch_size, limit=prep.config.error_samples))
+    prep.backend.stream_layer_outputs(prep.model, factorized, names, batches, sink)
+    return {n: relative_error(num[n], den[n]) for n in names}
+
+
 def realize(prep: Prepared, budget: str, *, sources: dict | None = None, latency: bool = True,
             layer_errors: bool = True) -> CompressResult:
-    """Allocate ``budget`` on prepared spectra, factorize, (recover), evaluate and report."""
-    from .calibrate import recover, sequential_factors
-
+    """Allocate ``budget`` on the prepared decompositions, factorize (refit), (recover), evaluate
+    and report."""
     config, model, backend = prep.config, prep.model, prep.backend
     timings = dict(prep.timings)
     t0 = time.perf_counter()
     plan = plan_budget(prep, budget)
-    fits = {}
-    if prep.sequential:
-        factors, fits = sequential_factors(model, prep.records, plan.ranks, prep.calibration, config)
+    timings["plan"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    factors = PlannedFactors(prep.records, plan.ranks, prep.decompositions, config.split)
+    fits, measured = {}, factors.weight_errors
+    if prep.sequential and len(factors):
+        factorized, fits, measured = sequential_refit(model, prep.records, factors, plan.ranks, prep.calibration,
+                                                      config, prep.order)
     else:
-        factors = compute_factors(prep.records, plan, config, prep.calibration, prep.method, prep.decompositions)
-    factorized = backend.rewrite(model, prep.records, factors)
+        factorized = backend.rewrite(model, prep.records, factors)
     recovery = None
     if config.recover:
         recovery = recover(model, factorized, prep.records, prep.calibration, config, prep.metric_name)
-        factors = backend.read_factors(factorized, list(factors))
-    measured = weight_errors(prep.records, factors)
-    if hasattr(backend, "check"):
-        backend.check(factorized)  # onnx.checker, full check: a failure here is our bug
+        by_name = {r.name: r for r in prep.records}
+        measured = {n: weight_error(_weight(by_name[n]), *af)
+                    for n, af in backend.read_factors(factorized, list(factors)).items()}
+    backend.check(factorized)  # a failure here is our bug (the ONNX checker, full check)
     timings["rewrite"] = time.perf_counter() - t0
     metric, errors, lat = None, {}, None
     heldout = prep.heldout
@@ -325,8 +349,7 @@ def realize(prep: Prepared, budget: str, *, sources: dict | None = None, latency
         metric = _evaluate_prepared(prep, factorized)
         names = [n for n, k in plan.ranks.items() if k is not None]
         if layer_errors and config.error_samples > 0 and names:
-            batches = (x for x, _ in heldout.batches(config.batch_size, limit=config.error_samples))
-            errors = backend.layer_output_errors(model, factorized, names, batches)
+            errors = layer_output_errors(prep, factorized, names)
         timings["evaluate"] = time.perf_counter() - t0
         if latency and config.latency_repeats > 0:
             t0 = time.perf_counter()
@@ -339,6 +362,7 @@ def realize(prep: Prepared, budget: str, *, sources: dict | None = None, latency
         model_params=(backend.count_params(model), backend.count_params(factorized)),
         timings=timings, latency=lat, error_samples=min(config.error_samples, len(heldout)) if heldout is not None else 0,
         method=prep.method, calibration=prep.calibration, fits=fits, recovery=recovery, sequential=prep.sequential,
+        decompositions=prep.decompositions,
     )
     return CompressResult(factorized, plan, prep.records, prep.spectra, metric, report, errors)
 
@@ -447,11 +471,12 @@ def measure_latency(original, factorized, heldout: HeldOut, config: CompressConf
     in the model's own runtime (onnxruntime for ONNX, eager torch for PyTorch)."""
     backend = backend_for(original)
     batch = latency_mod.batch_of(heldout.inputs, config.latency_batch)
-    result = latency_mod.compare(
-        backend.timer(original, batch, config.latency_threads),
-        backend.timer(factorized, batch, config.latency_threads),
-        warmup=config.latency_warmup, repeats=config.latency_repeats,
-    )
+    with backend.timing([original, factorized], config.latency_threads):
+        result = latency_mod.compare(
+            backend.timer(original, batch, config.latency_threads),
+            backend.timer(factorized, batch, config.latency_threads),
+            warmup=config.latency_warmup, repeats=config.latency_repeats,
+        )
     return {"runtime": backend.RUNTIME, "batch": config.latency_batch, "threads": config.latency_threads, **result}
 
 
@@ -497,9 +522,10 @@ def int8_comparison(original, factorized, heldout: HeldOut, metric: str, config:
     times = [None] * len(variants)
     if config.latency_repeats > 0:
         batch = latency_mod.batch_of(heldout.inputs, config.latency_batch)
-        times = latency_mod.measure_many(
-            [onnx_backend.timer(m, batch, config.latency_threads) for m in variants.values()],
-            warmup=config.latency_warmup, repeats=config.latency_repeats)
+        with onnx_backend.timing(list(variants.values()), config.latency_threads):
+            times = latency_mod.measure_many(
+                [onnx_backend.timer(m, batch, config.latency_threads) for m in variants.values()],
+                warmup=config.latency_warmup, repeats=config.latency_repeats)
     rows = []
     for (name, model), acc, t in zip(variants.items(), accs.values(), times):
         path = work / f"{name.replace('+', '_')}.int8cmp.onnx"

@@ -77,6 +77,7 @@ def build_report(
     fits: dict | None = None,
     recovery: dict | None = None,
     sequential: bool = False,
+    decompositions: dict | None = None,
 ) -> dict:
     """The content of ``report.json``."""
     chosen = [r for r in records if r.skip_reason is None]
@@ -85,9 +86,11 @@ def build_report(
         entry = _layer_entry(record, spectra[record.name], plan.ranks[record.name], method,
                              weight_errors.get(record.name))
         if calibration is not None:
-            wh = calibration.whitenings[record.name]
-            entry["calibration_rows"] = calibration.stats[record.name]["rows"]
-            entry["whitening"] = {"method": wh.method, "damping": wh.damping, "clamped": wh.clamped}
+            if record.name in calibration.moments:
+                entry["calibration_rows"] = calibration.moments[record.name].rows
+            extra = decompositions[record.name].extra if decompositions else {}
+            if "whitening" in extra:
+                entry["whitening"] = dict(extra["whitening"])
             if method == "whitened" and entry["rank"] is not None and not sequential and not recovery:
                 # Eckart-Young on W S: the relative output error on the calibration inputs
                 entry["calibration_output_error"] = float(spectra[record.name].relative_error(entry["rank"]))

@@ -12,9 +12,15 @@ import numpy as np
 
 from .records import break_even_rank, max_saving_rank
 
-#: Matrices whose smaller side is at least this use the randomized SVD under ``svd="auto"``.
-#: Below it a full LAPACK SVD is fast enough (a 1024 x 1024 SVD takes well under a second).
+#: ``svd="auto"`` uses the randomized SVD only on matrices at least this large on their smaller side
+#: (below it a full LAPACK SVD takes under a second) ...
 AUTO_RANDOMIZED_MIN_SIDE = 1024
+#: ... and only when the sketch (top ranks + oversampling) is at most this fraction of the smaller
+#: side: the randomized SVD costs about (2q + 2) passes over the matrix with a sketch of that width,
+#: so near half the smaller side it is both slower and less accurate than the exact one (measured on
+#: 3072 x 768: exact thin SVD 0.4 s). Break-even menus reach at least half the smaller side, so
+#: ``auto`` is exact unless the ranks that can be chosen are capped well below it.
+AUTO_RANDOMIZED_MAX_FRACTION = 0.25
 
 SVD_METHODS = ("exact", "randomized", "auto")
 
@@ -78,7 +84,18 @@ class Spectrum:
         return self.energy_fraction(np.arange(1, len(self.singular_values) + 1))
 
 
-def _flip_signs(u: np.ndarray, vt: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def checked_matrix(name: str, matrix) -> np.ndarray:
+    """``matrix`` as float64; refuse a non-2-D, empty or non-finite one, naming the layer."""
+    matrix = np.asarray(matrix, dtype=np.float64)
+    if matrix.ndim != 2 or 0 in matrix.shape:
+        raise ValueError(f"layer {name!r}: expected a non-empty 2-D matrix; got shape {matrix.shape}")
+    if not np.all(np.isfinite(matrix)):
+        bad = int(np.size(matrix) - np.count_nonzero(np.isfinite(matrix)))
+        raise ValueError(f"layer {name!r}: weight has {bad} NaN or Inf value(s)")
+    return matrix
+
+
+def flip_signs(u: np.ndarray, vt: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Make the largest-magnitude entry of each left singular vector positive.
 
     The SVD fixes singular vectors only up to sign; fixing it makes factors repeat bit for bit
@@ -96,7 +113,7 @@ def exact_svd(a: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     Shapes: ``a`` (m, n) -> U (m, r), s (r,), Vt (r, n) with r = min(m, n).
     """
     u, s, vt = np.linalg.svd(np.asarray(a, dtype=np.float64), full_matrices=False)
-    u, vt = _flip_signs(u, vt)
+    u, vt = flip_signs(u, vt)
     return u, s, vt
 
 
@@ -150,17 +167,21 @@ def randomized_svd(
     b = q.T @ a  # (k+p, n): A restricted to the range
     ub, s, vt = np.linalg.svd(b, full_matrices=False)
     u = q @ ub  # (m, k+p)
-    u, vt = _flip_signs(u[:, :rank], vt[:rank])
+    u, vt = flip_signs(u[:, :rank], vt[:rank])
     return u, s[:rank], vt
 
 
-def choose_method(shape: tuple[int, int], svd: str) -> str:
-    """Resolve ``svd="auto"`` to ``"exact"`` or ``"randomized"`` for one matrix shape."""
+def choose_method(shape: tuple[int, int], svd: str, top: int | None = None, oversampling: int = 10) -> str:
+    """Resolve ``svd="auto"`` to ``"exact"`` or ``"randomized"`` for one matrix shape whose top
+    ``top`` singular triplets are needed (default: up to the largest saving rank)."""
     if svd not in SVD_METHODS:
         raise ValueError(f"svd must be one of {', '.join(SVD_METHODS)}; got {svd!r}")
     if svd != "auto":
         return svd
-    return "randomized" if min(shape) >= AUTO_RANDOMIZED_MIN_SIDE else "exact"
+    side = min(shape)
+    top = max_saving_rank(*shape) if top is None else top
+    pays = top + oversampling <= AUTO_RANDOMIZED_MAX_FRACTION * side
+    return "randomized" if side >= AUTO_RANDOMIZED_MIN_SIDE and pays else "exact"
 
 
 def compute_spectrum(
@@ -172,23 +193,17 @@ def compute_spectrum(
     oversampling: int = 10,
     power_iterations: int = 2,
 ) -> Spectrum:
-    """Spectrum of one matrix view.
+    """Spectrum of one matrix view (values only; :mod:`methods` keeps the vectors too).
 
     With ``svd="randomized"`` only the top ``max_saving_rank(m, n)`` singular values are computed:
     the allocator never chooses a rank at or above break-even, so it never needs the rest, and the
     exact ``||W||_F**2`` keeps every tail energy exact up to the randomized values' accuracy.
     """
-    matrix = np.asarray(matrix, dtype=np.float64)
-    if matrix.ndim != 2 or 0 in matrix.shape:
-        raise ValueError(f"layer {name!r}: expected a non-empty 2-D matrix; got shape {matrix.shape}")
-    if not np.all(np.isfinite(matrix)):
-        bad = int(np.size(matrix) - np.count_nonzero(np.isfinite(matrix)))
-        raise ValueError(f"layer {name!r}: weight has {bad} NaN or Inf value(s)")
+    matrix = checked_matrix(name, matrix)
     shape = (int(matrix.shape[0]), int(matrix.shape[1]))
-    method = choose_method(shape, svd)
     total = float(np.sum(matrix * matrix))
     top = max_saving_rank(*shape)
-    if method == "randomized" and top >= 1:
+    if choose_method(shape, svd, top, oversampling) == "randomized" and top >= 1:
         _, s, _ = randomized_svd(
             matrix, top, oversampling=oversampling, power_iterations=power_iterations, seed=seed
         )

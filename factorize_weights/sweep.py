@@ -17,6 +17,7 @@ from .budget import parse_budget
 from .config import CompressConfig
 from .errors import InputError
 from .pipeline import Prepared, prepare, realize
+from .progress import bar
 
 POINT_UNITS = {"top1": "percentage points", "top5": "percentage points", "agreement": "percentage points",
                "cosine": "cosine (absolute)", "mse": "mse (absolute increase)"}
@@ -80,13 +81,11 @@ def sweep(model, config: CompressConfig, budgets: list[str], *, heldout=None, ca
     if save_models and out is None:
         raise InputError("--save-models needs --out")
     t0 = time.perf_counter()
-    prep = prepare(model, config, heldout, calibration, budgets=budgets, reuse=True)
+    prep = prepare(model, config, heldout, calibration, budgets=budgets)
     t_prepare = time.perf_counter() - t0
     points, results = [], []
     t0 = time.perf_counter()
-    from .pipeline import _bar
-
-    for budget in _bar(budgets, config, "sweep", unit="budget"):
+    for budget in bar(budgets, config, "sweep", unit="budget"):
         result = realize(prep, budget, sources=sources, layer_errors=False)
         points.append(_point(result, budget))
         if save_models:

@@ -19,7 +19,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .factors import split_factors
-from .spectra import Spectrum, _flip_signs
+from .spectra import Spectrum, flip_signs
 
 #: Relative eigenvalue floor of the damped fallback: eigenvalues below DAMPING x the largest are
 #: raised to it. Small enough not to change a well-conditioned problem, large enough that S^{-1}
@@ -79,7 +79,7 @@ def whitening(gram: np.ndarray, *, damping: float = DAMPING) -> Whitening:
 def whitened_svd(matrix: np.ndarray, wh: Whitening):
     """U, sigma, Vt of W S (float64, signs fixed)."""
     u, s, vt = np.linalg.svd(np.asarray(matrix, dtype=np.float64) @ wh.s, full_matrices=False)
-    u, vt = _flip_signs(u, vt)
+    u, vt = flip_signs(u, vt)
     return u, s, vt
 
 

@@ -16,6 +16,7 @@ from conftest import planted
 from factorize_weights import demo
 from factorize_weights.backends import onnx_backend as ob
 from factorize_weights.backends import torch_backend as tb
+from factorize_weights.calibrate import input_moments
 from factorize_weights.cli import main
 from factorize_weights.columns import column_factors, pivoted_qr_columns
 from factorize_weights.factors import svd_factors
@@ -112,10 +113,10 @@ def test_torch_gram_of_a_convolution_matches_explicit_patches():
     model = nn.Sequential(conv)
     x = torch.randn(5, 3, 9, 8)
     rec = tb.discover(model)[0]
-    stats = tb.gram_statistics(model, [rec], [x.numpy()])
+    stats, _ = input_moments(tb, model, [rec], [x.numpy()])
     expected, rows = _gram_reference_conv2d(conv, x)
-    assert stats["0"]["rows"] == rows
-    np.testing.assert_allclose(stats["0"]["gram"], expected, rtol=1e-10)
+    assert stats["0"].rows == rows
+    np.testing.assert_allclose(stats["0"].gram, expected, rtol=1e-10)
 
 
 def test_onnx_gram_matches_torch_gram_on_the_demo():
@@ -124,12 +125,12 @@ def test_onnx_gram_matches_torch_gram_on_the_demo():
     t_recs = fw.selected(tb.discover(model))
     onnx_model = ob.load(demo.ONNX)
     o_recs = fw.selected(ob.discover(onnx_model))
-    t = tb.gram_statistics(model, t_recs, [cal.inputs])
-    o = ob.gram_statistics(onnx_model, o_recs, [cal.inputs])
+    t, _ = input_moments(tb, model, t_recs, [cal.inputs])
+    o, _ = input_moments(ob, onnx_model, o_recs, [cal.inputs])
     for tr, orr in zip(t_recs, o_recs):
-        assert t[tr.name]["rows"] == o[orr.name]["rows"]
-        np.testing.assert_allclose(o[orr.name]["gram"], t[tr.name]["gram"], rtol=1e-4,
-                                   atol=1e-5 * np.abs(t[tr.name]["gram"]).max())
+        assert t[tr.name].rows == o[orr.name].rows
+        np.testing.assert_allclose(o[orr.name].gram, t[tr.name].gram, rtol=1e-4,
+                                   atol=1e-5 * np.abs(t[tr.name].gram).max())
 
 
 def test_demo_whitened_beats_plain_svd_at_a_tight_budget(capsys):

@@ -15,6 +15,7 @@ spatial work (same pads/strides/dilations/auto_pad), the second holds A (m x k) 
 
 from __future__ import annotations
 
+import contextlib
 import copy
 import fnmatch
 from collections import Counter
@@ -321,11 +322,16 @@ def _opset(proto) -> int:
     return next((o.version for o in proto.opset_import if o.domain in ("", "ai.onnx")), 1)
 
 
-def rewrite(model: OnnxModel, records, factors: dict[str, tuple[np.ndarray, np.ndarray]]) -> OnnxModel:
+def rewrite(model: OnnxModel, records, factors: dict[str, tuple[np.ndarray, np.ndarray]], *,
+            in_place: bool = False) -> OnnxModel:
     """A copy of ``model`` with each node in ``factors`` replaced by its two factor nodes.
 
     Graph inputs, outputs and opset are kept; the replaced weights' initializers are removed.
+    With ``in_place`` (a working copy whose nodes are already split at these ranks, as in a
+    sequential refit) the pairs' initializers are overwritten and ``model`` is returned.
     """
+    if in_place:
+        return _refill(model, records, factors)
     proto = copy.deepcopy(model.proto)
     graph = proto.graph
     by_name = {r.name: r for r in records}
@@ -354,6 +360,28 @@ def rewrite(model: OnnxModel, records, factors: dict[str, tuple[np.ndarray, np.n
     del graph.initializer[:]
     graph.initializer.extend(kept + new_inits)
     return OnnxModel(proto, None, model.external_data, pairs)
+
+
+def _refill(model: OnnxModel, records, factors) -> OnnxModel:
+    """Overwrite the initializers of already split pairs with new factors of the same ranks."""
+    by_name = {r.name: r for r in records}
+    inits = {t.name: t for t in model.graph.initializer}
+    opset = _opset(model.proto)
+    fresh_names = _Names(model.graph)  # the fresh tensors are renamed to the old ones below
+    for name, (a, x) in factors.items():
+        if name not in model.pairs:
+            raise ValueError(f"layer {name!r} is not split in this working copy")
+        record = by_name[name]
+        _, names = model.pairs[name]
+        dtype = _FLOAT_TYPES[record.handle[1].data_type]
+        _, fresh = _pair_nodes(record, record.handle[0], a, x, dtype, fresh_names, opset)
+        for old, new in zip(names, fresh):
+            if tuple(inits[old].dims) != tuple(new.dims):
+                raise ValueError(f"layer {name!r}: new factors {tuple(new.dims)} do not fit {tuple(inits[old].dims)}")
+            new.name = old
+            inits[old].CopyFrom(new)
+    model._sessions.clear()
+    return model
 
 
 def count_params(model: OnnxModel) -> int:
@@ -392,34 +420,51 @@ def save(model: OnnxModel, path: str | Path, *, external: bool | None = None) ->
 # ---------------------------------------------------------------- running
 
 
-def _session(model: OnnxModel, threads: int | None = None, extra_outputs: tuple = ()):
+def _probed(model: OnnxModel) -> list[str]:
+    """Names a probe session exposes besides the graph outputs: the activation input and the
+    output of every Gemm, MatMul and Conv node (what calibration and per-layer errors read)."""
+    inits = {t.name for t in model.graph.initializer}
+    have = {o.name for o in model.graph.output}
+    names = []
+    for node in model.graph.node:
+        if node.op_type in ("Gemm", "MatMul", "Conv"):
+            names += [i for i in node.input[:2] if i and i not in inits] + [node.output[0]]
+    return [n for n in dict.fromkeys(names) if n not in have]
+
+
+def _session(model: OnnxModel, threads: int | None = None, *, probe: bool = False):
+    """One onnxruntime session per model and purpose, cached on the model: the probe session
+    (graph outputs first, then the :func:`_probed` names) for calibration and per-layer errors;
+    a plain one for predictions; with ``threads``, a plain one with that many intra-op threads
+    for timing."""
+    import onnx
     import onnxruntime as ort
 
-    key = (threads, extra_outputs)
+    key = "probe" if probe else threads
     if key not in model._sessions:
         proto = model.proto
-        if extra_outputs:
-            proto = copy.deepcopy(proto)
-            import onnx
+        extra = _probed(model) if probe else []
+        n_out = len(proto.graph.output)
+        proto.graph.output.extend(onnx.ValueInfoProto(name=n) for n in extra)  # removed again below
+        try:
+            options = ort.SessionOptions()
+            options.log_severity_level = 3
+            if threads is not None:
+                options.intra_op_num_threads = threads
+                options.inter_op_num_threads = 1
+            if proto.ByteSize() < TWO_GB:
+                source = proto.SerializeToString()
+            else:  # too large for one protobuf: hand onnxruntime a file with external data
+                import atexit
+                import shutil
+                import tempfile
 
-            have = {o.name for o in proto.graph.output}
-            proto.graph.output.extend(onnx.ValueInfoProto(name=n) for n in extra_outputs if n not in have)
-        options = ort.SessionOptions()
-        options.log_severity_level = 3
-        if threads is not None:
-            options.intra_op_num_threads = threads
-            options.inter_op_num_threads = 1
-        if proto.ByteSize() < TWO_GB:
-            source = proto.SerializeToString()
-        else:  # too large for one protobuf: hand onnxruntime a file with external data
-            import atexit
-            import shutil
-            import tempfile
-
-            folder = tempfile.mkdtemp(prefix="factorize-weights-ort-")
-            atexit.register(shutil.rmtree, folder, True)  # the session reads it lazily: remove at exit
-            source = str(Path(folder) / "model.onnx")
-            save(OnnxModel(proto), source, external=True)
+                folder = tempfile.mkdtemp(prefix="factorize-weights-ort-")
+                atexit.register(shutil.rmtree, folder, True)  # the session reads it lazily: remove at exit
+                source = str(Path(folder) / "model.onnx")
+                save(OnnxModel(proto), source, external=True)
+        finally:
+            del proto.graph.output[n_out:]
         model._sessions[key] = ort.InferenceSession(source, options, providers=["CPUExecutionProvider"])
     return model._sessions[key]
 
@@ -470,40 +515,34 @@ def predict(model: OnnxModel, inputs, *, source: str = "--heldout") -> np.ndarra
     return np.asarray(result[0], dtype=np.float64)
 
 
-def measure_positions(model: OnnxModel, records: list[LayerRecord], sample) -> None:
-    """Output positions per sample of each selected node, from one run on one sample."""
+def measure_positions(model: OnnxModel, records: list[LayerRecord], sample) -> int:
+    """Output positions per sample of each selected node, from one run on one sample. Returns
+    the bytes of the selected nodes' inputs and outputs for that sample (an estimate of the
+    activation memory one sample needs)."""
     chosen = [r for r in records if r.skip_reason is None]
-    names = tuple(r.options["node_outputs"][0] for r in chosen)
+    inits = {t.name for t in model.graph.initializer}
+    outs = [r.options["node_outputs"][0] for r in chosen]
+    acts = [r.options["activation"] for r in chosen if r.options["activation"] not in inits]
+    names = tuple(dict.fromkeys(outs + acts))
     one = {k: v[:1] for k, v in sample.items()} if isinstance(sample, dict) else sample[:1]
-    session = _session(model, None, names)
-    outputs = dict(zip([o.name for o in session.get_outputs()], session.run(None, feed(model, one))))
+    outputs = _activations(model, one)
     for r in chosen:
         r.positions = int(np.asarray(outputs[r.options["node_outputs"][0]]).size // r.matrix_shape[0])
+    return int(sum(np.asarray(outputs[n]).nbytes for n in names if n in outputs))
 
 
-def layer_output_errors(original: OnnxModel, factorized: OnnxModel, names: list[str], batches: Iterator) -> dict[str, float]:
-    """Relative output error of each factor pair on the inputs the original node sees:
-    ``||f(x) - g(x)||_F / ||f(x)||_F`` over the batches, each pair run alone in onnxruntime."""
+def stream_layer_outputs(original: OnnxModel, factorized: OnnxModel, names: list[str], batches, sink) -> None:
+    """For each batch and each node in ``names``: ``sink(name, exact, approx)``, the original
+    node's output and its factor pair's output on the same inputs (each pair run alone in a small
+    onnxruntime session holding only the pair's two weights)."""
     import onnx
     import onnxruntime as ort
     from onnx import helper
 
-    records = {r.name: r for r in discover(original)}
-    wanted = []
-    for name in names:
-        node = records[name].handle[0]
-        wanted += [i for i in node.input if i] + [node.output[0]]
-    inits = {t.name for t in original.graph.initializer}
-    probe_names = tuple(dict.fromkeys(n for n in wanted if n not in inits))
-    session = _session(original, None, probe_names)
-    out_names = [o.name for o in session.get_outputs()]
     f_inits = {t.name: t for t in factorized.graph.initializer}
-    num = dict.fromkeys(names, 0.0)
-    den = dict.fromkeys(names, 0.0)
     minis = {}
     for batch in batches:
-        values = dict(zip(out_names, session.run(None, feed(original, batch))))
-        values.update(feed(original, batch))
+        values = _activations(original, batch)
         for name in names:
             nodes, _ = factorized.pairs[name]
             if name not in minis:
@@ -519,15 +558,18 @@ def layer_output_errors(original: OnnxModel, factorized: OnnxModel, names: list[
                 mini.ir_version = original.proto.ir_version
                 minis[name] = (ort.InferenceSession(mini.SerializeToString(), providers=["CPUExecutionProvider"]), acts)
             sess, acts = minis[name]
-            approx = sess.run(None, {i: values[i] for i in acts})[0].astype(np.float64)
-            exact = np.asarray(values[nodes[-1].output[0]], dtype=np.float64)
-            num[name] += float(np.sum((exact - approx) ** 2))
-            den[name] += float(np.sum(exact**2))
-    return {n: (float(np.sqrt(num[n] / den[n])) if den[n] > 0 else 0.0) for n in names}
+            approx = sess.run(None, {i: values[i] for i in acts})[0]
+            sink(name, np.asarray(values[nodes[-1].output[0]]), approx)
+
+
+@contextlib.contextmanager
+def timing(models, threads: int):
+    """Nothing to set around a latency measurement: threads are a session option (see :func:`timer`)."""
+    yield
 
 
 def timer(model: OnnxModel, inputs, threads: int):
-    """A zero-argument callable running one batch, for latency measurement."""
+    """A zero-argument callable running one batch in a session with ``threads`` intra-op threads."""
     session = _session(model, threads)
     fed = feed(model, inputs)
     return lambda: session.run(None, fed)
@@ -621,30 +663,45 @@ def layer_rows(record: LayerRecord, x: np.ndarray) -> Iterator[np.ndarray]:
         yield x.reshape(-1, x.shape[-1]).astype(np.float64)
 
 
-def _activations(model: OnnxModel, names: tuple, batch) -> dict[str, np.ndarray]:
-    session = _session(model, None, names)
+def _activations(model: OnnxModel, batch) -> dict[str, np.ndarray]:
+    """Graph inputs, outputs and every probed activation for one batch (one probe session)."""
+    session = _session(model, probe=True)
     fed = feed(model, batch)
     values = dict(zip([o.name for o in session.get_outputs()], session.run(None, fed)))
     values.update(fed)
     return values
 
 
-def gram_statistics(model: OnnxModel, records: list[LayerRecord], batches) -> dict[str, dict]:
-    """``G = sum x x^T`` per selected node over its activation input (exposed as extra outputs)."""
-    inits = {t.name for t in model.graph.initializer}
-    names = tuple(dict.fromkeys(r.options["activation"] for r in records if r.options["activation"] not in inits))
-    stats = {r.name: {"gram": None, "rows": 0} for r in records}
+def _count(batch) -> int:
+    return len(next(iter(batch.values()))) if isinstance(batch, dict) else len(batch)
+
+
+def stream_inputs(model: OnnxModel, records: list[LayerRecord], batches, sink) -> int:
+    """Every selected node's activation input (exposed as extra graph outputs of one probe session
+    per model), as blocks of rows: ``sink(name, rows)``. Returns the number of samples."""
     samples = 0
     for batch in batches:
-        values = _activations(model, names, batch)
-        samples += len(next(iter(batch.values()))) if isinstance(batch, dict) else len(batch)
+        values = _activations(model, batch)
+        samples += _count(batch)
         for r in records:
-            st = stats[r.name]
             for rows in layer_rows(r, values[r.options["activation"]]):
-                g = rows.T @ rows
-                st["gram"] = g if st["gram"] is None else st["gram"] + g
-                st["rows"] += rows.shape[0]
-    return {n: {**st, "samples": samples} for n, st in stats.items()}
+                sink(r.name, rows)
+    return samples
+
+
+def stream_paired_inputs(original: OnnxModel, current: OnnxModel, records: list[LayerRecord], batches, sink) -> int:
+    """``sink(name, x, x_new)``: each node's activation input in ``original`` and in ``current`` (the
+    same graph with nodes already split; activation names are unchanged), as paired row blocks.
+    One probe session per model."""
+    samples = 0
+    for batch in batches:
+        before, after = _activations(original, batch), _activations(current, batch)
+        samples += _count(batch)
+        for r in records:
+            act = r.options["activation"]
+            for x, y in zip(layer_rows(r, before[act]), layer_rows(r, after[act])):
+                sink(r.name, x, y)
+    return samples
 
 
 def call_order(model: OnnxModel, records: list[LayerRecord], sample) -> list[str]:
@@ -652,16 +709,11 @@ def call_order(model: OnnxModel, records: list[LayerRecord], sample) -> list[str
     return [r.name for r in records]
 
 
-def cross_statistics(original: OnnxModel, current: OnnxModel, record: LayerRecord, batches) -> dict:
-    """C = sum x x'^T and G' = sum x' x'^T for one node: x from ``original``, x' from ``current``
-    (the same graph with the upstream nodes already split; activation names are unchanged)."""
-    name = (record.options["activation"],)
-    cross = gram = None
-    for batch in batches:
-        xs = list(layer_rows(record, _activations(original, name, batch)[name[0]]))
-        ys = list(layer_rows(record, _activations(current, name, batch)[name[0]]))
-        for x, y in zip(xs, ys):
-            c, g = x.T @ y, y.T @ y
-            cross = c if cross is None else cross + c
-            gram = g if gram is None else gram + g
-    return {"cross": cross, "gram": gram}
+def read_factors(model: OnnxModel, names: list[str]):
+    raise InputError("an ONNX model has no trainable factors to read back")
+
+
+def save_model(model: OnnxModel, folder: Path) -> list[str]:
+    """Write ``folder/model.onnx`` (plus ``model.onnx.data`` for external data); the file names."""
+    save(model, Path(folder) / "model.onnx")
+    return sorted(p.name for p in Path(folder).iterdir() if p.name.startswith("model.onnx"))

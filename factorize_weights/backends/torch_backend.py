@@ -293,22 +293,32 @@ def rewrite(
     model: nn.Module,
     records: Iterable[LayerRecord],
     factors: dict[str, tuple[np.ndarray, np.ndarray]],
+    *,
+    in_place: bool = False,
 ) -> nn.Module:
-    """A deep copy of ``model`` with each layer in ``factors`` replaced by its :class:`FactorPair`.
+    """``model`` with each layer in ``factors`` replaced by its :class:`FactorPair`.
 
-    The user's ``model`` is not modified. ``factors[name] = (A, X)`` with A (out, k), X (k, n).
+    By default a copy: the user's ``model`` is not modified, and the layers being replaced are not
+    copied first (they would be thrown away), so the peak is one model plus the factors. With
+    ``in_place`` the given model (a working copy) is patched. ``factors[name] = (A, X)`` with
+    A (out, k), X (k, n).
     """
-    new = copy.deepcopy(model)
     by_name = {r.name: r for r in records}
     for name, (a, x) in factors.items():
-        record = by_name[name]
-        old = new.get_submodule(name)
-        m, n = record.matrix_shape
+        m, n = by_name[name].matrix_shape
         if a.shape[0] != m or x.shape[1] != n or a.shape[1] != x.shape[0]:
-            raise ValueError(
-                f"layer {name!r}: factors {a.shape} @ {x.shape} do not make its {m}x{n} matrix"
-            )
-        _set_submodule(new, name, _factor_pair(old, record, a, x))
+            raise ValueError(f"layer {name!r}: factors {a.shape} @ {x.shape} do not make its {m}x{n} matrix")
+    if in_place:
+        new = model
+    else:
+        # deepcopy's memo maps each replaced module to a placeholder, so its weights are never copied
+        memo = {id(model.get_submodule(name)): nn.Identity() for name in factors}
+        new = copy.deepcopy(model, memo)
+    for name, (a, x) in factors.items():
+        old = model.get_submodule(name) if not in_place else new.get_submodule(name)
+        if isinstance(old, FactorPair):  # a refit of a layer already split in this working copy
+            old = by_name[name].handle
+        _set_submodule(new, name, _factor_pair(old, by_name[name], a, x))
     return new
 
 
@@ -345,7 +355,7 @@ def load_saved_weights(model: nn.Module, path: str | Path) -> None:
 # ---------------------------------------------------------------- running
 
 
-def _to_tensor(array: np.ndarray, model: nn.Module) -> torch.Tensor:
+def to_tensor(array: np.ndarray, model: nn.Module) -> torch.Tensor:
     t = torch.from_numpy(np.ascontiguousarray(array))
     param = next(model.parameters(), None)
     if t.is_floating_point() and param is not None:
@@ -366,7 +376,7 @@ def _to_numpy(out) -> np.ndarray:
 
 
 @contextlib.contextmanager
-def _inference(model: nn.Module):
+def inference(model: nn.Module):
     """no_grad and eval() for the duration (dropout off, batch-norm frozen); the caller's
     train/eval flags are restored afterwards."""
     flags = [(m, m.training) for m in model.modules()]
@@ -384,15 +394,22 @@ def predict(model: nn.Module, inputs: np.ndarray, *, source: str = "--heldout") 
     names the data in errors."""
     if isinstance(inputs, dict):
         raise InputError(f"{source}: missing array 'inputs' (arrays found: {', '.join(sorted(inputs))})")
-    with _inference(model):
-        return _to_numpy(model(_to_tensor(inputs, model)))
+    with inference(model):
+        return _to_numpy(model(to_tensor(inputs, model)))
 
 
-def measure_positions(model: nn.Module, records: list[LayerRecord], sample: np.ndarray) -> None:
+def measure_positions(model: nn.Module, records: list[LayerRecord], sample: np.ndarray) -> int:
     """Set each record's output positions per sample by one forward pass on one sample: 1 for a
     linear layer on (N, in), T for (N, T, in), the output length or area for a convolution; a
-    layer called several times per forward counts every call."""
+    layer called several times per forward counts every call. Returns the bytes of all module
+    outputs of that sample (an upper bound on the activation memory one sample needs)."""
     hooks = []
+    total = [0]
+
+    def count(module, args, output):
+        if isinstance(output, torch.Tensor):
+            total[0] += output.numel() * output.element_size()
+
     for record in records:
         if record.skip_reason is not None:
             continue
@@ -406,56 +423,57 @@ def measure_positions(model: nn.Module, records: list[LayerRecord], sample: np.n
                 record.positions += int(np.prod(shape[2:]))
 
         hooks.append(record.handle.register_forward_hook(hook))
+    hooks += [m.register_forward_hook(count) for m in model.modules() if not list(m.children())]
     _run_once(model, sample, hooks)
+    return int(total[0])
 
 
-def layer_output_errors(
-    original: nn.Module,
-    factorized: nn.Module,
-    names: list[str],
-    batches: Iterator[np.ndarray],
-) -> dict[str, float]:
-    """Relative output error of each factorized layer on the inputs the original layer sees:
-    ``||f(x) - g(x)||_F / ||f(x)||_F`` summed over the batches."""
-    num = {n: 0.0 for n in names}
-    den = {n: 0.0 for n in names}
+def stream_layer_outputs(original: nn.Module, factorized: nn.Module, names: list[str], batches, sink) -> None:
+    """For each batch and each call of each layer in ``names``: ``sink(name, exact, approx)``, the
+    original layer's output and its factor pair's output on the same inputs (numpy arrays)."""
     hooks = []
     for name in names:
-        layer = original.get_submodule(name)
         pair = factorized.get_submodule(name)
 
         def hook(module, args, output, name=name, pair=pair):
-            approx = pair(args[0])
-            num[name] += float(torch.sum((output.double() - approx.double()) ** 2))
-            den[name] += float(torch.sum(output.double() ** 2))
+            sink(name, output.detach().numpy(), pair(args[0]).detach().numpy())
 
-        hooks.append(layer.register_forward_hook(hook))
+        hooks.append(original.get_submodule(name).register_forward_hook(hook))
     try:
-        with _inference(original), _inference(factorized):
+        with inference(original), inference(factorized):
             for batch in batches:
-                original(_to_tensor(batch, original))
+                original(to_tensor(batch, original))
     finally:
         for h in hooks:
             h.remove()
-    return {n: (float(np.sqrt(num[n] / den[n])) if den[n] > 0 else 0.0) for n in names}
 
 
 @contextlib.contextmanager
-def _threads(n: int):
+def timing(models: Sequence[nn.Module], threads: int):
+    """For the duration: ``threads`` torch threads and eval mode on every model; both restored
+    afterwards. Set once around a latency measurement, so that the timed calls run the forward
+    pass and nothing else (walking the modules to set eval() costs more on a factorized model,
+    which has more modules, and would bias the comparison)."""
     old = torch.get_num_threads()
-    torch.set_num_threads(n)
+    flags = [(m, m.training) for model in models for m in model.modules()]
+    torch.set_num_threads(threads)
+    for model in models:
+        model.eval()
     try:
         yield
     finally:
         torch.set_num_threads(old)
+        for m, flag in flags:
+            m.training = flag
 
 
 def timer(model: nn.Module, inputs: np.ndarray, threads: int):
-    """A zero-argument callable running one batch in eval/inference mode with ``threads`` threads."""
-    tensor = _to_tensor(inputs, model)
+    """A zero-argument callable that runs one forward pass in inference mode; call it inside
+    :func:`timing` (threads and eval mode are set there, not per call)."""
+    tensor = to_tensor(inputs, model)
 
     def run():
-        with _threads(threads), _inference(model), torch.inference_mode():
+        with torch.inference_mode():
             model(tensor)
 
     return run
@@ -466,29 +484,31 @@ def export_onnx(model: nn.Module, sample: np.ndarray, path, *, opset: int = 17) 
     nothing beyond torch itself)."""
     import warnings
 
-    tensor = _to_tensor(sample, model)
-    with warnings.catch_warnings(), _inference(model):
+    tensor = to_tensor(sample, model)
+    with warnings.catch_warnings(), inference(model):
         warnings.simplefilter("ignore")
         torch.onnx.export(model, (tensor,), str(path), dynamo=False, input_names=["input"],
                           output_names=["output"], opset_version=opset,
                           dynamic_axes={"input": {0: "batch"}, "output": {0: "batch"}})
 
 
-# ---------------------------------------------------------------- calibration statistics
+# ---------------------------------------------------------------- calibration inputs
 
 #: Bytes of unfolded convolution patches materialized at once (the unfold is chunked over samples).
 UNFOLD_CHUNK_BYTES = 64 * 2**20
 
 
-def layer_rows(record: LayerRecord, module: nn.Module, x: torch.Tensor) -> Iterator[torch.Tensor]:
+def layer_rows(record: LayerRecord, x: torch.Tensor) -> Iterator[torch.Tensor]:
     """The layer's input as rows of its matrix view's input space, float64, in chunks:
-    (rows, in) for a linear layer, (rows, in_channels*kh*kw) unfolded patches for a convolution.
-    Patch columns are ordered (channel, kh, kw) like ``weight.reshape(out, -1)``."""
-    if record.kind == "linear":
-        yield x.detach().reshape(-1, x.shape[-1]).double()
-        return
-    conv2d = record.kind == "conv2d"
+    (rows, in) for a linear layer, (rows, in_channels*kh*kw) unfolded patches for a convolution
+    (geometry from the original module, ``record.handle``). Patch columns are ordered
+    (channel, kh, kw) like ``weight.reshape(out, -1)``."""
     x = x.detach()
+    if record.kind == "linear":
+        yield x.reshape(-1, x.shape[-1]).double()
+        return
+    module = record.handle
+    conv2d = record.kind == "conv2d"
     if not conv2d:  # (N, C, L) -> (N, C, 1, L)
         x = x.unsqueeze(2)
     kernel = module.kernel_size if conv2d else (1, module.kernel_size[0])
@@ -507,35 +527,69 @@ def layer_rows(record: LayerRecord, module: nn.Module, x: torch.Tensor) -> Itera
         yield cols.transpose(1, 2).reshape(-1, n)
 
 
-def gram_statistics(model: nn.Module, records: list[LayerRecord], batches) -> dict[str, dict]:
-    """For every selected layer, ``G = sum x x^T`` over its calibration inputs (float64, n x n),
-    streamed over batches and chunks; also the row count and the number of samples."""
-    stats = {r.name: {"gram": None, "rows": 0} for r in records}
+def stream_inputs(model: nn.Module, records: list[LayerRecord], batches, sink) -> int:
+    """Run ``model`` on every batch; at each call of each record's layer, ``sink(name, rows)`` for
+    every block of its input rows (float64 numpy, see :func:`layer_rows`). Nothing is kept between
+    calls. Returns the number of samples."""
     hooks = []
     for record in records:
         def hook(module, args, output, record=record):
-            st = stats[record.name]
-            for rows in layer_rows(record, module, args[0]):
-                g = rows.T @ rows
-                st["gram"] = g if st["gram"] is None else st["gram"] + g
-                st["rows"] += rows.shape[0]
+            for rows in layer_rows(record, args[0]):
+                sink(record.name, rows.numpy())
 
-        hooks.append(record.handle.register_forward_hook(hook))
+        hooks.append(model.get_submodule(record.name).register_forward_hook(hook))
     samples = 0
     try:
-        with _inference(model):
+        with inference(model):
             for batch in batches:
-                model(_to_tensor(batch, model))
+                model(to_tensor(batch, model))
                 samples += len(batch)
     finally:
         for h in hooks:
             h.remove()
-    return {name: {"gram": st["gram"].numpy() if st["gram"] is not None else None,
-                   "rows": st["rows"], "samples": samples} for name, st in stats.items()}
+    return samples
+
+
+def stream_paired_inputs(original: nn.Module, current: nn.Module, records: list[LayerRecord], batches, sink) -> int:
+    """Run both models on every batch; for each call of each record's layer, ``sink(name, x, x_new)``
+    with paired row blocks: its input in ``original`` and in ``current`` (the same model with
+    layers already split) on the same samples. Per batch, the original's inputs of the records'
+    layers are held until ``current`` reaches the same call (the batch size bounds this)."""
+    held: dict[str, list] = {r.name: [] for r in records}
+    used: dict[str, int] = {r.name: 0 for r in records}
+    hooks = []
+    for record in records:
+        def keep(module, args, output, name=record.name):
+            held[name].append(args[0].detach())
+
+        def pair(module, args, output, record=record):
+            i = used[record.name]
+            used[record.name] += 1
+            x, held[record.name][i] = held[record.name][i], None  # freed as soon as it is used
+            for a, b in zip(layer_rows(record, x), layer_rows(record, args[0])):
+                sink(record.name, a.numpy(), b.numpy())
+
+        hooks.append(original.get_submodule(record.name).register_forward_hook(keep))
+        hooks.append(current.get_submodule(record.name).register_forward_hook(pair))
+    samples = 0
+    try:
+        with inference(original), inference(current):
+            for batch in batches:
+                for name in held:
+                    held[name].clear()
+                    used[name] = 0
+                original(to_tensor(batch, original))
+                current(to_tensor(batch, current))
+                samples += len(batch)
+    finally:
+        for h in hooks:
+            h.remove()
+    return samples
 
 
 def call_order(model: nn.Module, records: list[LayerRecord], sample: np.ndarray) -> list[str]:
-    """Names of the records in the order the forward pass first calls them."""
+    """Names of the records in the order one forward pass (on the first sample) first calls them;
+    records never called go last, in discovery order."""
     order: list[str] = []
     hooks = [r.handle.register_forward_hook(lambda m, a, o, name=r.name: order.append(name) if name not in order else None)
              for r in records]
@@ -546,43 +600,21 @@ def call_order(model: nn.Module, records: list[LayerRecord], sample: np.ndarray)
 def _run_once(model: nn.Module, sample: np.ndarray, hooks: list) -> None:
     """One forward pass on the first sample, then remove ``hooks`` whatever happens."""
     try:
-        with _inference(model):
-            model(_to_tensor(sample[:1], model))
+        with inference(model):
+            model(to_tensor(sample[:1], model))
     finally:
         for h in hooks:
             h.remove()
 
 
-def cross_statistics(original: nn.Module, current: nn.Module, record: LayerRecord, batches) -> dict:
-    """For one layer: C = sum x x'^T and G' = sum x' x'^T, where x are its inputs in ``original``
-    and x' the inputs the same samples produce in ``current`` (upstream layers already compressed)."""
-    got: dict[str, list] = {"orig": [], "cur": []}
-    mods = {"orig": original.get_submodule(record.name), "cur": current.get_submodule(record.name)}
-    hooks = [mods[k].register_forward_hook(lambda m, a, o, k=k: got[k].append(list(layer_rows(record, m, a[0]))))
-             for k in mods]
-    cross = gram = None
-    try:
-        with _inference(original), _inference(current):
-            for batch in batches:
-                got["orig"].clear()
-                got["cur"].clear()
-                original(_to_tensor(batch, original))
-                current(_to_tensor(batch, current))
-                for xs, ys in zip(got["orig"], got["cur"]):  # one entry per call of the layer
-                    for x, y in zip(xs, ys):
-                        c, g = x.T @ y, y.T @ y
-                        cross = c if cross is None else cross + c
-                        gram = g if gram is None else gram + g
-    finally:
-        for h in hooks:
-            h.remove()
-    return {"cross": cross.numpy(), "gram": gram.numpy()}
+def check(model: nn.Module) -> None:
+    """Nothing to check beyond what the rewrite verified (the ONNX backend runs the checker)."""
 
 
-def replace_layer(model: nn.Module, record: LayerRecord, a: np.ndarray, x: np.ndarray) -> None:
-    """In place: swap one layer of ``model`` (a working copy) for its factor pair."""
-    old = model.get_submodule(record.name)
-    _set_submodule(model, record.name, _factor_pair(old, record, a, x))
+def save_model(model: nn.Module, folder: Path) -> list[str]:
+    """Write ``folder/model.safetensors``; the names of the files written."""
+    save_weights(model, Path(folder) / "model.safetensors")
+    return ["model.safetensors"]
 
 
 def factor_parameters(model: nn.Module) -> list[nn.Parameter]:

@@ -15,7 +15,7 @@ import torch
 from torch import nn
 from tqdm.auto import tqdm
 
-from .torch_backend import _inference, _to_tensor, factor_parameters
+from .torch_backend import inference, to_tensor, factor_parameters
 
 
 def _loss(kind: str, student: torch.Tensor, teacher: torch.Tensor) -> torch.Tensor:
@@ -57,14 +57,14 @@ def recover(
     order = rng.permutation(n)
     n_val = max(1, int(round(validation_fraction * n))) if n > 1 else 0
     val_idx, train_idx = order[:n_val], order[n_val:] if n > n_val else order
-    x_all = _to_tensor(inputs, factorized)
-    with _inference(original):
+    x_all = to_tensor(inputs, factorized)
+    with inference(original):
         teacher_all = _first(original(x_all)).detach()
 
     def val_loss() -> float:
         if n_val == 0:
             return float("nan")
-        with _inference(factorized):
+        with inference(factorized):
             return float(_loss(loss, _first(factorized(x_all[val_idx])), teacher_all[val_idx]))
 
     gen = torch.Generator().manual_seed(seed)

@@ -1,0 +1,186 @@
+"""Factorization methods. A method is one object: given a layer's matrix (and, for calibrated
+methods, the second moment of its inputs) it decomposes it once into a :class:`Decomposition`,
+which hands the allocator its cost-error curve (a :class:`Spectrum`) and gives factors at any rank
+by slicing, with no second decomposition. A new method is one class here and one entry in
+:data:`METHODS`.
+
+- ``svd``: truncated SVD of the weights (Eckart & Young 1936), exact or randomized (Halko,
+  Martinsson & Tropp 2011).
+- ``whitened``: truncated SVD of W S with S S^T = G, mapped back by S^{-1}: the least output error
+  on the calibration inputs (Wang et al., "SVD-LLM", arXiv 2403.07378, 2024); see whiten.py.
+- ``columns``: k actual columns of W chosen by column-pivoted QR, the rest by least squares.
+
+Only the top ``max_saving_rank(m, n)`` singular triplets are kept (the allocator never chooses a
+rank at or above break-even), in float32 for float32 and float16 weights: the factors are written
+in the weights' own precision, and at break-even rank the kept triplets take about the space of
+the weight itself.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .columns import column_factors, column_spectrum
+from .records import max_saving_rank
+from .spectra import Spectrum, checked_matrix, choose_method, exact_svd, randomized_svd
+from .stats import ridge
+from .whiten import Whitening, whitened_svd, whitening
+
+
+def _check_rank(rank: int, top: int, name: str) -> None:
+    if not 1 <= rank <= top:
+        raise ValueError(f"layer {name!r}: rank {rank} is outside [1, {top}] (the ranks this decomposition kept)")
+
+
+@dataclass
+class Decomposition:
+    """``W ~= U_k diag(s_k) R_k`` at every rank k up to ``len(values)``.
+
+    Attributes
+    ----------
+    spectrum : Spectrum
+        The cost-error curve the allocator sees.
+    left : ndarray (m, t)
+        U_t.
+    values : ndarray (t,)
+        float64.
+    right : ndarray (t, n)
+        V_t^T for plain SVD; V_t^T S^{-1} for whitened factors.
+    extra : dict
+        What the report records about the decomposition (whitening method, ridge, ...).
+    """
+
+    spectrum: Spectrum
+    left: np.ndarray
+    values: np.ndarray
+    right: np.ndarray
+    extra: dict = field(default_factory=dict)
+
+    def factors(self, rank: int, split: str = "balanced") -> tuple[np.ndarray, np.ndarray]:
+        """A (m, rank), X (rank, n) in float64; ``split`` places the singular values (factors.py)."""
+        _check_rank(rank, len(self.values), self.spectrum.name)
+        u = self.left[:, :rank].astype(np.float64)
+        r = self.right[:rank].astype(np.float64)
+        s = self.values[:rank]
+        if split == "balanced":
+            root = np.sqrt(s)
+            return u * root, root[:, None] * r
+        return u * s, r
+
+    @property
+    def nbytes(self) -> int:
+        return int(self.left.nbytes + self.right.nbytes + self.values.nbytes)
+
+
+@dataclass
+class ColumnDecomposition:
+    """Pivoted-QR column order of W; factors at rank k are W[:, J_k] and the least-squares T."""
+
+    spectrum: Spectrum
+    matrix: np.ndarray
+    extra: dict = field(default_factory=dict)
+
+    def factors(self, rank: int, split: str = "balanced") -> tuple[np.ndarray, np.ndarray]:
+        _check_rank(rank, len(self.spectrum.singular_values), self.spectrum.name)
+        a, x, _ = column_factors(self.matrix.astype(np.float64), rank)
+        return a, x
+
+    @property
+    def nbytes(self) -> int:
+        return int(self.matrix.nbytes)
+
+
+def _store_dtype(dtype: str):
+    return np.float64 if dtype == "float64" else np.float32
+
+
+class PlainSvd:
+    """Truncated SVD of the weights; exact, or randomized only where that pays (see
+    :func:`spectra.choose_method`), the choice recorded in the spectrum."""
+
+    name = "svd"
+    needs_calibration = False
+
+    def __init__(self, svd: str = "auto", seed: int = 0, oversampling: int = 10, power_iterations: int = 2):
+        self.svd, self.seed, self.oversampling, self.power_iterations = svd, seed, oversampling, power_iterations
+
+    def decompose(self, name: str, matrix: np.ndarray, *, dtype: str = "float32", moments=None) -> Decomposition:
+        matrix = checked_matrix(name, matrix)
+        m, n = matrix.shape
+        top = max(max_saving_rank(m, n), 1)
+        total = float(np.sum(matrix * matrix))
+        how = choose_method((m, n), self.svd, top, self.oversampling)
+        if how == "randomized":
+            u, s, vt = randomized_svd(matrix, min(top, m, n), oversampling=self.oversampling,
+                                      power_iterations=self.power_iterations, seed=self.seed)
+            spectrum = Spectrum(name, (m, n), s, total, "randomized", self.seed, self.oversampling,
+                                self.power_iterations)
+        else:
+            u, s, vt = exact_svd(matrix)
+            spectrum = Spectrum(name, (m, n), s, total, "exact")
+        keep = _store_dtype(dtype)
+        return Decomposition(spectrum, np.ascontiguousarray(u[:, :top], dtype=keep), s[:top].copy(),
+                             np.ascontiguousarray(vt[:top], dtype=keep))
+
+
+class Whitened:
+    """Whitened truncation on calibration inputs: SVD of W S once, factors ``U_k Σ_k (V_k^T S^{-1})``.
+    The spectrum's total is ``||W S||_F^2`` (the layer's output energy on the calibration set), so
+    the allocator's normalized errors are relative output errors."""
+
+    name = "whitened"
+    needs_calibration = True
+
+    def __init__(self, ridge: float = 0.01):
+        self.ridge = ridge
+
+    def whitening(self, gram: np.ndarray) -> Whitening:
+        return whitening(ridge(gram, self.ridge))
+
+    def decompose(self, name: str, matrix: np.ndarray, *, dtype: str = "float32", moments=None) -> Decomposition:
+        if moments is None:
+            raise ValueError(f"layer {name!r}: whitened factors need the calibration moments of its inputs")
+        matrix = checked_matrix(name, matrix)
+        return self.decompose_whitened(name, matrix, self.whitening(moments), dtype=dtype)
+
+    @staticmethod
+    def decompose_whitened(name: str, matrix: np.ndarray, wh: Whitening, *, dtype: str = "float32") -> Decomposition:
+        """The decomposition of ``matrix`` under a given whitening (also used by sequential refits)."""
+        m, n = matrix.shape
+        top = max(max_saving_rank(m, n), 1)
+        u, s, vt = whitened_svd(matrix, wh)
+        total = float(np.sum(s * s))  # all of W S's singular values: ||W S||_F^2
+        keep = _store_dtype(dtype)
+        right = vt[:top] @ wh.s_inv  # (t, n): the split scales rows of V^T, so S^{-1} can come first
+        spectrum = Spectrum(name, (m, n), s, total, "exact")
+        extra = {"whitening": {"method": wh.method, "damping": wh.damping, "clamped": wh.clamped}}
+        return Decomposition(spectrum, np.ascontiguousarray(u[:, :top], dtype=keep), s[:top].copy(),
+                             np.ascontiguousarray(right, dtype=keep), extra)
+
+
+class Columns:
+    """Column-pivoted QR: the spectrum is the energy each pivot removes."""
+
+    name = "columns"
+    needs_calibration = False
+
+    def decompose(self, name: str, matrix: np.ndarray, *, dtype: str = "float32", moments=None) -> ColumnDecomposition:
+        matrix = checked_matrix(name, matrix)
+        top = max(max_saving_rank(*matrix.shape), 1)
+        return ColumnDecomposition(column_spectrum(name, matrix, top), matrix.astype(_store_dtype(dtype)))
+
+
+METHODS = {"svd": PlainSvd, "whitened": Whitened, "columns": Columns}
+
+
+def make(name: str, config) -> PlainSvd | Whitened | Columns:
+    """The method called ``name`` with its settings from a :class:`CompressConfig`."""
+    if name == "svd":
+        return PlainSvd(config.svd, config.seed, config.oversampling, config.power_iterations)
+    if name == "whitened":
+        return Whitened(config.damping)
+    if name == "columns":
+        return Columns()
+    raise ValueError(f"unknown method {name!r}; expected one of {', '.join(METHODS)}")

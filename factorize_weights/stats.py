@@ -1,0 +1,92 @@
+"""Calibration statistics, accumulated row block by row block into fixed-size sums.
+
+A backend yields the inputs a layer sees as rows of its matrix view's input space ((rows, in) for
+a linear layer, unfolded patches (rows, in_channels*kh*kw) for a convolution); everything done
+with the rows lives here, once. Memory is the accumulators (n x n per layer), never the samples.
+
+float64 stays here: the moments are sums over many thousands of rows, and their smallest
+eigenvalues set S^{-1} in the whitened factors, so float32 rounding of the sums (relative 1e-7 of
+the largest eigenvalue) would be of the size of a 1% ridge on wide layers.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+
+class Moments:
+    """``G = sum_rows x x^T`` (n x n, float64) and the number of rows.
+
+    Examples
+    --------
+    >>> acc = Moments(3)
+    >>> acc.add(np.ones((4, 3)))
+    >>> acc.gram[0, 0], acc.rows
+    (4.0, 4)
+    """
+
+    def __init__(self, n: int):
+        self.n = int(n)
+        self.gram: np.ndarray | None = None
+        self.rows = 0
+
+    def add(self, rows: np.ndarray) -> None:
+        """Add a block of rows (r, n); any float dtype, summed in float64."""
+        r = np.asarray(rows, dtype=np.float64)
+        if r.ndim != 2 or r.shape[1] != self.n:
+            raise ValueError(f"expected rows of width {self.n}; got shape {r.shape}")
+        g = r.T @ r  # (n, n); numpy uses a symmetric rank-k update for this pattern
+        if self.gram is None:
+            self.gram = g
+        else:
+            self.gram += g
+        self.rows += r.shape[0]
+
+    @property
+    def nbytes(self) -> int:
+        return 0 if self.gram is None else int(self.gram.nbytes)
+
+
+class CrossMoments:
+    """For paired rows x (original inputs) and x' (the inputs the compressed model produces on the
+    same samples): ``C = sum x x'^T`` and ``G' = sum x' x'^T`` (both n x n, float64)."""
+
+    def __init__(self, n: int):
+        self.n = int(n)
+        self.cross: np.ndarray | None = None
+        self.gram: np.ndarray | None = None
+        self.rows = 0
+
+    def add(self, x: np.ndarray, x_new: np.ndarray) -> None:
+        x = np.asarray(x, dtype=np.float64)
+        y = np.asarray(x_new, dtype=np.float64)
+        if x.shape != y.shape or x.ndim != 2 or x.shape[1] != self.n:
+            raise ValueError(f"expected two row blocks of width {self.n} and equal shape; got {x.shape}, {y.shape}")
+        c, g = x.T @ y, y.T @ y
+        if self.cross is None:
+            self.cross, self.gram = c, g
+        else:
+            self.cross += c
+            self.gram += g
+        self.rows += x.shape[0]
+
+
+def ridge(matrix: np.ndarray, alpha: float, reference: np.ndarray | None = None) -> np.ndarray:
+    """``matrix + alpha * mean(diag(reference)) * I``: a relative ridge (common practice, e.g. 1%
+    of the mean input energy) that keeps directions the calibration set never visits."""
+    if alpha <= 0:
+        return matrix
+    ref = matrix if reference is None else reference
+    lam = alpha * float(np.mean(np.diag(ref)))
+    return matrix + lam * np.eye(matrix.shape[0])
+
+
+def relative_error(sum_sq_diff: float, sum_sq_ref: float) -> float:
+    """``sqrt(sum |f - g|^2 / sum |f|^2)``, 0 when the reference is all zero."""
+    return float(np.sqrt(sum_sq_diff / sum_sq_ref)) if sum_sq_ref > 0 else 0.0
+
+
+def weight_error(w: np.ndarray, a: np.ndarray, x: np.ndarray) -> float:
+    """Measured ``||W - A X||_F / ||W||_F`` of a factor pair (0 for an all-zero W)."""
+    norm = np.linalg.norm(w)
+    return float(np.linalg.norm(w - a @ x) / norm) if norm > 0 else 0.0
