@@ -20,6 +20,7 @@ from .metrics import METRICS
 from .spectra import SVD_METHODS
 
 PROG = "factorize-weights"
+_DEFAULTS = CompressConfig()  # the one source of every default below
 
 EPILOG = """\
 exit codes: 0 success, 1 internal error, 2 bad input or usage, 3 gate failed (--fail-over)
@@ -56,36 +57,36 @@ def _selection(p: argparse.ArgumentParser) -> None:
     g = p.add_argument_group("layers and spectra")
     g.add_argument("--only", action="append", default=[], metavar="GLOB", help="consider only layers matching (repeatable)")
     g.add_argument("--skip", action="append", default=[], metavar="GLOB", help="leave layers matching dense (repeatable)")
-    g.add_argument("--svd", choices=SVD_METHODS, default="auto", help="exact, randomized, or auto (randomized when min side >= 1024)")
-    g.add_argument("--seed", type=int, default=0, help="seed of the randomized SVD (default 0)")
-    g.add_argument("--oversampling", type=int, default=10, help="randomized SVD oversampling p (default 10)")
-    g.add_argument("--power-iterations", type=int, default=2, help="randomized SVD power iterations q (default 2)")
+    g.add_argument("--svd", choices=SVD_METHODS, default=_DEFAULTS.svd, help="exact, randomized, or auto (randomized only where the choosable ranks are well below the smaller side)")
+    g.add_argument("--seed", type=int, default=_DEFAULTS.seed, help=f"seed of the randomized SVD (default {_DEFAULTS.seed})")
+    g.add_argument("--oversampling", type=int, default=_DEFAULTS.oversampling, help=f"randomized SVD oversampling p (default {_DEFAULTS.oversampling})")
+    g.add_argument("--power-iterations", type=int, default=_DEFAULTS.power_iterations, help=f"randomized SVD power iterations q (default {_DEFAULTS.power_iterations})")
 
 
 def _plan_options(p: argparse.ArgumentParser, *, sweep: bool = False) -> None:
     g = p.add_argument_group("factors")
-    g.add_argument("--method", choices=METHODS, default="auto",
+    g.add_argument("--method", choices=METHODS, default=_DEFAULTS.method,
                    help="svd (weights only), whitened (calibrated on real inputs), columns (pivoted-QR columns); "
                         "auto: whitened with --calibration, else svd")
-    g.add_argument("--split", choices=SPLITS, default="balanced", help="how singular values are shared by the factors")
-    g.add_argument("--rank-multiple", type=int, default=1, metavar="N", help="round ranks to multiples of N (e.g. 8)")
-    g.add_argument("--min-rank", type=int, default=1, metavar="N", help="lowest rank of a factorized layer")
+    g.add_argument("--split", choices=SPLITS, default=_DEFAULTS.split, help="how singular values are shared by the factors")
+    g.add_argument("--rank-multiple", type=int, default=_DEFAULTS.rank_multiple, metavar="N", help="round ranks to multiples of N (e.g. 8)")
+    g.add_argument("--min-rank", type=int, default=_DEFAULTS.min_rank, metavar="N", help="lowest rank of a factorized layer")
     g = p.add_argument_group("calibration (data-aware factors; never the held-out set)")
     g.add_argument("--calibration", metavar="DATA", help="calibration .npz (inputs[, labels]) or FILE.py:FUNCTION")
     g.add_argument("--allow-overlap", action="store_true", help="allow the same data for --calibration and --heldout")
-    g.add_argument("--damping", type=float, default=0.01, metavar="A",
-                   help="ridge added to the calibration moments, as a fraction of their mean diagonal (default 0.01)")
-    g.add_argument("--sequential", action=argparse.BooleanOptionalAction, default=None,
+    g.add_argument("--damping", type=float, default=_DEFAULTS.damping, metavar="A",
+                   help=f"ridge added to the calibration moments, as a fraction of their mean diagonal (default {_DEFAULTS.damping})")
+    g.add_argument("--sequential", action=argparse.BooleanOptionalAction, default=_DEFAULTS.sequential,
                    help="refit layers in forward order to the original outputs (reduced-rank regression); "
                         "on by default with whitened factors")
-    g.add_argument("--recover", type=int, default=0, metavar="STEPS",
+    g.add_argument("--recover", type=int, default=_DEFAULTS.recover, metavar="STEPS",
                    help="PyTorch: fine-tune only the factors for up to STEPS steps on the calibration inputs")
-    g.add_argument("--recover-lr", type=float, default=1e-4, metavar="LR", help="recovery learning rate (default 1e-4)")
+    g.add_argument("--recover-lr", type=float, default=_DEFAULTS.recover_lr, metavar="LR", help=f"recovery learning rate (default {_DEFAULTS.recover_lr:g})")
     g = p.add_argument_group("evaluation and output")
     g.add_argument("--heldout", metavar="DATA", help="held-out .npz (inputs[, labels]) or FILE.py:FUNCTION")
     g.add_argument("--metric", choices=METRICS, help="default: top1 with class labels, mse with float targets, else cosine")
-    g.add_argument("--batch-size", type=int, default=256, help="held-out batch size (default 256)")
-    g.add_argument("--error-samples", type=int, default=256, help="held-out samples for per-layer output error")
+    g.add_argument("--batch-size", type=int, default=_DEFAULTS.batch_size, help=f"largest held-out and calibration batch (default {_DEFAULTS.batch_size}; cut to fit 256 MiB of activations)")
+    g.add_argument("--error-samples", type=int, default=_DEFAULTS.error_samples, help="held-out samples for per-layer output error")
     g.add_argument("--out", metavar="DIR", help="write the results here (atomically)")
     g.add_argument("--force", action="store_true", help="replace a non-empty --out folder")
     if not sweep:
@@ -95,10 +96,10 @@ def _plan_options(p: argparse.ArgumentParser, *, sweep: bool = False) -> None:
                        help="ONNX: also quantize to int8 (onnxruntime dynamic) and compare original, factorized, "
                             "int8-only and factorized+int8 (size, metric, latency)")
     g = p.add_argument_group("latency (measured on the CPU when --heldout is given)")
-    g.add_argument("--latency-batch", type=int, default=1, metavar="N", help="batch size of the timed runs (default 1)")
-    g.add_argument("--latency-threads", type=int, default=1, metavar="N", help="CPU threads (default 1)")
-    g.add_argument("--latency-repeats", type=int, default=30, metavar="N", help="timed runs per model (default 30; 0: off)")
-    g.add_argument("--latency-warmup", type=int, default=5, metavar="N", help="untimed runs first (default 5)")
+    g.add_argument("--latency-batch", type=int, default=_DEFAULTS.latency_batch, metavar="N", help=f"batch size of the timed runs (default {_DEFAULTS.latency_batch})")
+    g.add_argument("--latency-threads", type=int, default=_DEFAULTS.latency_threads, metavar="N", help=f"CPU threads (default {_DEFAULTS.latency_threads})")
+    g.add_argument("--latency-repeats", type=int, default=_DEFAULTS.latency_repeats, metavar="N", help=f"timed runs per model (default {_DEFAULTS.latency_repeats}; 0: off)")
+    g.add_argument("--latency-warmup", type=int, default=_DEFAULTS.latency_warmup, metavar="N", help=f"untimed runs first (default {_DEFAULTS.latency_warmup})")
     g = p.add_argument_group("run file")
     g.add_argument("--config", metavar="RUN.toml",
                    help="read any option of this command from a TOML file; flags on the command line win")
@@ -281,10 +282,9 @@ def _verbose(args, report: dict) -> None:
 def cmd_compress(args) -> int:
     from pathlib import Path
 
-    from .pipeline import check_outputs_requested, prepare, realize, save_result
+    from .pipeline import compress
     from .report import layer_table, summary_line
-    from .store import check_out_dir
-    from .sweep import POINT_UNITS, drop_of, search_budget
+    from .sweep import POINT_UNITS, drop_of
 
     if (args.budget is None) == (args.max_drop is None):
         raise InputError("give exactly one of --budget and --max-drop")
@@ -299,21 +299,8 @@ def cmd_compress(args) -> int:
     config = _plan_config(args, args.budget or "params=1")
     model, sources = _load_model(args)
     heldout, calibration = _heldout(args), _calibration(args)
-    if args.out:
-        from .pipeline import input_paths
-
-        check_out_dir(args.out, args.force, input_paths(sources, heldout, calibration))
-    check_outputs_requested(model, config, heldout, args.out)
-    if args.max_drop is not None:
-        prep = prepare(model, config, heldout, calibration, budgets=["params=1"])
-        budget, search, _ = search_budget(prep, args.max_drop)
-        prep.config = config = dataclasses.replace(config, budget=budget)
-        result = realize(prep, budget, sources=sources)
-        result.report["search"] = search
-    else:
-        prep = prepare(model, config, heldout, calibration)
-        result = realize(prep, config.budget, sources=sources)
-    save_result(result, prep, args.out, args.force)
+    result = compress(model, config, heldout=heldout, out=args.out, force=args.force, sources=sources,
+                      calibration=calibration, max_drop=args.max_drop)
     for warning in (result.report.get("calibration") or {}).get("warnings", []):
         _warn(warning)
     _verbose(args, result.report)

@@ -426,8 +426,10 @@ def compress(
     force: bool = False,
     sources: dict | None = None,
     calibration: HeldOut | None = None,
+    max_drop: float | None = None,
 ) -> CompressResult:
-    """Plan, rewrite, evaluate, report and (with ``out``) save, in one call.
+    """Plan, rewrite, evaluate, report and (with ``out``) save, in one call. The CLI's
+    ``compress`` calls exactly this.
 
     Parameters
     ----------
@@ -444,6 +446,10 @@ def compress(
     calibration : HeldOut, optional
         Inputs for calibrated (whitened) factors, sequential refits and recovery; must not be
         the held-out set unless ``config.allow_overlap``.
+    max_drop : float, optional
+        Instead of ``config.budget``: the smallest params fraction whose held-out drop is at most
+        this (in the metric's units), found by bisection on one preparation; the report's
+        ``search`` entry lists every budget tried. Needs ``heldout``.
     """
     from . import store
 
@@ -451,8 +457,19 @@ def compress(
     if out is not None:
         store.check_out_dir(out, force, input_paths(sources, heldout, calibration))
     check_outputs_requested(model, config, heldout, out)
-    prep = prepare(model, config, heldout, calibration)
-    result = realize(prep, config.budget, sources=sources)
+    if max_drop is None:
+        prep = prepare(model, config, heldout, calibration)
+        result = realize(prep, config.budget, sources=sources)
+    else:
+        from .sweep import search_budget  # sweep builds on this module
+
+        if heldout is None:
+            raise InputError("--max-drop needs --heldout (the drop is measured on it)")
+        prep = prepare(model, config, heldout, calibration, budgets=["params=1"])
+        budget, search, _ = search_budget(prep, max_drop)
+        prep.config = config = dataclasses.replace(config, budget=budget)
+        result = realize(prep, budget, sources=sources)
+        result.report["search"] = search
     save_result(result, prep, out, force)
     return result
 

@@ -15,7 +15,7 @@ from pathlib import Path
 
 from ._version import __version__
 from .allocate import Plan
-from .backends import torch_backend as backend
+from .backends import backend_for
 from .config import CompressConfig
 from .errors import InputError
 from .records import LayerRecord
@@ -85,13 +85,7 @@ def _dump(path: Path, obj) -> None:
 def write_model(model, folder: Path) -> list[str]:
     """The factorized model in its own format: model.safetensors (PyTorch) or model.onnx (ONNX,
     with model.onnx.data when the input kept its weights as external data)."""
-    if type(model).__name__ == "OnnxModel":
-        from .backends import onnx_backend
-
-        onnx_backend.save(model, folder / "model.onnx")
-        return sorted(p.name for p in folder.iterdir() if p.name.startswith("model.onnx"))
-    backend.save_weights(model, folder / "model.safetensors")
-    return ["model.safetensors"]
+    return backend_for(model).save_model(model, folder)
 
 
 @contextlib.contextmanager
@@ -170,13 +164,15 @@ def load_factorized(model, folder: str | Path):
     """
     folder = Path(folder)
     plan = read_plan(folder)
-    if type(model).__name__ == "OnnxModel" or (folder / "model.onnx").is_file() and not (folder / "model.safetensors").is_file():
+    if backend_for(model).FORMAT == "onnx" or (folder / "model.onnx").is_file() and not (folder / "model.safetensors").is_file():
         from .backends import onnx_backend
 
         return onnx_backend.load(folder / "model.onnx")
     weights = folder / "model.safetensors"
     if not weights.is_file():
         raise InputError(f"{folder}: no model.safetensors")
+    from .backends import torch_backend as backend
+
     records = {r.name: r for r in backend.discover(model)}
     ranks = {}
     for entry in plan["layers"]:
