@@ -5,11 +5,11 @@ calls a backend through its interface; the statistics are in stats.py and the ma
 Cost, in passes over the calibration set:
 
 - moments: one forward pass of the original model; a Gram matrix per selected layer;
-- sequential refits, per budget: the layers are split into groups in forward order whose paired
-  moments (C and G', two n x n float64 matrices per layer) fit :data:`PAIRED_BYTES`; per group one
-  pass of the original and of the working copy, then the group's layers are refitted and patched
-  into the working copy in place, so the next group sees them. One group on models whose paired
-  moments fit (every layer then sees its upstream layers' whitened factors, not their refits).
+- sequential refits, per budget: the layers are split into at most ``config.sequential_groups``
+  consecutive groups in forward order (cut further where a group's paired moments, C and G', two
+  n x n float64 matrices per layer, would exceed :data:`PAIRED_BYTES`); per group one pass of the
+  original and of the working copy, then the group's layers are refitted and patched into the
+  working copy in place, so the next group sees them (see :func:`sequential_refit`).
 """
 
 from __future__ import annotations
@@ -129,34 +129,48 @@ def calibrate(model, records: list[LayerRecord], data: HeldOut, config: Compress
     return Calibration(data, moments, warnings, config.damping, gram_bytes, batch_size)
 
 
-def groups_in_order(order: list[str], records: dict[str, LayerRecord], limit: int = PAIRED_BYTES) -> list[list[str]]:
-    """Consecutive groups of layer names whose paired moments (2 n^2 float64 each) fit ``limit``."""
-    groups, current, used = [], [], 0
-    for name in order:
-        need = 2 * 8 * records[name].matrix_shape[1] ** 2
-        if current and used + need > limit:
-            groups.append(current)
-            current, used = [], 0
-        current.append(name)
-        used += need
-    return groups + ([current] if current else [])
+def groups_in_order(stages: list[list[str]], records: dict[str, LayerRecord], groups: int,
+                    limit: int = PAIRED_BYTES) -> list[list[str]]:
+    """Consecutive ``stages`` merged into at most ``groups`` groups of near-equal length, each cut
+    further (between layers) where its paired moments (2 n^2 float64 per layer) would exceed
+    ``limit``."""
+    size = -(-len(stages) // max(1, min(groups, len(stages))))
+    out = []
+    for start in range(0, len(stages), size):
+        current, used = [], 0
+        for name in (n for stage in stages[start:start + size] for n in stage):
+            need = 2 * 8 * records[name].matrix_shape[1] ** 2
+            if current and used + need > limit:
+                out.append(current)
+                current, used = [], 0
+            current.append(name)
+            used += need
+        out.append(current)
+    return out
 
 
-def sequential_refit(model, records: list[LayerRecord], factors, ranks: dict, cal: Calibration,
-                     config: CompressConfig, order: list[str]):
+def sequential_refit(model, records: list[LayerRecord], ranks: dict, cal: Calibration, config: CompressConfig,
+                     stages: list[list[str]]):
     """Refit the factorized layers to the *original* outputs from the inputs that the compressed
     layers upstream produce (reduced-rank regression, then whitened truncation), group by group in
     forward ``order``, on one working copy patched in place.
 
-    ``factors`` is the mapping of first factors (whitened, at ``ranks``) the working copy starts
-    from. Returns (the working copy, per-layer fit records, per-layer relative weight errors).
+    The working copy starts dense. Group g is fitted from one paired pass in which the groups
+    before it are already refitted and those from g on are still dense: a layer compensates the
+    errors of the groups upstream, never errors that a later refit would change (a layer fitted to
+    inputs that upstream layers will still move over-corrects: measured on the patch encoder at
+    params=0.1, fitting every layer in one pass after whitened truncation upstream kept 11.9% top-1
+    against 87.4% for one layer at a time). With one layer per group this is the exact layer-by-
+    layer refit; ``config.sequential_groups`` caps the number of groups, hence of passes.
+
+    Returns (the working copy, per-layer fit records, per-layer relative weight errors).
     """
     backend = backend_for(model)
     by_name = {r.name: r for r in records}
-    chosen = [n for n in order if ranks.get(n) is not None]
-    working = backend.rewrite(model, records, factors)
+    chosen = [kept for stage in stages if (kept := [n for n in stage if ranks.get(n) is not None])]
+    working = backend.rewrite(model, records, {})  # one dense copy, patched group by group
     fits, errors = {}, {}
-    groups = groups_in_order(chosen, by_name)
+    groups = groups_in_order(chosen, by_name, config.sequential_groups)
     for i, group in enumerate(groups):
         recs = [by_name[n] for n in group]
         desc = "sequential refit" if len(groups) == 1 else f"sequential refit {i + 1}/{len(groups)}"

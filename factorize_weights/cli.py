@@ -79,6 +79,9 @@ def _plan_options(p: argparse.ArgumentParser, *, sweep: bool = False) -> None:
     g.add_argument("--sequential", action=argparse.BooleanOptionalAction, default=_DEFAULTS.sequential,
                    help="refit layers in forward order to the original outputs (reduced-rank regression); "
                         "on by default with whitened factors")
+    g.add_argument("--sequential-groups", type=int, default=_DEFAULTS.sequential_groups, metavar="N",
+                   help=f"most passes of a sequential refit: layers are refitted in N groups in forward order "
+                        f"(default {_DEFAULTS.sequential_groups}; one group per layer is exact layer by layer)")
     g.add_argument("--recover", type=int, default=_DEFAULTS.recover, metavar="STEPS",
                    help="PyTorch: fine-tune only the factors for up to STEPS steps on the calibration inputs")
     g.add_argument("--recover-lr", type=float, default=_DEFAULTS.recover_lr, metavar="LR", help=f"recovery learning rate (default {_DEFAULTS.recover_lr:g})")
@@ -239,7 +242,7 @@ def _plan_config(args, budget: str) -> CompressConfig:
                    latency_batch=args.latency_batch, latency_threads=args.latency_threads,
                    latency_repeats=args.latency_repeats, latency_warmup=args.latency_warmup,
                    export_onnx=getattr(args, "export_onnx", False), int8=getattr(args, "int8", False),
-                   sequential=args.sequential, recover=args.recover, recover_lr=args.recover_lr,
+                   sequential=args.sequential, sequential_groups=args.sequential_groups, recover=args.recover, recover_lr=args.recover_lr,
                    allow_overlap=args.allow_overlap, damping=args.damping)
 
 

@@ -41,6 +41,9 @@ class CompressConfig:
     # refit layers in forward order to the original outputs; None: on for whitened (it won or tied
     # every row of reports/accuracy.md), off otherwise
     sequential: bool | None = None
+    # most passes a sequential refit makes (groups of consecutive layers, fitted in forward order);
+    # one per layer is the exact layer-by-layer refit
+    sequential_groups: int = 64
     recover: int = 0  # fine-tuning steps of the factors after factorization (needs calibration); 0: off
     recover_lr: float = 1e-4  # 1e-3 overshot on whitened factors (validation loss rose at once; measured)
     # ridge on the calibration moments, relative to their mean diagonal: 1% (common practice) kept
@@ -70,7 +73,7 @@ class CompressConfig:
             raise InputError(f"--damping must be in [0, 1); got {self.damping!r}")
         if not (isinstance(self.recover_lr, (int, float)) and 0 < self.recover_lr < 1):
             raise InputError(f"--recover-lr must be in (0, 1); got {self.recover_lr!r}")
-        minimum = {"recover": 0, "rank_multiple": 1, "min_rank": 1, "batch_size": 1, "oversampling": 0,
+        minimum = {"recover": 0, "sequential_groups": 1, "rank_multiple": 1, "min_rank": 1, "batch_size": 1, "oversampling": 0,
                    "power_iterations": 0, "error_samples": 0, "seed": 0, "latency_batch": 1,
                    "latency_threads": 1, "latency_warmup": 0, "latency_repeats": 0}
         for name, low in minimum.items():

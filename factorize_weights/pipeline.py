@@ -200,7 +200,7 @@ class Prepared:
     reference: list = field(default_factory=list)  # [(original outputs, labels)] per held-out batch
     timings: dict = field(default_factory=dict)
     batch_size: int = 256
-    order: list = field(default_factory=list)  # selected layer names in forward order
+    order: list = field(default_factory=list)  # selected layer names in forward order, in stages
 
     @property
     def backend(self):
@@ -249,11 +249,11 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
     for budget in parsed:
         check_feasible(chosen, budget, rank_multiple=config.rank_multiple, min_rank=config.min_rank)
     sequential = config.resolved_sequential(method)
-    cal, order = None, [r.name for r in chosen]
+    cal, order = None, [[r.name] for r in chosen]
     if calibration is not None:
         check_fits(model, calibration, "--calibration")
         if sequential:
-            order = backend.call_order(model, chosen, calibration.inputs)
+            order = backend.call_stages(model, chosen, calibration.inputs)
         t1 = time.perf_counter()
         cal = calibrate(model, records, calibration, config, size, moments=method == "whitened")
         timings["calibrate"] = time.perf_counter() - t1
@@ -330,8 +330,8 @@ def realize(prep: Prepared, budget: str, *, sources: dict | None = None, latency
     factors = PlannedFactors(prep.records, plan.ranks, prep.decompositions, config.split)
     fits, measured = {}, factors.weight_errors
     if prep.sequential and len(factors):
-        factorized, fits, measured = sequential_refit(model, prep.records, factors, plan.ranks, prep.calibration,
-                                                      config, prep.order)
+        factorized, fits, measured = sequential_refit(model, prep.records, plan.ranks, prep.calibration, config,
+                                                      prep.order)
     else:
         factorized = backend.rewrite(model, prep.records, factors)
     recovery = None

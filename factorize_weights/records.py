@@ -40,6 +40,9 @@ class LayerRecord:
         once measured on a sample input; FLOPs = multiply-adds per position x positions.
     backend : str
         ``"torch"`` or ``"onnx"``: which backend made the record (and can read its weight).
+    calls : int or None
+        How often one forward pass calls the layer, once measured (sequential refits stop a pass
+        when every layer they fit has run that often).
     """
 
     name: str
@@ -53,6 +56,7 @@ class LayerRecord:
     handle: Any = field(default=None, repr=False, compare=False)
     positions: int | None = None
     backend: str = "torch"
+    calls: int | None = None
 
     @property
     def weight_params(self) -> int:

@@ -42,8 +42,8 @@ class Backend(Protocol):
     def measure_positions(self, model, records: list[LayerRecord], sample) -> int:
         """Set each record's output positions per sample; return activation bytes per sample."""
 
-    def call_order(self, model, records: list[LayerRecord], sample) -> list[str]:
-        """Record names in the order a forward pass first reaches them."""
+    def call_stages(self, model, records: list[LayerRecord], sample) -> list[list[str]]:
+        """Record names in forward order, grouped in stages of layers that read the same input."""
 
     def stream_inputs(self, model, records: list[LayerRecord], batches: Iterable, sink: RowSink) -> int:
         """Run the batches; hand every block of each layer's input rows to ``sink``; sample count."""

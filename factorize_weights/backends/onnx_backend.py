@@ -363,7 +363,13 @@ def rewrite(model: OnnxModel, records, factors: dict[str, tuple[np.ndarray, np.n
 
 
 def _refill(model: OnnxModel, records, factors) -> OnnxModel:
-    """Overwrite the initializers of already split pairs with new factors of the same ranks."""
+    """In place: nodes not split yet are split (the graph is rebuilt into ``model``); pairs
+    already split get their initializers overwritten with new factors of the same ranks."""
+    new = {n: f for n, f in factors.items() if n not in model.pairs}
+    if new:
+        rebuilt = rewrite(model, records, new)
+        model.proto, model.pairs = rebuilt.proto, {**model.pairs, **rebuilt.pairs}
+        factors = {n: f for n, f in factors.items() if n not in new}
     by_name = {r.name: r for r in records}
     inits = {t.name: t for t in model.graph.initializer}
     opset = _opset(model.proto)
@@ -704,9 +710,16 @@ def stream_paired_inputs(original: OnnxModel, current: OnnxModel, records: list[
     return samples
 
 
-def call_order(model: OnnxModel, records: list[LayerRecord], sample) -> list[str]:
-    """ONNX nodes are stored in topological order: that is the forward order."""
-    return [r.name for r in records]
+def call_stages(model: OnnxModel, records: list[LayerRecord], sample) -> list[list[str]]:
+    """ONNX nodes are stored in topological order: that is the forward order. Consecutive nodes
+    that read the same activation (none feeds another) share a stage."""
+    stages: list[list[str]] = []
+    for r in records:
+        if stages and stages[-1][-1][1] == r.options["activation"]:
+            stages[-1].append((r.name, r.options["activation"]))
+        else:
+            stages.append([(r.name, r.options["activation"])])
+    return [[name for name, _ in stage] for stage in stages]
 
 
 def read_factors(model: OnnxModel, names: list[str]):

@@ -550,17 +550,32 @@ def stream_inputs(model: nn.Module, records: list[LayerRecord], batches, sink) -
     return samples
 
 
+class _Enough(Exception):
+    """Raised by a hook to end a forward pass once every layer of interest has run."""
+
+
 def stream_paired_inputs(original: nn.Module, current: nn.Module, records: list[LayerRecord], batches, sink) -> int:
     """Run both models on every batch; for each call of each record's layer, ``sink(name, x, x_new)``
     with paired row blocks: its input in ``original`` and in ``current`` (the same model with
     layers already split) on the same samples. Per batch, the original's inputs of the records'
-    layers are held until ``current`` reaches the same call (the batch size bounds this)."""
+    layers are held until ``current`` reaches the same call (the batch size bounds this). When
+    every record knows its ``calls`` per pass (:func:`call_stages`), each forward pass stops as
+    soon as all of them have run, so fitting early layers does not pay for the whole model."""
     held: dict[str, list] = {r.name: [] for r in records}
     used: dict[str, int] = {r.name: 0 for r in records}
+    expected = sum(r.calls for r in records) if all(r.calls for r in records) else None
+    seen = [0, 0]
     hooks = []
+
+    def tick(which: int) -> None:
+        seen[which] += 1
+        if expected is not None and seen[which] >= expected:
+            raise _Enough
+
     for record in records:
         def keep(module, args, output, name=record.name):
             held[name].append(args[0].detach())
+            tick(0)
 
         def pair(module, args, output, record=record):
             i = used[record.name]
@@ -568,6 +583,7 @@ def stream_paired_inputs(original: nn.Module, current: nn.Module, records: list[
             x, held[record.name][i] = held[record.name][i], None  # freed as soon as it is used
             for a, b in zip(layer_rows(record, x), layer_rows(record, args[0])):
                 sink(record.name, a.numpy(), b.numpy())
+            tick(1)
 
         hooks.append(original.get_submodule(record.name).register_forward_hook(keep))
         hooks.append(current.get_submodule(record.name).register_forward_hook(pair))
@@ -578,8 +594,12 @@ def stream_paired_inputs(original: nn.Module, current: nn.Module, records: list[
                 for name in held:
                     held[name].clear()
                     used[name] = 0
-                original(to_tensor(batch, original))
-                current(to_tensor(batch, current))
+                seen[:] = [0, 0]
+                for model in (original, current):
+                    try:
+                        model(to_tensor(batch, model))
+                    except _Enough:
+                        pass
                 samples += len(batch)
     finally:
         for h in hooks:
@@ -587,14 +607,32 @@ def stream_paired_inputs(original: nn.Module, current: nn.Module, records: list[
     return samples
 
 
-def call_order(model: nn.Module, records: list[LayerRecord], sample: np.ndarray) -> list[str]:
-    """Names of the records in the order one forward pass (on the first sample) first calls them;
-    records never called go last, in discovery order."""
+def call_stages(model: nn.Module, records: list[LayerRecord], sample: np.ndarray) -> list[list[str]]:
+    """The records in the order one forward pass (on the first sample) first calls them, as stages:
+    consecutive layers that read the very same input tensor (attention's q, k and v projections)
+    share a stage, since none of them feeds another. Sets each record's ``calls`` (calls per
+    forward pass). Records never called go last, one stage each."""
     order: list[str] = []
-    hooks = [r.handle.register_forward_hook(lambda m, a, o, name=r.name: order.append(name) if name not in order else None)
-             for r in records]
+    keys: dict[str, tuple] = {}
+    for r in records:
+        r.calls = 0
+
+    def hook(module, args, output, record):
+        record.calls += 1
+        if record.name not in keys:
+            x = args[0]
+            keys[record.name] = (x.data_ptr(), tuple(x.shape), tuple(x.stride()))
+            order.append(record.name)
+
+    hooks = [r.handle.register_forward_hook(lambda m, a, o, r=r: hook(m, a, o, r)) for r in records]
     _run_once(model, sample, hooks)
-    return order + [r.name for r in records if r.name not in order]
+    stages: list[list[str]] = []
+    for name in order:
+        if stages and keys[stages[-1][-1]] == keys[name]:
+            stages[-1].append(name)
+        else:
+            stages.append([name])
+    return stages + [[r.name] for r in records if r.name not in keys]
 
 
 def _run_once(model: nn.Module, sample: np.ndarray, hooks: list) -> None:
