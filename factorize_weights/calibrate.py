@@ -28,7 +28,7 @@ from .methods import Whitened
 from .progress import bar
 from .records import LayerRecord
 from .stats import CrossMoments, Moments, ridge, weight_error
-from .whiten import regression_target, whitening
+from .whiten import regression_product, whitening
 
 #: Memory for the paired moments of one group of sequential refits (two n x n float64 per layer).
 PAIRED_BYTES = 1 << 30
@@ -57,7 +57,7 @@ class Calibration:
     damping: float = 0.0
     gram_bytes: int = 0
     batch_size: int = 256
-    passes: int = 1
+    passes: int = 1  # passes over the calibration set for the latest budget (moments + refit groups)
 
     def summary(self) -> dict:
         return {
@@ -69,6 +69,8 @@ class Calibration:
             "peak_rss_bytes": peak_rss(),
             "warnings": list(self.warnings),
             "ridge": self.damping,
+            "passes": self.passes,
+            "batch_size": self.batch_size,
         }
 
     def release(self, name: str) -> np.ndarray:
@@ -181,14 +183,14 @@ def sequential_refit(model, records: list[LayerRecord], ranks: dict, cal: Calibr
             # the same ridge on both moments: where the calibration data says nothing, M stays W
             wh_new = whitening(ridge(st.gram, config.damping))
             w = backend.weight_matrix(by_name[name])
-            target = regression_target(w, ridge(st.cross, config.damping, st.gram), wh_new)
+            product = regression_product(w, ridge(st.cross, config.damping, st.gram), wh_new)  # M S'
             del st
-            dec = Whitened.decompose_whitened(name, target, wh_new, dtype=by_name[name].dtype)
+            dec = Whitened.decompose_product(name, product, wh_new, dtype=by_name[name].dtype)
             a, x = done[name] = dec.factors(ranks[name], config.split)
             errors[name] = weight_error(w, a, x)
             fits[name] = {"method": wh_new.method, "damping": wh_new.damping}
         working = backend.rewrite(working, records, done, in_place=True)
-    cal.passes += len(groups)
+    cal.passes = (1 if cal.moments else 0) + len(groups)  # this budget's: the moments pass, then one per group
     return working, fits, errors
 
 

@@ -26,7 +26,7 @@ from .columns import column_factors, column_spectrum
 from .records import max_saving_rank
 from .spectra import Spectrum, checked_matrix, choose_method, exact_svd, randomized_svd
 from .stats import ridge
-from .whiten import Whitening, whitened_svd, whitening
+from .whiten import Whitening, whitened_product_svd, whitening
 
 
 def _check_rank(rank: int, top: int, name: str) -> None:
@@ -147,13 +147,19 @@ class Whitened:
 
     @staticmethod
     def decompose_whitened(name: str, matrix: np.ndarray, wh: Whitening, *, dtype: str = "float32") -> Decomposition:
-        """The decomposition of ``matrix`` under a given whitening (also used by sequential refits)."""
-        m, n = matrix.shape
+        """The decomposition of ``matrix`` under a given whitening."""
+        return Whitened.decompose_product(name, np.asarray(matrix, dtype=np.float64) @ wh.s, wh, dtype=dtype)
+
+    @staticmethod
+    def decompose_product(name: str, ws: np.ndarray, wh: Whitening, *, dtype: str = "float32") -> Decomposition:
+        """The decomposition from an already formed whitened product ``W S`` (m, n) (sequential
+        refits form ``M S'`` directly, see :func:`whiten.regression_product`)."""
+        m, n = ws.shape
         top = max(max_saving_rank(m, n), 1)
-        u, s, vt = whitened_svd(matrix, wh)
+        u, s, vt = whitened_product_svd(ws)
         total = float(np.sum(s * s))  # all of W S's singular values: ||W S||_F^2
         keep = _store_dtype(dtype)
-        right = vt[:top] @ wh.s_inv  # (t, n): the split scales rows of V^T, so S^{-1} can come first
+        right = wh.right_inverse(vt[:top])  # (t, n): the split scales rows of V^T, so S^{-1} can come first
         spectrum = Spectrum(name, (m, n), s, total, "exact")
         extra = {"whitening": {"method": wh.method, "damping": wh.damping, "clamped": wh.clamped}}
         return Decomposition(spectrum, np.ascontiguousarray(u[:, :top], dtype=keep), s[:top].copy(),

@@ -19,6 +19,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from .factors import split_factors
+from scipy.linalg import solve_triangular
+
 from .spectra import Spectrum, flip_signs
 
 #: Relative eigenvalue floor of the damped fallback: eigenvalues below DAMPING x the largest are
@@ -32,12 +34,14 @@ CHOLESKY_MIN_RATIO = 1e-12
 
 @dataclass
 class Whitening:
-    """A square root S of a Gram matrix G (S S^T = G, up to the recorded damping).
+    """A square root S of a Gram matrix G (S S^T = G, up to the recorded damping). S^{-1} is never
+    formed: products with it are triangular solves (Cholesky) or a diagonal scaling of the
+    eigenvectors (damped fallback), n^2 per row instead of a general n x n inverse.
 
     Attributes
     ----------
     s : ndarray (n, n)
-    s_inv : ndarray (n, n)
+        Lower-triangular for ``"cholesky"``; ``Q diag(sqrt(lambda))`` for ``"eigh-damped"``.
     method : str
         ``"cholesky"`` or ``"eigh-damped"``.
     damping : float
@@ -47,10 +51,29 @@ class Whitening:
     """
 
     s: np.ndarray
-    s_inv: np.ndarray
     method: str
     damping: float = 0.0
     clamped: int = 0
+    _root: np.ndarray | None = None  # eigh-damped: sqrt of the floored eigenvalues
+
+    def right_inverse(self, y: np.ndarray) -> np.ndarray:
+        """``Y S^{-1}`` for Y (k, n)."""
+        if self.method == "cholesky":  # Z S = Y  <=>  S^T Z^T = Y^T
+            return solve_triangular(self.s, np.asarray(y).T, lower=True, trans="T").T
+        q = self.s / self._root  # S = Q diag(r), S^{-1} = diag(1/r) Q^T
+        return (np.asarray(y) / self._root) @ q.T
+
+    def right_inverse_transposed(self, y: np.ndarray) -> np.ndarray:
+        """``Y S^{-T}`` for Y (k, n)."""
+        if self.method == "cholesky":  # Z S^T = Y  <=>  S Z^T = Y^T
+            return solve_triangular(self.s, np.asarray(y).T, lower=True).T
+        q = self.s / self._root  # S^{-T} = Q diag(1/r)
+        return (np.asarray(y) @ q) / self._root
+
+    @property
+    def s_inv(self) -> np.ndarray:
+        """S^{-1} (n, n), formed on request (tests, small problems)."""
+        return self.right_inverse(np.eye(self.s.shape[0]))
 
 
 def whitening(gram: np.ndarray, *, damping: float = DAMPING) -> Whitening:
@@ -64,7 +87,7 @@ def whitening(gram: np.ndarray, *, damping: float = DAMPING) -> Whitening:
         low = np.linalg.cholesky(gram)
         d = np.abs(np.diag(low))
         if d.min() ** 2 > CHOLESKY_MIN_RATIO * d.max() ** 2:
-            return Whitening(low, np.linalg.inv(low), "cholesky")
+            return Whitening(low, "cholesky")
     except np.linalg.LinAlgError:
         pass
     vals, vecs = np.linalg.eigh(gram)
@@ -73,12 +96,17 @@ def whitening(gram: np.ndarray, *, damping: float = DAMPING) -> Whitening:
     clamped = int(np.sum(vals < floor))
     vals = np.maximum(vals, floor)
     root = np.sqrt(vals)
-    return Whitening(vecs * root, (vecs / root).T, "eigh-damped", floor, clamped)
+    return Whitening(vecs * root, "eigh-damped", floor, clamped, root)
 
 
 def whitened_svd(matrix: np.ndarray, wh: Whitening):
     """U, sigma, Vt of W S (float64, signs fixed)."""
-    u, s, vt = np.linalg.svd(np.asarray(matrix, dtype=np.float64) @ wh.s, full_matrices=False)
+    return whitened_product_svd(np.asarray(matrix, dtype=np.float64) @ wh.s)
+
+
+def whitened_product_svd(ws: np.ndarray):
+    """U, sigma, Vt of an already formed whitened product (float64, signs fixed)."""
+    u, s, vt = np.linalg.svd(ws, full_matrices=False)
     u, vt = flip_signs(u, vt)
     return u, s, vt
 
@@ -93,17 +121,21 @@ def whitened_spectrum(name: str, matrix: np.ndarray, wh: Whitening) -> Spectrum:
 
 def whitened_factors(matrix: np.ndarray, wh: Whitening, rank: int, *, split: str = "balanced", usv=None):
     """A (m, k), X (k, n) with A @ X = [W S]_k S^{-1}: the rank-k map with the least output error
-    on the calibration inputs. ``usv`` is a precomputed :func:`whitened_svd` (reused across
-    budgets)."""
+    on the calibration inputs. ``usv`` is a precomputed :func:`whitened_svd`."""
     m, n = matrix.shape
     if not 1 <= rank <= min(m, n):
         raise ValueError(f"rank {rank} is outside [1, min(out, in) = {min(m, n)}]")
     u, s, vt = whitened_svd(matrix, wh) if usv is None else usv
     a, x = split_factors(u, s, vt, rank, split)
-    return a, x @ wh.s_inv  # the split scales rows of V^T, so S^{-1} can come after it
+    return a, wh.right_inverse(x)  # the split scales rows of V^T, so S^{-1} can come after it
+
+
+def regression_product(matrix: np.ndarray, cross: np.ndarray, gram_new: Whitening) -> np.ndarray:
+    """M S' for the reduced-rank regression target M = W C G'^{-1} (C = X X'^T, G' = S' S'^T):
+    since G'^{-1} S' = S'^{-T}, M S' = W C S'^{-T}, formed without any inverse."""
+    return gram_new.right_inverse_transposed(np.asarray(matrix, dtype=np.float64) @ cross)
 
 
 def regression_target(matrix: np.ndarray, cross: np.ndarray, gram_new: Whitening) -> np.ndarray:
-    """M = W C G'^{-1} with C = X X'^T and G'^{-1} = S'^{-T} S'^{-1} (reduced-rank regression)."""
-    g_inv = gram_new.s_inv.T @ gram_new.s_inv
-    return np.asarray(matrix, dtype=np.float64) @ cross @ g_inv
+    """M = W C G'^{-1} (reduced-rank regression), for callers that want M itself."""
+    return gram_new.right_inverse(regression_product(matrix, cross, gram_new))

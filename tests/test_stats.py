@@ -1,0 +1,202 @@
+"""The shared calibration statistics against direct numpy computations on explicitly unfolded
+inputs, for both backends and several convolution geometries; the sequential refit against its
+closed form; the latency timer times nothing but the forward call."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import torch
+from torch import nn
+
+from factorize_weights.backends import onnx_backend as ob
+from factorize_weights.backends import torch_backend as tb
+from factorize_weights.calibrate import input_moments, paired_moments
+from factorize_weights.stats import CrossMoments, Moments
+
+
+def patches(conv: nn.Module, x: torch.Tensor) -> np.ndarray:
+    """Oracle: explicit loops over output positions (numpy), rows ordered like
+    weight.reshape(out, -1); 1-D convolutions as 2-D with height 1."""
+    two_d = isinstance(conv, nn.Conv2d)
+    xp = nn.functional.pad(x, conv._reversed_padding_repeated_twice,
+                           mode="constant" if conv.padding_mode == "zeros" else conv.padding_mode).double().numpy()
+    if not two_d:
+        xp = xp[:, :, None, :]
+    kh, kw = conv.kernel_size if two_d else (1, conv.kernel_size[0])
+    sh, sw = conv.stride if two_d else (1, conv.stride[0])
+    dh, dw = conv.dilation if two_d else (1, conv.dilation[0])
+    n, c, h, w = xp.shape
+    rows = []
+    for i in range(0, h - (kh - 1) * dh, sh):
+        for j in range(0, w - (kw - 1) * dw, sw):
+            rows.append(xp[:, :, i : i + (kh - 1) * dh + 1 : dh, j : j + (kw - 1) * dw + 1 : dw].reshape(n, -1))
+    return np.stack(rows, axis=1).reshape(-1, c * kh * kw)  # (N * positions, C*kh*kw), sample-major
+
+
+GEOMETRIES = [
+    nn.Conv2d(3, 8, 3, padding=1),
+    nn.Conv2d(3, 8, (3, 2), stride=(2, 1), padding=(1, 2), dilation=(1, 2)),
+    nn.Conv2d(4, 6, 3, stride=2, padding="valid", dilation=2),
+    nn.Conv2d(3, 5, 3, padding="same", padding_mode="reflect"),
+    nn.Conv1d(4, 6, 5, stride=2, padding=3, dilation=2),
+]
+
+
+@pytest.mark.parametrize("conv", GEOMETRIES, ids=lambda c: repr(c))
+def test_torch_conv_moments_equal_numpy_on_explicit_patches(conv):
+    torch.manual_seed(0)
+    model = nn.Sequential(conv)
+    x = torch.randn(5, conv.in_channels, 9, 10) if isinstance(conv, nn.Conv2d) else torch.randn(5, conv.in_channels, 17)
+    rec = tb.discover(model)[0]
+    stats, samples = input_moments(tb, model, [rec], [x[:2].numpy(), x[2:].numpy()])  # two batches
+    p = patches(conv, x)
+    # torch itself as the oracle for the patch layout: patches @ W^T is the convolution's output
+    expected_out = conv(x).detach().double().numpy()
+    out = (p @ tb.weight_matrix(rec).T).reshape(x.shape[0], -1, conv.out_channels)  # (N, positions, out)
+    np.testing.assert_allclose(out + conv.bias.detach().double().numpy(),
+                               expected_out.reshape(x.shape[0], conv.out_channels, -1).transpose(0, 2, 1),
+                               rtol=1e-5, atol=1e-5)  # float32 convolution
+    assert samples == 5 and stats["0"].rows == p.shape[0]
+    np.testing.assert_allclose(stats["0"].gram, p.T @ p, rtol=1e-10, atol=1e-10)  # numpy as the oracle
+
+
+@pytest.mark.parametrize("conv", [g for g in GEOMETRIES if isinstance(g, nn.Conv2d) and g.padding_mode == "zeros"],
+                         ids=lambda c: repr(c))
+def test_onnx_conv_moments_equal_numpy_on_explicit_patches(conv, tmp_path):
+    torch.manual_seed(0)
+    model = nn.Sequential(conv).eval()
+    x = torch.randn(4, conv.in_channels, 9, 10)
+    path = tmp_path / "m.onnx"
+    tb.export_onnx(model, x.numpy(), path)
+    onnx_model = ob.load(path)
+    rec = ob.discover(onnx_model)[0]
+    stats, _ = input_moments(ob, onnx_model, [rec], [x.numpy()])
+    p = patches(conv, x)
+    assert stats[rec.name].rows == p.shape[0]
+    np.testing.assert_allclose(stats[rec.name].gram, p.T @ p, rtol=1e-10, atol=1e-10)  # numpy as the oracle
+
+
+def test_accumulators_equal_one_product_over_all_rows(rng):
+    x, y = rng.standard_normal((300, 7)), rng.standard_normal((300, 7))
+    g, c = Moments(7), CrossMoments(7)
+    for start in range(0, 300, 64):  # blocks of rows, summed
+        g.add(x[start:start + 64].astype(np.float32))
+        c.add(x[start:start + 64], y[start:start + 64])
+    x32 = x.astype(np.float32).astype(np.float64)
+    np.testing.assert_allclose(g.gram, x32.T @ x32, rtol=1e-12)  # numpy as the oracle, float64 sums
+    np.testing.assert_allclose(c.cross, x.T @ y, rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(c.gram, y.T @ y, rtol=1e-12)
+    assert g.rows == c.rows == 300
+    with pytest.raises(ValueError, match="rows of width 7"):
+        g.add(np.ones((2, 6)))
+
+
+class Net(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.a = nn.Linear(6, 8)
+        self.conv = nn.Conv1d(2, 3, 3, padding=1)
+        self.b = nn.Linear(12, 5)
+
+    def forward(self, x):  # (N, 6)
+        h = torch.relu(self.a(x)).reshape(-1, 2, 4)
+        return self.b(self.conv(h).reshape(-1, 12))
+
+
+def _captured_inputs(model, names, x):
+    """Oracle helper: each named layer's input captured by a plain forward hook."""
+    got = {}
+    hooks = [model.get_submodule(n).register_forward_hook(lambda m, a, o, n=n: got.__setitem__(n, a[0].detach()))
+             for n in names]
+    with torch.no_grad():
+        model(x)
+    for h in hooks:
+        h.remove()
+    return got
+
+
+@pytest.mark.parametrize("early_stop", [False, True])
+def test_paired_moments_equal_numpy_on_both_models_inputs(early_stop):
+    torch.manual_seed(1)
+    model = Net().eval()
+    records = tb.discover(model)
+    if early_stop:
+        tb.call_stages(model, records, np.zeros((1, 6), np.float32))
+        assert [r.calls for r in records] == [1, 1, 1]
+    rank1 = {"a": tuple(m.numpy().astype(np.float64) for m in (torch.randn(8, 2), torch.randn(2, 6)))}
+    current = tb.rewrite(model, records, rank1)
+    x = torch.randn(10, 6)
+    recs = [r for r in records if r.name in ("conv", "b")]
+    acc = paired_moments(tb, model, current, recs, [x[:4].numpy(), x[4:].numpy()])
+    before, after = _captured_inputs(model, ["conv", "b"], x), _captured_inputs(current, ["conv", "b"], x)
+    conv = model.conv
+    p, q = patches(conv, before["conv"]), patches(conv, after["conv"])
+    # numpy as the oracle; the captured inputs come from other float32 forward runs (other batch
+    # sizes, other kernels), so they agree to float32 rounding only
+    close = dict(rtol=1e-5, atol=1e-5)
+    np.testing.assert_allclose(acc["conv"].cross, p.T @ q, **close)
+    np.testing.assert_allclose(acc["conv"].gram, q.T @ q, **close)
+    u, v = before["b"].double().numpy(), after["b"].double().numpy()
+    np.testing.assert_allclose(acc["b"].cross, u.T @ v, **close)
+    np.testing.assert_allclose(acc["b"].gram, v.T @ v, **close)
+
+
+def test_stages_group_layers_that_read_the_same_input():
+    class Heads(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.q, self.k, self.v, self.o = (nn.Linear(4, 4) for _ in range(4))
+
+        def forward(self, x):
+            return self.o(self.q(x) * self.k(x) + self.v(x))
+
+    model = Heads().eval()
+    stages = tb.call_stages(model, tb.discover(model), np.zeros((1, 4), np.float32))
+    assert stages == [["q", "k", "v"], ["o"]]
+
+
+def test_latency_timer_runs_only_the_forward_call(monkeypatch):
+    model = Net().eval()
+    calls = {"threads": 0, "eval": 0}
+    with tb.timing([model], 1):
+        run = tb.timer(model, np.zeros((1, 6), np.float32), 1)
+        monkeypatch.setattr(torch, "set_num_threads", lambda n: calls.__setitem__("threads", calls["threads"] + 1))
+        monkeypatch.setattr(nn.Module, "eval", lambda self: calls.__setitem__("eval", calls["eval"] + 1) or self)
+        for _ in range(3):
+            run()
+        assert calls == {"threads": 0, "eval": 0}
+
+
+def test_sequential_refit_equals_the_closed_form_layer_by_layer():
+    # reduced-rank regression (common practice; the closed form in whiten.py): the second layer,
+    # fed the inputs X' the refitted first layer produces, becomes [M S']_k S'^{-1} with
+    # M = W C G'^{-1}, C = X X'^T, S' S'^T = G' = X' X'^T (both with the same relative ridge)
+    from factorize_weights import CompressConfig
+    from factorize_weights.calibrate import calibrate, sequential_refit
+    from factorize_weights.data import HeldOut
+
+    torch.manual_seed(3)
+    model = nn.Sequential(nn.Linear(12, 10), nn.Tanh(), nn.Linear(10, 9)).eval()
+    records = tb.discover(model)
+    x = torch.randn(200, 12)
+    data = HeldOut(x.numpy(), None, "test")
+    config = CompressConfig(damping=0.01, sequential_groups=10)
+    cal = calibrate(model, records, data, config, 64)
+    stages = tb.call_stages(model, records, x[:1].numpy())
+    ranks = {"0": 3, "2": 3}
+    working, fits, _ = sequential_refit(model, records, ranks, cal, config, stages)
+    orig = _captured_inputs(model, ["2"], x)["2"].double().numpy()  # (N, 10): X as rows
+    new = _captured_inputs(working, ["2"], x)["2"].double().numpy()
+    lam = 0.01 * np.mean(np.diag(new.T @ new))
+    g_new = new.T @ new + lam * np.eye(10)
+    cross = orig.T @ new + lam * np.eye(10)
+    w = tb.weight_matrix(records[1])
+    m = w @ cross @ np.linalg.inv(g_new)
+    s = np.linalg.cholesky(g_new)
+    u, sv, vt = np.linalg.svd(m @ s)  # numpy as the reference SVD
+    expected = (u[:, :3] * sv[:3]) @ vt[:3] @ np.linalg.inv(s)
+    pair = working.get_submodule("2")
+    got = (pair.expand.weight @ pair.reduce.weight).detach().double().numpy()
+    np.testing.assert_allclose(got, expected, rtol=1e-4, atol=1e-5)  # float32 weights
+    assert fits["2"]["method"] == "cholesky"
