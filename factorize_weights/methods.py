@@ -24,7 +24,7 @@ import numpy as np
 
 from .columns import column_factors, column_spectrum
 from .records import max_saving_rank
-from .spectra import Spectrum, checked_matrix, choose_method, exact_svd, randomized_svd
+from .spectra import Spectrum, checked_matrix, choose_method, gram_svd, randomized_svd
 from .stats import ridge
 from .whiten import Whitening, whitened_product_svd, whitening
 
@@ -118,7 +118,7 @@ class PlainSvd:
             spectrum = Spectrum(name, (m, n), s, total, "randomized", self.seed, self.oversampling,
                                 self.power_iterations)
         else:
-            u, s, vt = exact_svd(matrix)
+            u, s, vt = gram_svd(matrix)
             spectrum = Spectrum(name, (m, n), s, total, "exact")
         keep = _store_dtype(dtype)
         return Decomposition(spectrum, np.ascontiguousarray(u[:, :top], dtype=keep), s[:top].copy(),

@@ -21,7 +21,7 @@ import numpy as np
 from .factors import split_factors
 from scipy.linalg import solve_triangular
 
-from .spectra import Spectrum, flip_signs
+from .spectra import Spectrum, flip_signs, gram_svd
 
 #: Relative eigenvalue floor of the damped fallback: eigenvalues below DAMPING x the largest are
 #: raised to it. Small enough not to change a well-conditioned problem, large enough that S^{-1}
@@ -80,10 +80,9 @@ def whitening(gram: np.ndarray, *, damping: float = DAMPING) -> Whitening:
     """S with S S^T = G: Cholesky when G is well conditioned, else a damped eigendecomposition."""
     gram = np.asarray(gram, dtype=np.float64)
     n = gram.shape[0]
-    if gram.shape != (n, n) or not np.all(np.isfinite(gram)):
+    if gram.shape != (n, n) or not np.isfinite(gram.sum()):  # one pass: a NaN or Inf makes the sum one
         raise ValueError(f"Gram matrix must be a finite square matrix; got shape {gram.shape}")
-    gram = (gram + gram.T) / 2.0
-    try:
+    try:  # Cholesky reads the lower triangle only; eigh below does too (UPLO="L")
         low = np.linalg.cholesky(gram)
         d = np.abs(np.diag(low))
         if d.min() ** 2 > CHOLESKY_MIN_RATIO * d.max() ** 2:
@@ -106,9 +105,7 @@ def whitened_svd(matrix: np.ndarray, wh: Whitening):
 
 def whitened_product_svd(ws: np.ndarray):
     """U, sigma, Vt of an already formed whitened product (float64, signs fixed)."""
-    u, s, vt = np.linalg.svd(ws, full_matrices=False)
-    u, vt = flip_signs(u, vt)
-    return u, s, vt
+    return gram_svd(ws)
 
 
 def whitened_spectrum(name: str, matrix: np.ndarray, wh: Whitening) -> Spectrum:

@@ -132,3 +132,21 @@ def test_break_even_rank_is_where_saving_stops(m, n):
         assert (be - 1) * (m + n) < m * n  # the largest rank we allow saves
     assert (be + 1) * (m + n) > m * n  # one above break-even never saves
     assert max_saving_rank(m, n) == max(be - 1, 0)
+
+
+@pytest.mark.parametrize("shape", [(60, 40), (40, 60), (50, 50)])
+def test_gram_svd_matches_lapack_svd_and_eckart_young(shape):
+    # numpy's LAPACK SVD as the oracle for the values; Eckart-Young (1936) for the truncations:
+    # ||A - A_k||_F = sqrt(sum_{i>k} s_i^2) with A_k = U_k S_k V_k^T
+    from factorize_weights.spectra import gram_svd
+
+    m, n = shape
+    values = np.geomspace(10, 1e-6, min(m, n))  # a condition number of 1e7
+    a = planted(m, n, values, seed=5)
+    u, s, vt = gram_svd(a)
+    assert u.shape == (m, min(m, n)) and s.shape == (min(m, n),) and vt.shape == (min(m, n), n)
+    ref = np.linalg.svd(a, compute_uv=False)
+    np.testing.assert_allclose(s[: min(m, n) // 2], ref[: min(m, n) // 2], rtol=1e-9)
+    for k in (1, 7, min(m, n) // 2):
+        err = np.linalg.norm(a - (u[:, :k] * s[:k]) @ vt[:k])
+        assert err == pytest.approx(np.sqrt(np.sum(values[k:] ** 2)), rel=1e-9)
