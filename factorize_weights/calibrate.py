@@ -173,10 +173,12 @@ def sequential_refit(model, records: list[LayerRecord], ranks: dict, cal: Calibr
     working = backend.rewrite(model, records, {})  # one dense copy, patched group by group
     fits, errors = {}, {}
     groups = groups_in_order(chosen, by_name, config.sequential_groups)
-    for i, group in enumerate(groups):
+    batches = [x for x, _ in cal.data.batches(cal.batch_size)]
+    runs = backend.paired_runs(model, working, [by_name[n] for g in groups for n in g], batches)
+    for group in bar(groups, config, "sequential refit", unit="group"):
         recs = [by_name[n] for n in group]
-        desc = "sequential refit" if len(groups) == 1 else f"sequential refit {i + 1}/{len(groups)}"
-        acc = paired_moments(backend, model, working, recs, _batches(cal.data, cal.batch_size, config, desc))
+        acc = {r.name: CrossMoments(r.matrix_shape[1]) for r in recs}
+        runs.stream(recs, lambda name, x, y: acc[name].add(x, y))
         done = {}
         for name in group:
             st = acc.pop(name)

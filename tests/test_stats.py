@@ -200,3 +200,58 @@ def test_sequential_refit_equals_the_closed_form_layer_by_layer():
     got = (pair.expand.weight @ pair.reduce.weight).detach().double().numpy()
     np.testing.assert_allclose(got, expected, rtol=1e-4, atol=1e-5)  # float32 weights
     assert fits["2"]["method"] == "cholesky"
+
+
+class Block(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.up, self.down = nn.Linear(6, 12), nn.Linear(12, 6)
+
+    def forward(self, x, scale=None):
+        return x + self.down(torch.relu(self.up(x))) * scale
+
+
+class Chain(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.embed = nn.Linear(5, 6)
+        self.blocks = nn.ModuleList(Block() for _ in range(3))
+        self.head = nn.Linear(6, 4)
+
+    def forward(self, x):
+        h, scale = self.embed(x), torch.tensor(0.5)
+        for block in self.blocks:
+            h = block(h, scale=scale)
+        return self.head(h)
+
+
+def test_chain_cached_passes_equal_whole_model_passes():
+    # the whole-model paired passes (checked against numpy above) as the oracle for the cached ones
+    torch.manual_seed(4)
+    model = Chain().eval()
+    records = tb.discover(model)
+    x = torch.randn(40, 5)
+    batches = [x[:16].numpy(), x[16:].numpy()]
+    chain = tb.find_chain(model, records, batches[0])
+    assert chain is not None and chain[0] == ["blocks.0", "blocks.1", "blocks.2"]
+    assert chain[1] == {"blocks.0.up": 0, "blocks.0.down": 0, "blocks.1.up": 1, "blocks.1.down": 1,
+                        "blocks.2.up": 2, "blocks.2.down": 2}
+    tb.call_stages(model, records, batches[0])
+    by = {r.name: r for r in records}
+    working = tb.rewrite(model, records, {})
+    runs = tb.paired_runs(model, working, records, batches)
+    rng = np.random.default_rng(0)
+    for names in (["embed"], ["blocks.0.up"], ["blocks.1.up"], ["blocks.1.down", "blocks.2.up"], ["head"]):
+        recs = [by[n] for n in names]
+        cached = {n: CrossMoments(by[n].matrix_shape[1]) for n in names}
+        runs.stream(recs, lambda name, a, b: cached[name].add(a, b))
+        direct = {n: CrossMoments(by[n].matrix_shape[1]) for n in names}
+        tb.stream_paired_inputs(model, working, recs, batches, lambda name, a, b: direct[name].add(a, b))
+        for n in names:
+            np.testing.assert_allclose(cached[n].cross, direct[n].cross, rtol=1e-5, atol=1e-6)
+            np.testing.assert_allclose(cached[n].gram, direct[n].gram, rtol=1e-5, atol=1e-6)
+        # patch the group in place, as a refit does, so later groups see it
+        m, n_in = by[names[0]].matrix_shape
+        tb.rewrite(working, records, {names[0]: (rng.standard_normal((m, 2)), rng.standard_normal((2, n_in)))},
+                   in_place=True)
+    assert runs.at == 1  # the cache moved through the chain instead of rerunning the model

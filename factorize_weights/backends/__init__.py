@@ -52,6 +52,10 @@ class Backend(Protocol):
                              sink: PairSink) -> int:
         """The same for two models on the same samples, paired row blocks; sample count."""
 
+    def paired_runs(self, original, current, records: list[LayerRecord], batches: list):
+        """A runner whose ``stream(records, sink)`` makes one group's paired passes; ``current``
+        is patched in place between groups (a backend may cache block inputs across them)."""
+
     def stream_layer_outputs(self, original, factorized, names: list[str], batches: Iterable,
                              sink: OutputSink) -> None:
         """Each named layer's output and its factor pair's output on the original's inputs."""

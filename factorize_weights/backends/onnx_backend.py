@@ -710,6 +710,21 @@ def stream_paired_inputs(original: OnnxModel, current: OnnxModel, records: list[
     return samples
 
 
+class PairedRuns:
+    """Whole-graph paired passes, group after group (ONNX graphs are not cut into blocks)."""
+
+    def __init__(self, original: OnnxModel, current: OnnxModel, records, batches: list):
+        self.original, self.current, self.batches = original, current, batches
+
+    def stream(self, records: list[LayerRecord], sink) -> int:
+        return stream_paired_inputs(self.original, self.current, records, self.batches, sink)
+
+
+def paired_runs(original: OnnxModel, current: OnnxModel, records: list[LayerRecord], batches: list) -> PairedRuns:
+    """The runner of a sequential refit's paired passes."""
+    return PairedRuns(original, current, records, batches)
+
+
 def call_stages(model: OnnxModel, records: list[LayerRecord], sample) -> list[list[str]]:
     """ONNX nodes are stored in topological order: that is the forward order. Consecutive nodes
     that read the same activation (none feeds another) share a stage."""

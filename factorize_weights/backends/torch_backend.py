@@ -554,13 +554,17 @@ class _Enough(Exception):
     """Raised by a hook to end a forward pass once every layer of interest has run."""
 
 
-def stream_paired_inputs(original: nn.Module, current: nn.Module, records: list[LayerRecord], batches, sink) -> int:
+def stream_paired_inputs(original, current, records: list[LayerRecord], batches, sink, *, modules=None) -> int:
     """Run both models on every batch; for each call of each record's layer, ``sink(name, x, x_new)``
     with paired row blocks: its input in ``original`` and in ``current`` (the same model with
     layers already split) on the same samples. Per batch, the original's inputs of the records'
     layers are held until ``current`` reaches the same call (the batch size bounds this). When
     every record knows its ``calls`` per pass (:func:`call_stages`), each forward pass stops as
-    soon as all of them have run, so fitting early layers does not pay for the whole model."""
+    soon as all of them have run, so fitting early layers does not pay for the whole model.
+
+    With ``modules=(original module, current module)``, ``original`` and ``current`` are instead
+    callables ``f(hidden, args, kwargs)`` run on cached block inputs, and ``batches`` yields
+    ``(original hidden, current hidden, args, kwargs)`` (see :class:`PairedRuns`)."""
     held: dict[str, list] = {r.name: [] for r in records}
     used: dict[str, int] = {r.name: 0 for r in records}
     expected = sum(r.calls for r in records) if all(r.calls for r in records) else None
@@ -572,6 +576,7 @@ def stream_paired_inputs(original: nn.Module, current: nn.Module, records: list[
         if expected is not None and seen[which] >= expected:
             raise _Enough
 
+    owners = modules or (original, current)
     for record in records:
         def keep(module, args, output, name=record.name):
             held[name].append(args[0].detach())
@@ -585,26 +590,180 @@ def stream_paired_inputs(original: nn.Module, current: nn.Module, records: list[
                 sink(record.name, a.numpy(), b.numpy())
             tick(1)
 
-        hooks.append(original.get_submodule(record.name).register_forward_hook(keep))
-        hooks.append(current.get_submodule(record.name).register_forward_hook(pair))
+        hooks.append(owners[0].get_submodule(record.name).register_forward_hook(keep))
+        hooks.append(owners[1].get_submodule(record.name).register_forward_hook(pair))
     samples = 0
     try:
-        with inference(original), inference(current):
+        with inference(owners[0]), inference(owners[1]):
             for batch in batches:
                 for name in held:
                     held[name].clear()
                     used[name] = 0
                 seen[:] = [0, 0]
-                for model in (original, current):
+                if modules is None:
+                    runs = [(original, (to_tensor(batch, original),)), (current, (to_tensor(batch, current),))]
+                    size = len(batch)
+                else:
+                    h_orig, h_cur, (o_args, o_kwargs), (c_args, c_kwargs) = batch
+                    runs = [(original, (h_orig, o_args, o_kwargs)), (current, (h_cur, c_args, c_kwargs))]
+                    size = h_orig.shape[0]
+                for run, call in runs:
                     try:
-                        model(to_tensor(batch, model))
+                        run(*call)
                     except _Enough:
                         pass
-                samples += len(batch)
+                samples += size
     finally:
         for h in hooks:
             h.remove()
     return samples
+
+
+def _hidden(out):
+    """The hidden state a block hands on: the output itself, or the first element of a tuple."""
+    return out if isinstance(out, torch.Tensor) else (out[0] if isinstance(out, (tuple, list)) and out else None)
+
+
+def paired_runs(original: nn.Module, current: nn.Module, records: list[LayerRecord], batches: list) -> "PairedRuns":
+    """The runner of a sequential refit's paired passes (see :class:`PairedRuns`)."""
+    return PairedRuns(original, current, records, batches)
+
+
+def find_chain(model: nn.Module, records: list[LayerRecord], sample) -> tuple[list[str], dict[str, int]] | None:
+    """The chain of blocks holding most of the records, if the model has one: the children of one
+    ``nn.Sequential`` or ``nn.ModuleList``, each called once per forward pass, each fed the hidden
+    state the one before returned (the same tensor object) and the same other arguments (masks
+    and the like, the same objects). Returns (block names, {record name: block index}) or None.
+    One forward pass on one sample."""
+    inside = {}
+    for cname, container in model.named_modules():
+        if not isinstance(container, (nn.Sequential, nn.ModuleList)) or len(container) < 2:
+            continue
+        prefix = f"{cname}." if cname else ""
+        blocks = [f"{prefix}{n}" for n, _ in container.named_children()]
+        owned = {r.name: i for r in records for i, b in enumerate(blocks) if r.name.startswith(b + ".")}
+        if len(owned) > len(inside.get("owned", {})):
+            inside = {"blocks": blocks, "owned": owned}
+    if not inside or len(inside["owned"]) < 2:
+        return None
+    blocks = inside["blocks"]
+    seen: dict[int, list] = {}
+
+    def pre(module, args, kwargs, i):
+        seen.setdefault(i, []).append((args, kwargs, None))
+
+    def post(module, args, kwargs, output, i):
+        a, k, _ = seen[i][-1]
+        seen[i][-1] = (a, k, _hidden(output))
+
+    hooks = []
+    for i, b in enumerate(blocks):
+        mod = model.get_submodule(b)
+        hooks.append(mod.register_forward_pre_hook(lambda m, a, k, i=i: pre(m, a, k, i), with_kwargs=True))
+        hooks.append(mod.register_forward_hook(lambda m, a, k, o, i=i: post(m, a, k, o, i), with_kwargs=True))
+    try:
+        _run_once(model, sample, hooks)
+    except Exception:
+        return None
+    if sorted(seen) != list(range(len(blocks))) or any(len(v) != 1 for v in seen.values()):
+        return None
+    first_args, first_kwargs, _ = seen[0][0]
+    if not first_args or not isinstance(first_args[0], torch.Tensor):
+        return None
+    for i in range(1, len(blocks)):
+        args, kwargs, _ = seen[i][0]
+        prev_out = seen[i - 1][0][2]
+        same_extra = len(args) == len(first_args) and all(x is y for x, y in zip(args[1:], first_args[1:])) \
+            and kwargs.keys() == first_kwargs.keys() and all(kwargs[k] is first_kwargs[k] for k in kwargs)
+        if not args or args[0] is not prev_out or not same_extra:
+            return None
+    return blocks, inside["owned"]
+
+
+class PairedRuns:
+    """Paired passes of ``original`` and ``current`` over the calibration batches, group after
+    group in forward order (the sequential refit patches ``current`` in place in between).
+
+    When the model is a chain of blocks (:func:`find_chain`), the hidden state entering a block is
+    kept for every calibration batch, for both models, so a group inside blocks a..b runs only
+    those blocks, and moving on runs each block once more: the passes of a whole refit cost about
+    (groups per block + 1) runs of each block, linear in depth. Layers outside the chain, or a
+    model without one, get whole-model passes (stopped once the group has run)."""
+
+    def __init__(self, original: nn.Module, current: nn.Module, records: list[LayerRecord], batches: list,
+                 cache_bytes: int = 1 << 30):
+        self.original, self.current, self.batches = original, current, batches
+        found = find_chain(original, records, batches[0]) if batches else None
+        self.blocks, self.block_of = found if found else ([], {})
+        self.cache = None  # [(orig hidden, current hidden, (args, kwargs) orig, (args, kwargs) current)] per batch
+        self.at = 0
+        self.cache_bytes = cache_bytes
+
+    def stream(self, records: list[LayerRecord], sink) -> int:
+        """``sink(name, x, x_new)`` for every row block of every record's input, as
+        :func:`stream_paired_inputs`. Returns the number of samples."""
+        idx = [self.block_of.get(r.name) for r in records]
+        if not self.blocks or any(i is None for i in idx) or min(idx) < self.at:
+            return stream_paired_inputs(self.original, self.current, records, self.batches, sink)
+        if self.cache is None and not self._capture():
+            self.blocks = []
+            return stream_paired_inputs(self.original, self.current, records, self.batches, sink)
+        self._advance(min(idx))
+        span = [(self.original.get_submodule(b), self.current.get_submodule(b))
+                for b in self.blocks[min(idx):max(idx) + 1]]
+        runner_orig = lambda h, a, k: self._run(span, 0, h, a, k)  # noqa: E731
+        runner_cur = lambda h, a, k: self._run(span, 1, h, a, k)  # noqa: E731
+        return stream_paired_inputs(runner_orig, runner_cur, records, self._replay(), sink,
+                                    modules=(self.original, self.current))
+
+    @staticmethod
+    def _run(span, which, h, args, kwargs):
+        for pair in span:
+            h = _hidden(pair[which](h, *args, **kwargs))
+        return h
+
+    def _replay(self):
+        yield from self.cache
+
+    def _capture(self) -> bool:
+        """The hidden state (and other arguments) entering the first block, per batch, per model."""
+        first = (self.original.get_submodule(self.blocks[0]), self.current.get_submodule(self.blocks[0]))
+        cache, total = [], 0
+        for batch in self.batches:
+            got = []
+            for model, block in zip((self.original, self.current), first):
+                box = {}
+
+                def grab(m, a, k, box=box):
+                    box["a"], box["k"] = a, k
+                    raise _Enough
+
+                h = block.register_forward_pre_hook(grab, with_kwargs=True)
+                try:
+                    with inference(model):
+                        model(to_tensor(batch, model))
+                except _Enough:
+                    pass
+                finally:
+                    h.remove()
+                got.append(box)
+            total += 2 * got[0]["a"][0].numel() * got[0]["a"][0].element_size()
+            if total > self.cache_bytes:
+                return False
+            cache.append((got[0]["a"][0], got[1]["a"][0], (got[0]["a"][1:], got[0]["k"]),
+                          (got[1]["a"][1:], got[1]["k"])))
+        self.cache = cache
+        return True
+
+    def _advance(self, to: int) -> None:
+        """Run blocks ``at`` .. ``to - 1`` on both cached hidden states (refits included)."""
+        if to <= self.at:
+            return
+        span = [(self.original.get_submodule(b), self.current.get_submodule(b)) for b in self.blocks[self.at:to]]
+        with inference(self.original), inference(self.current):
+            self.cache = [(self._run(span, 0, o, *oe), self._run(span, 1, c, *ce), oe, ce)
+                          for o, c, oe, ce in self.cache]
+        self.at = to
 
 
 def call_stages(model: nn.Module, records: list[LayerRecord], sample: np.ndarray) -> list[list[str]]:
