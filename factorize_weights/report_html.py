@@ -86,9 +86,9 @@ def spectrum_figure(entry: dict, spectrum) -> str:
     return _svg(fig)
 
 
-#: Per-layer spectrum figures drawn at most (the largest layers): each takes ~0.1 s and a model with
+#: Per-layer spectrum figures drawn at most (the largest layers): each takes ~0.15 s and a model with
 #: hundreds of layers would otherwise spend more time on plots than on the SVDs.
-SPECTRUM_FIGURES = 24
+SPECTRUM_FIGURES = 12
 
 
 def _spectrum_layers(layers: list[dict], spectra: dict) -> list[dict]:
