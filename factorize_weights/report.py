@@ -198,11 +198,11 @@ def _rank_for(s: Spectrum, target: float) -> int | None:
 # ---------------------------------------------------------------- text renderings
 
 
-def _fmt_int(n) -> str:
+def fmt_int(n) -> str:
     return f"{int(n):,}"
 
 
-def _fmt_metric(name: str, value: float) -> str:
+def fmt_metric(name: str, value: float) -> str:
     return f"{value:.2f}%" if name in ("top1", "top5", "agreement") else f"{value:.4f}"
 
 
@@ -210,15 +210,15 @@ def summary_line(report: dict) -> str:
     t = report["totals"]
     b = report["budget"]
     text = (
-        f"budget {b['given']}: selected layers {_fmt_int(t['params_before'])} -> {_fmt_int(t['params_after'])} "
-        f"parameters ({100 * t['params_ratio']:.1f}%), whole model {_fmt_int(t['model_params_before'])} -> "
-        f"{_fmt_int(t['model_params_after'])}"
+        f"budget {b['given']}: selected layers {fmt_int(t['params_before'])} -> {fmt_int(t['params_after'])} "
+        f"parameters ({100 * t['params_ratio']:.1f}%), whole model {fmt_int(t['model_params_before'])} -> "
+        f"{fmt_int(t['model_params_after'])}"
     )
     if "flops_before" in t:
-        text += (f"; multiply-adds per sample {_fmt_int(t['flops_before'])} -> {_fmt_int(t['flops_after'])} "
+        text += (f"; multiply-adds per sample {fmt_int(t['flops_before'])} -> {fmt_int(t['flops_after'])} "
                  f"({100 * t['flops_ratio']:.1f}%)")
     if b["limit"] is not None:
-        text += f"; limit {_fmt_int(b['limit'])} {b['units']}, under by {_fmt_int(b['under_by'])}"
+        text += f"; limit {fmt_int(b['limit'])} {b['units']}, under by {fmt_int(b['under_by'])}"
     lat = report.get("latency")
     if lat:
         text += (f"; latency ({lat['runtime']}, batch {lat['batch']}, {lat['threads']} thread"
@@ -228,8 +228,8 @@ def summary_line(report: dict) -> str:
     if m:
         unit = " points" if m["name"] in ("top1", "top5", "agreement") else ""
         text += (
-            f"; held-out {m['name']} {_fmt_metric(m['name'], m['before'])} -> "
-            f"{_fmt_metric(m['name'], m['after'])} ({m['delta']:+.2f}{unit}, {m['samples']} samples)"
+            f"; held-out {m['name']} {fmt_metric(m['name'], m['before'])} -> "
+            f"{fmt_metric(m['name'], m['after'])} ({m['delta']:+.2f}{unit}, {m['samples']} samples)"
         )
     return text
 
@@ -244,7 +244,7 @@ def layer_table(report: dict) -> list[str]:
         cells = [
             f"`{e['name']}`", e["kind"], "x".join(str(v) for v in e["matrix_shape"]),
             "dense" if e["rank"] is None else str(e["rank"]), str(e["break_even_rank"]),
-            _fmt_int(e["params_before"]), _fmt_int(e["params_after"]),
+            fmt_int(e["params_before"]), fmt_int(e["params_after"]),
             f"{100 * e['energy_kept']:.2f}%", f"{e['weight_error']:.4f}",
         ]
         if has_out:
@@ -286,7 +286,7 @@ def render_markdown(report: dict) -> str:
         lines += ["", "## int8 on top", "", f"{q['quantization']}; {q['runtime']}, batch {q['batch']}, "
                   f"{q['threads']} thread(s). Metric: {q['metric']} (delta against the original).", "",
                   "| variant | size on disk | metric | delta | median ms |", "|---|---:|---:|---:|---:|"]
-        lines += [f"| {v['name']} | {_fmt_int(v['size_bytes'])} B | {_fmt_metric(q['metric'], v['metric'])} | "
+        lines += [f"| {v['name']} | {fmt_int(v['size_bytes'])} B | {fmt_metric(q['metric'], v['metric'])} | "
                   f"{v['delta']:+.2f} | {'' if v['latency_ms'] is None else format(v['latency_ms'], '.3f')} |"
                   for v in q["variants"]]
     cal = report.get("calibration")
@@ -308,13 +308,13 @@ def render_markdown(report: dict) -> str:
 
 
 def render_inspect(report: dict) -> str:
-    lines = [f"model parameters: {_fmt_int(report['model_params'])}", "",
+    lines = [f"model parameters: {fmt_int(report['model_params'])}", "",
              "| layer | kind | matrix | params | break-even | rank for 90% energy | rank for 99% energy | top singular value |",
              "|---|---|---|---:|---:|---:|---:|---:|"]
     for e in report["layers"]:
         s = e["spectrum"]["singular_values"]
         lines.append(
-            f"| `{e['name']}` | {e['kind']} | {'x'.join(map(str, e['matrix_shape']))} | {_fmt_int(e['params'])} | "
+            f"| `{e['name']}` | {e['kind']} | {'x'.join(map(str, e['matrix_shape']))} | {fmt_int(e['params'])} | "
             f"{e['break_even_rank']} | {e['rank_for_energy_90']} | {e['rank_for_energy_99']} | {s[0]:.4g} |"
         )
     if report["skipped"]:

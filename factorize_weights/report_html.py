@@ -10,7 +10,7 @@ import io
 
 import numpy as np
 
-from .report import _fmt_int, _fmt_metric, summary_line
+from .report import fmt_int, fmt_metric, summary_line
 
 # Okabe & Ito, "Color Universal Design" (2008): safe for protanopia, deuteranopia, tritanopia
 BLUE, ORANGE, VERMILLION, GREEN, GREY = "#0072B2", "#E69F00", "#D55E00", "#009E73", "#666666"
@@ -138,22 +138,22 @@ def render_report_html(report: dict, spectra: dict) -> str:
     esc = html.escape
     rows = [
         ["model", f"<code>{esc(str(report['sources'].get('model', '')))}</code>"],
-        ["budget", f"<code>{esc(b['given'])}</code>" + (f" — limit {_fmt_int(b['limit'])} {b['units']}, "
-                                                       f"under by {_fmt_int(b['under_by'])}" if b["limit"] is not None else "")],
+        ["budget", f"<code>{esc(b['given'])}</code>" + (f" — limit {fmt_int(b['limit'])} {b['units']}, "
+                                                       f"under by {fmt_int(b['under_by'])}" if b["limit"] is not None else "")],
         ["method", esc(report["method"]) + (" + sequential refits" if report.get("sequential") else "")
          + (" + recovery" if report.get("recovery") else "")],
-        ["parameters (selected layers)", f"{_fmt_int(t['params_before'])} → {_fmt_int(t['params_after'])} "
+        ["parameters (selected layers)", f"{fmt_int(t['params_before'])} → {fmt_int(t['params_after'])} "
                                          f"({100 * t['params_ratio']:.1f}%)"],
-        ["parameters (whole model)", f"{_fmt_int(t['model_params_before'])} → {_fmt_int(t['model_params_after'])}"],
+        ["parameters (whole model)", f"{fmt_int(t['model_params_before'])} → {fmt_int(t['model_params_after'])}"],
         ["size (float32 weights)", f"{t['model_params_before'] * 4 / 2**20:.2f} MiB → {t['model_params_after'] * 4 / 2**20:.2f} MiB"],
     ]
     if "flops_before" in t:
-        rows.append(["multiply-adds per sample", f"{_fmt_int(t['flops_before'])} → {_fmt_int(t['flops_after'])} "
+        rows.append(["multiply-adds per sample", f"{fmt_int(t['flops_before'])} → {fmt_int(t['flops_after'])} "
                                                  f"({100 * t['flops_ratio']:.1f}%)"])
     if m:
         unit = " points" if m["name"] in ("top1", "top5", "agreement") else ""
         worse = m["delta"] < 0 if m["higher_is_better"] else m["delta"] > 0
-        rows.append([f"held-out {esc(m['name'])}", f"{_fmt_metric(m['name'], m['before'])} → {_fmt_metric(m['name'], m['after'])} "
+        rows.append([f"held-out {esc(m['name'])}", f"{fmt_metric(m['name'], m['before'])} → {fmt_metric(m['name'], m['after'])} "
                      f"<span class=\"{'bad' if worse else 'good'}\">({m['delta']:+.2f}{unit})</span> on {m['samples']} samples"])
     lat = report.get("latency")
     if lat:
@@ -184,8 +184,8 @@ def render_report_html(report: dict, spectra: dict) -> str:
     table = []
     for e in report["layers"]:
         row = [f"<code>{esc(e['name'])}</code>", esc(e["kind"]), "×".join(map(str, e["matrix_shape"])),
-               "dense" if e["rank"] is None else str(e["rank"]), str(e["break_even_rank"]), _fmt_int(e["params_before"]),
-               _fmt_int(e["params_after"]), f"{100 * e['energy_kept']:.2f}%", f"{e['weight_error']:.4f}"]
+               "dense" if e["rank"] is None else str(e["rank"]), str(e["break_even_rank"]), fmt_int(e["params_before"]),
+               fmt_int(e["params_after"]), f"{100 * e['energy_kept']:.2f}%", f"{e['weight_error']:.4f}"]
         if has_out:
             row.append("" if e.get("output_error") is None else f"{e['output_error']:.4f}")
         table.append(row)
@@ -197,7 +197,7 @@ def render_report_html(report: dict, spectra: dict) -> str:
     q = report.get("int8")
     if q:
         body += ["<section><h2>int8 on top</h2>", _table(["variant", "size on disk", esc(q["metric"]), "delta", "median ms"],
-                 [[esc(v["name"]), f"{_fmt_int(v['size_bytes'])} B", _fmt_metric(q["metric"], v["metric"]),
+                 [[esc(v["name"]), f"{fmt_int(v['size_bytes'])} B", fmt_metric(q["metric"], v["metric"]),
                    f"{v['delta']:+.2f}", "" if v["latency_ms"] is None else f"{v['latency_ms']:.3f}"]
                   for v in q["variants"]]), "</section>"]
     cal = report.get("calibration")
@@ -243,8 +243,8 @@ def render_sweep_html(sweep: dict) -> str:
             for p in points:
                 p.pop("_after_ms")
     head = ["budget", "params kept", "parameters after", "layers factorized", "metric after", "delta", "median ms"]
-    rows = [[f"<code>{esc(p['budget'])}</code>", f"{p['params_ratio_pct']:.1f}%", _fmt_int(p["params_after"]),
-             str(p["layers_factorized"]), "" if not p.get("metric") else _fmt_metric(p["metric"]["name"], p["metric"]["after"]),
+    rows = [[f"<code>{esc(p['budget'])}</code>", f"{p['params_ratio_pct']:.1f}%", fmt_int(p["params_after"]),
+             str(p["layers_factorized"]), "" if not p.get("metric") else fmt_metric(p["metric"]["name"], p["metric"]["after"]),
              "" if not p.get("metric") else f"{p['metric']['delta']:+.2f}",
              "" if not p.get("latency") else f"{p['latency']['after_ms']:.3f}"] for p in points]
     body += ["<h2>Points</h2>", _table(head, rows)]
