@@ -24,7 +24,7 @@ import numpy as np
 
 from .columns import column_factors, column_spectrum
 from .records import max_saving_rank
-from .spectra import Spectrum, checked_matrix, choose_method, gram_svd, randomized_svd
+from .spectra import Spectrum, checked_matrix, choose_method, flip_signs, gram_svd, randomized_svd
 from .stats import ridge
 from .whiten import Whitening, whitened_product_svd, whitening
 
@@ -143,7 +143,31 @@ class Whitened:
         if moments is None:
             raise ValueError(f"layer {name!r}: whitened factors need the calibration moments of its inputs")
         matrix = checked_matrix(name, matrix)
+        if matrix.shape[0] <= matrix.shape[1]:
+            return self.decompose_left(name, matrix, ridge(moments, self.ridge), dtype=dtype)
         return self.decompose_whitened(name, matrix, self.whitening(moments), dtype=dtype)
+
+    @staticmethod
+    def decompose_left(name: str, matrix: np.ndarray, gram: np.ndarray, *, dtype: str = "float32") -> Decomposition:
+        """Without any square root of G, for m <= n: (W S)(W S)^T = W G W^T (m x m), so its
+        eigenvectors are the left singular vectors U of W S and the optimal rank-k map is
+        [W S]_k S^{-1} = U_k U_k^T W, a projection of W's columns (no Cholesky, no solves; a
+        singular G needs no floor). Same factors as :meth:`decompose_whitened` in exact arithmetic."""
+        m, n = matrix.shape
+        top = max(max_saving_rank(m, n), 1)
+        wg = matrix @ gram  # (m, n)
+        left_gram = wg @ matrix.T  # (m, m) = W G W^T
+        vals, vecs = np.linalg.eigh((left_gram + left_gram.T) / 2.0)
+        vals, u = np.maximum(vals[::-1], 0.0), vecs[:, ::-1]
+        s = np.sqrt(vals)
+        u, _ = flip_signs(u, u.T)
+        safe = np.maximum(s[:top], np.finfo(np.float64).tiny ** 0.5)
+        right = (u[:, :top].T @ matrix) / safe[:, None]  # (t, n): diag(1/s) U^T W
+        keep = _store_dtype(dtype)
+        spectrum = Spectrum(name, (m, n), s, float(np.sum(vals)), "exact")
+        extra = {"whitening": {"method": "left-gram", "damping": 0.0, "clamped": 0}}
+        return Decomposition(spectrum, np.ascontiguousarray(u[:, :top], dtype=keep), s[:top].copy(),
+                             np.ascontiguousarray(right, dtype=keep), extra)
 
     @staticmethod
     def decompose_whitened(name: str, matrix: np.ndarray, wh: Whitening, *, dtype: str = "float32") -> Decomposition:

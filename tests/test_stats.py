@@ -255,3 +255,23 @@ def test_chain_cached_passes_equal_whole_model_passes():
         tb.rewrite(working, records, {names[0]: (rng.standard_normal((m, 2)), rng.standard_normal((2, n_in)))},
                    in_place=True)
     assert runs.at == 1  # the cache moved through the chain instead of rerunning the model
+
+
+@pytest.mark.parametrize("shape", [(12, 30), (20, 20)])
+def test_left_gram_whitened_factors_equal_the_cholesky_route(shape):
+    # Wang et al. 2024 (arXiv 2403.07378): [W S]_k S^{-1} with S S^T = G (Cholesky, whiten.py, checked
+    # against its theorem in test_calibration) as the oracle for the projection U_k U_k^T W
+    from factorize_weights.methods import Whitened
+    from factorize_weights.whiten import whitened_factors, whitening
+
+    rng = np.random.default_rng(2)
+    w = rng.standard_normal(shape)
+    x = rng.standard_normal((shape[1], 400)) * np.geomspace(3, 0.1, shape[1])[:, None]
+    g = x @ x.T
+    dec = Whitened.decompose_left("w", w, g, dtype="float64")
+    ref = np.linalg.svd(w @ np.linalg.cholesky(g), compute_uv=False)  # numpy as the reference SVD
+    np.testing.assert_allclose(dec.spectrum.singular_values, ref, rtol=1e-8)
+    for k in (1, 3, len(dec.values)):
+        a, f = dec.factors(k)
+        ca, cf = whitened_factors(w, whitening(g), k)
+        np.testing.assert_allclose(a @ f, ca @ cf, rtol=1e-7, atol=1e-9)
