@@ -172,3 +172,59 @@ def test_rebuild_refuses_a_plan_for_another_model(tmp_path):
     (tmp_path / "model.safetensors").write_bytes(b"")
     with pytest.raises(InputError, match=r"layer '0' is linear \[8, 16\] in the plan but linear \[16, 16\]"):
         store.load_factorized(model, tmp_path)
+
+
+class _Encoder(nn.Module):
+    """Stock parts: nn.TransformerEncoder (eval-mode fast path available) and a linear head."""
+
+    def __init__(self):
+        super().__init__()
+        layer = nn.TransformerEncoderLayer(32, 4, 64, batch_first=True, dropout=0.0)
+        self.enc = nn.TransformerEncoder(layer, 2, enable_nested_tensor=False)
+        self.head = nn.Linear(32, 5)
+
+    def forward(self, x):  # (N, T, 32)
+        return self.head(self.enc(x).mean(1))
+
+
+def test_stock_transformer_encoder_layers_compress_save_and_reload(tmp_path):
+    # torch itself (the original model) as the oracle: a full-rank rewrite reproduces its outputs,
+    # and the saved result rebuilt from a fresh original computes what the run's model computed
+    from factorize_weights.config import CompressConfig
+    from factorize_weights.data import HeldOut
+    from factorize_weights.pipeline import compress
+
+    torch.manual_seed(5)
+    model = _Encoder().eval()
+    records = tb.discover(model)
+    reasons = {r.name: r.skip_reason for r in records}
+    assert "splitting it is not supported yet" in reasons["enc.layers.0.self_attn.in_proj"]  # listed, not lost
+    assert reasons["enc.layers.0.linear1"] is None and reasons["head"] is None
+    x = torch.randn(8, 6, 32)
+    full = {r.name: svd_factors(tb.weight_matrix(r), min(r.matrix_shape)) for r in records if r.skip_reason is None}
+    with torch.no_grad():
+        np.testing.assert_allclose(tb.rewrite(model, records, full)(x), model(x), atol=1e-5)
+    result = compress(model, CompressConfig(budget="params=0.5", quiet=True, latency_repeats=2),
+                      heldout=HeldOut(x.numpy(), None, "x"), out=tmp_path / "run")
+    assert result.report["totals"]["layers_factorized"] >= 1
+    rebuilt = store.load_factorized(_Encoder().eval(), tmp_path / "run")
+    with torch.no_grad():
+        assert torch.equal(rebuilt(x), result.model(x))
+
+
+class _Scaled(nn.Linear):
+    def forward(self, x):
+        return 2.0 * super().forward(x)
+
+
+class _Plain(nn.Linear):
+    pass
+
+
+def test_layers_whose_behaviour_a_rewrite_would_change_are_skipped_with_a_reason():
+    model = nn.Sequential(_Scaled(16, 16), _Plain(16, 16), nn.Linear(16, 16))
+    model[2].register_forward_hook(lambda m, a, o: o)
+    reasons = {r.name: r.skip_reason for r in tb.discover(model)}
+    assert "overrides forward()" in reasons["0"]
+    assert reasons["1"] is None  # a subclass that keeps Linear.forward is the same function
+    assert "forward hooks" in reasons["2"]

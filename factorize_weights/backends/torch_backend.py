@@ -187,6 +187,8 @@ def discover(
         for child_name, child in parent.named_children():
             parents[id(child)] = parent
     for name, module in model.named_modules():
+        if isinstance(module, nn.MultiheadAttention):
+            records += _attention_projections(name, module)
         kind = next((k for cls, k in _KINDS.items() if type(module) is cls or isinstance(module, cls)), None)
         if kind is None:
             reason = next((r for cls, r in _UNSUPPORTED.items() if isinstance(module, cls)), None)
@@ -222,6 +224,23 @@ def discover(
     return records
 
 
+def _attention_projections(name: str, mha: nn.MultiheadAttention) -> list[LayerRecord]:
+    """The q/k/v projection weights of ``nn.MultiheadAttention``, listed as skipped: the module reads
+    them directly (packed ``in_proj_weight``, or ``q/k/v_proj_weight`` when kdim/vdim differ), so
+    there is no Linear to replace."""
+    reason = "q/k/v projection read directly by nn.MultiheadAttention; splitting it is not supported yet"
+    weights = ([("in_proj", mha.in_proj_weight)] if mha.in_proj_weight is not None else
+               [(p, getattr(mha, f"{p}_weight")) for p in ("q_proj", "k_proj", "v_proj")])
+    out = []
+    for suffix, w in weights:
+        if w is None:
+            continue
+        out.append(LayerRecord(f"{name}.{suffix}" if name else suffix, "linear", tuple(w.shape),
+                               (int(w.shape[0]), int(w.shape[1])), mha.in_proj_bias is not None,
+                               str(w.dtype).removeprefix("torch."), skip_reason=reason, handle=mha))
+    return out
+
+
 def _skip_reason(name, module, record, parent, owners, names, only, skip) -> str | None:
     if only and not _matches(name, only):
         return f"not matched by --only {' '.join(repr(p) for p in only)}"
@@ -229,6 +248,12 @@ def _skip_reason(name, module, record, parent, owners, names, only, skip) -> str
         return f"excluded by --skip {' '.join(repr(p) for p in skip if fnmatch.fnmatchcase(name, p))}"
     if isinstance(parent, nn.MultiheadAttention):
         return "read directly by its parent MultiheadAttention, so replacing it would have no effect"
+    base = next(cls for cls in _KINDS if isinstance(module, cls))
+    if type(module).forward is not base.forward:
+        return (f"class {type(module).__name__} overrides forward(); two plain factors would not compute "
+                "what it computes")
+    if module._forward_hooks or module._forward_pre_hooks:
+        return "has forward hooks, which a replacement would drop"
     if len(names) > 1:
         return f"the same module is reachable as {', '.join(repr(n) for n in names)} (an alias)"
     own = module._parameters.get("weight")  # None for a parametrized weight (weight_norm etc.)
@@ -319,7 +344,20 @@ def rewrite(
         if isinstance(old, FactorPair):  # a refit of a layer already split in this working copy
             old = by_name[name].handle
         _set_submodule(new, name, _factor_pair(old, by_name[name], a, x))
+        _no_fast_path(new, name)
     return new
+
+
+def _no_fast_path(root: nn.Module, name: str) -> None:
+    """Turn off PyTorch's fused eval-mode path in the ``nn.TransformerEncoderLayer`` that holds a
+    replaced layer: that path reads ``linear1.weight`` and ``linear2.weight`` directly, which a
+    factor pair does not have. Only that layer is affected; its regular path computes the same
+    function (the flag only gates the fused kernel, ``activation`` is unchanged)."""
+    parts = name.split(".")
+    for i in range(len(parts) - 1, 0, -1):
+        module = root.get_submodule(".".join(parts[:i]))
+        if isinstance(module, nn.TransformerEncoderLayer):
+            module.activation_relu_or_gelu = False
 
 
 def skeleton(model: nn.Module, records: Iterable[LayerRecord], ranks: dict[str, int]) -> nn.Module:
