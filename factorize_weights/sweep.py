@@ -90,6 +90,7 @@ def sweep(model, config: CompressConfig, budgets: list[str], *, heldout=None, ca
         points.append(_point(result, budget))
         if save_models:
             results.append((budget, result))
+        del result  # this budget's model is freed before the next one is built
     t_points = time.perf_counter() - t0
     doc = {"tool_version": __version__, "method": prep.method, "sequential": prep.sequential,
            "sources": sources or {}, "config": config.to_dict(), "points": points,
