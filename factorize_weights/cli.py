@@ -32,6 +32,17 @@ model:      MODEL.onnx, or --model FILE.py:FACTORY or package.module:FACTORY (a 
 """
 
 
+class _Once(argparse.Action):
+    """A flag that may be given once: a second value is an error, not a silent override."""
+
+    def __call__(self, parser, namespace, values, option_string=None):
+        if getattr(namespace, self.dest, None) is not None and getattr(namespace, f"_{self.dest}_seen", False):
+            raise argparse.ArgumentError(self, f"given twice ({getattr(namespace, self.dest)!r} and {values!r}): "
+                                               "one per run (the sweep command takes several)")
+        setattr(namespace, self.dest, values)
+        setattr(namespace, f"_{self.dest}_seen", True)
+
+
 class _Parser(argparse.ArgumentParser):
     """argparse that reports a usage error as one line and exit code 2."""
 
@@ -44,7 +55,10 @@ def _common(p: argparse.ArgumentParser) -> None:
     g.add_argument("model_path", nargs="?", metavar="MODEL",
                    help="MODEL.onnx, or a PyTorch factory (same as --model)")
     g.add_argument("--model", metavar="SPEC", help="FILE.py:FACTORY, package.module:FACTORY, or MODEL.onnx")
-    g.add_argument("--weights", metavar="FILE", help="checkpoint of a PyTorch model (.safetensors, .pt, .pth)")
+    g.add_argument("--weights", metavar="FILE",
+                   help="checkpoint of a PyTorch model (.safetensors, a sharded *.safetensors.index.json, .pt, .pth)")
+    g.add_argument("--weights-key", metavar="KEY",
+                   help="the key of a .pt/.pth checkpoint that holds the tensors (default: found, with a notice)")
     g.add_argument("--demo", nargs="?", const="torch", choices=("torch", "onnx"),
                    help="use the embedded demo model (PyTorch, or its ONNX export) and its held-out set")
     p.add_argument("--debug", action="store_true", help="show tracebacks")
@@ -87,6 +101,9 @@ def _plan_options(p: argparse.ArgumentParser, *, sweep: bool = False) -> None:
     g.add_argument("--recover-lr", type=float, default=_DEFAULTS.recover_lr, metavar="LR", help=f"recovery learning rate (default {_DEFAULTS.recover_lr:g})")
     g = p.add_argument_group("evaluation and output")
     g.add_argument("--heldout", metavar="DATA", help="held-out .npz (inputs[, labels]) or FILE.py:FUNCTION")
+    g.add_argument("--output", metavar="NAME",
+                   help="which model output the metrics read: an entry of a dict or output object, or an index "
+                        "into a tuple (default: the first tensor)")
     g.add_argument("--metric", choices=METRICS, help="default: top1 with class labels, mse with float targets, else cosine")
     g.add_argument("--batch-size", type=int, default=_DEFAULTS.batch_size, help=f"largest held-out and calibration batch (default {_DEFAULTS.batch_size}; cut to fit 256 MiB of activations)")
     g.add_argument("--error-samples", type=int, default=_DEFAULTS.error_samples, help="held-out samples for per-layer output error")
@@ -126,7 +143,8 @@ def build_parser() -> argparse.ArgumentParser:
     _common(p)
     _selection(p)
     g = p.add_argument_group("plan")
-    g.add_argument("--budget", metavar="KIND=VALUE", help="params=F|N, flops=F|N, energy=F or error=F")
+    g.add_argument("--budget", metavar="KIND=VALUE", action=_Once,
+                   help="params=F|N, flops=F|N, energy=F or error=F (one per run)")
     g.add_argument("--max-drop", type=float, metavar="D",
                    help="instead of --budget: the smallest params budget whose held-out drop is at most D, in the "
                         "metric's units (percentage points for top1/top5/agreement, absolute for cosine and mse)")
@@ -152,7 +170,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--factorized", required=True, metavar="DIR", help="an output folder of compress")
     p.add_argument("--heldout", metavar="DATA", help="held-out .npz or FILE.py:FUNCTION")
     p.add_argument("--metric", choices=METRICS)
-    p.add_argument("--batch-size", type=int, default=256)
+    p.add_argument("--output", metavar="NAME", help="which model output the metric reads (default: the first tensor)")
+    p.add_argument("--batch-size", type=int, default=_DEFAULTS.batch_size)
     p.set_defaults(func=cmd_evaluate)
     return parser
 
@@ -185,7 +204,16 @@ def _load_model(args):
                                                             "model_sha256": file_sha256(spec)})
     if ":" not in spec:
         raise InputError(f"--model {spec!r}: not an ONNX file and not FILE.py:FACTORY or package.module:FACTORY")
-    model = torch_backend.build_model(spec, args.weights)
+    import warnings
+
+    if getattr(args, "weights_key", None) and not args.weights:
+        raise InputError("--weights-key picks a key inside --weights; give --weights too")
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", torch_backend.CheckpointNotice)
+        model = torch_backend.build_model(spec, args.weights, weights_key=getattr(args, "weights_key", None))
+    for w in caught:
+        if issubclass(w.category, torch_backend.CheckpointNotice):
+            _warn(str(w.message))
     if not args.weights:
         _warn(f"no --weights: {spec} is used with the weights its factory creates")
     from pathlib import Path
@@ -237,7 +265,7 @@ def cmd_inspect(args) -> int:
 
 def _plan_config(args, budget: str) -> CompressConfig:
     return _config(args, budget=budget, method=args.method, split=args.split,
-                   rank_multiple=args.rank_multiple, min_rank=args.min_rank, metric=args.metric,
+                   rank_multiple=args.rank_multiple, min_rank=args.min_rank, metric=args.metric, output=args.output,
                    batch_size=args.batch_size, error_samples=args.error_samples,
                    latency_batch=args.latency_batch, latency_threads=args.latency_threads,
                    latency_repeats=args.latency_repeats, latency_warmup=args.latency_warmup,
@@ -289,6 +317,8 @@ def cmd_compress(args) -> int:
     from .report import layer_table, summary_line
     from .sweep import POINT_UNITS, drop_of
 
+    if args.budget is not None and not args.budget.strip():
+        raise InputError("--budget '': empty; give KIND=VALUE, e.g. --budget params=0.5")
     if (args.budget is None) == (args.max_drop is None):
         raise InputError("give exactly one of --budget and --max-drop")
     import math
@@ -362,7 +392,8 @@ def cmd_evaluate(args) -> int:
         raise InputError("--heldout is required for evaluate")
     heldout = _heldout(args)
     factorized = load_factorized(model, args.factorized)
-    result = evaluate(model, factorized, heldout, args.metric, CompressConfig(quiet=args.quiet, batch_size=args.batch_size))
+    result = evaluate(model, factorized, heldout, args.metric, CompressConfig(quiet=args.quiet, batch_size=args.batch_size,
+                                                                                 output=args.output))
     if args.json:
         _print_json({"metric": result.to_dict(), "factorized": args.factorized, "heldout": heldout.source})
     else:

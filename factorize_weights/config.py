@@ -31,6 +31,7 @@ class CompressConfig:
     min_rank: int = 1  # lowest rank a factorized layer may get
     only: tuple[str, ...] = ()  # name globs of layers to consider (empty: all)
     skip: tuple[str, ...] = ()  # name globs of layers to leave dense
+    output: str | None = None  # which output the metrics read: an entry name or tuple index (None: the first)
     metric: str | None = None  # None: top1 with class labels, mse with float targets, else cosine
     batch_size: int = 256  # held-out batch size (memory, not accuracy)
     error_samples: int = 256  # held-out samples used for the per-layer output error

@@ -6,11 +6,18 @@
 ``labels``  optional array (N,) of integer class ids (for top1/top5) or (N, ...) float targets
             (for mse). Any other arrays are ignored.
 
+Several inputs
+--------------
+Without ``inputs``, every array but ``labels`` is an input named after a parameter of the model's
+``forward`` (``input_ids``, ``attention_mask``, ...; for ONNX, a graph input name) and passed by
+name. Integer arrays (token ids, masks) stay integers; floating arrays take the model's dtype.
+
 Import spec
 -----------
 ``path/to/file.py:function`` or ``package.module:function``: a callable taking no arguments that
 returns an iterable of ``(inputs, labels)`` pairs (``labels`` may be ``None``); each pair is one
-batch of numpy arrays or tensors.
+batch of numpy arrays or tensors. ``inputs`` may be one array, a dict of named arrays (passed by
+name) or a tuple of arrays (passed by position).
 """
 
 from __future__ import annotations
@@ -129,8 +136,13 @@ def _load_spec(spec: str, flag: str) -> HeldOut:
         fn = getattr(module, attr)
         inputs, labels = [], []
         for item in fn():
-            x, y = item if isinstance(item, (tuple, list)) else (item, None)
-            inputs.append(_as_array(x))
+            x, y = item if isinstance(item, (tuple, list)) and len(item) == 2 else (item, None)
+            if isinstance(x, dict):  # named inputs, passed by name
+                inputs.append({str(k): _as_array(v) for k, v in x.items()})
+            elif isinstance(x, (tuple, list)):  # several positional inputs
+                inputs.append({str(i): _as_array(v) for i, v in enumerate(x)})
+            else:
+                inputs.append(_as_array(x))
             if y is not None:
                 labels.append(_as_array(y))
     except InputError:
@@ -142,7 +154,12 @@ def _load_spec(spec: str, flag: str) -> HeldOut:
     if labels and len(labels) != len(inputs):
         raise InputError(f"{flag} {spec!r}: some batches have labels and some do not")
     try:
-        x = np.concatenate(inputs)
+        if any(isinstance(b, dict) for b in inputs):
+            if not all(isinstance(b, dict) and b.keys() == inputs[0].keys() for b in inputs):
+                raise InputError(f"{flag} {spec!r}: every batch must hold the same named inputs")
+            x = {k: np.concatenate([b[k] for b in inputs]) for k in inputs[0]}
+        else:
+            x = np.concatenate(inputs)
         y = np.concatenate(labels) if labels else None
     except ValueError as exc:
         raise InputError(f"{flag} {spec!r}: batches do not share a shape ({exc})") from exc

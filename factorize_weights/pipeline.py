@@ -27,7 +27,7 @@ from .errors import InputError
 from .metrics import MetricAccumulator, MetricResult, check_metric, default_metric
 from .progress import bar
 from .records import LayerRecord
-from .spectra import Spectrum, compute_spectrum
+from .spectra import Spectrum, checked_matrix, compute_spectrum
 from .stats import relative_error, weight_error
 
 
@@ -131,11 +131,11 @@ def factorize(model, records: list[LayerRecord], plan: Plan, config: CompressCon
     return backend_for(model).rewrite(model, records, compute_factors(records, plan, config))
 
 
-def check_fits(model, data: HeldOut, flag: str = "--heldout") -> np.ndarray:
+def check_fits(model, data: HeldOut, flag: str = "--heldout", output: str | None = None) -> np.ndarray:
     """Run the first batch of ``data`` through ``model``; refuse data that does not fit it."""
     first, _ = next(data.batches(batch_size=min(len(data), 8)))
     try:
-        outputs = backend_for(model).predict(model, first, source=f"{flag} {data.source}")
+        outputs = backend_for(model).predict(model, first, source=f"{flag} {data.source}", output=output)
     except InputError:
         raise
     except Exception as exc:
@@ -149,9 +149,9 @@ def check_fits(model, data: HeldOut, flag: str = "--heldout") -> np.ndarray:
     return outputs
 
 
-def check_heldout(model, heldout: HeldOut, metric: str | None) -> str:
+def check_heldout(model, heldout: HeldOut, metric: str | None, output: str | None = None) -> str:
     """Run the first held-out batch through ``model``; return the metric to use."""
-    outputs = check_fits(model, heldout, "--heldout")
+    outputs = check_fits(model, heldout, "--heldout", output)
     name = metric or default_metric(heldout.labels, outputs)
     check_metric(name, heldout.labels, outputs)
     return name
@@ -160,11 +160,10 @@ def check_heldout(model, heldout: HeldOut, metric: str | None) -> str:
 def evaluate(original, factorized, heldout: HeldOut, metric: str | None = None, config: CompressConfig | None = None) -> MetricResult:
     """The held-out metric of ``original`` (before) and ``factorized`` (after)."""
     config = config or CompressConfig()
-    name = check_heldout(original, heldout, metric)
+    name = check_heldout(original, heldout, metric, config.output)
     backend = backend_for(original)
     size = batch_size_for(config, backend.measure_positions(original, backend.discover(original), heldout.inputs))
-    predict = backend.predict
-    triples = ((x, predict(original, x), y) for x, y in heldout.batches(size))
+    triples = ((x, backend.predict(original, x, output=config.output), y) for x, y in heldout.batches(size))
     return _score(name, factorized, triples, -(-len(heldout) // size), config)
 
 
@@ -178,7 +177,7 @@ def _score(metric: str, factorized, triples, total: int, config: CompressConfig)
     acc = MetricAccumulator(metric)
     predict = backend_for(factorized).predict
     for inputs, reference, labels in bar(triples, config, "evaluate", total, "batch"):
-        acc.update(reference, predict(factorized, inputs), labels)
+        acc.update(reference, predict(factorized, inputs, output=config.output), labels)
     return acc.result()
 
 
@@ -216,7 +215,7 @@ class Prepared:
 
 
 def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calibration: HeldOut | None = None,
-            *, budgets: list[str] | None = None) -> Prepared:
+            *, budgets: list[str] | None = None, model_source: str | None = None) -> Prepared:
     """Validate, discover, calibrate (one pass) and decompose every selected layer once. Every
     budget in ``budgets`` (default: ``config.budget``) is parsed and checked for feasibility
     before the first SVD."""
@@ -234,12 +233,18 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
     if config.recover and backend.FORMAT != "torch":
         raise InputError("--recover fine-tunes PyTorch factor pairs; an ONNX model has no trainable factors")
     _check_overlap(heldout, calibration, config.allow_overlap)
-    metric_name = check_heldout(model, heldout, config.metric) if heldout is not None else None
     records = backend.discover(model, only=config.only, skip=config.skip)
     chosen = selected(records)
     if not chosen:
         found = f"{len(records)} layer(s) found, all skipped" if records else "no linear or convolution layers found"
-        raise InputError(f"nothing to factorize: {found}")
+        where = f"{model_source}: " if model_source else ""
+        raise InputError(f"{where}nothing to factorize: {found}")
+    for record in chosen:  # the weights before any data: a NaN weight is named as such, not as bad data
+        try:
+            checked_matrix(record.name, backend.weight_matrix(record))
+        except ValueError as exc:
+            raise InputError(str(exc)) from exc
+    metric_name = check_heldout(model, heldout, config.metric, config.output) if heldout is not None else None
     if any(b.kind == "flops" for b in parsed) and heldout is None:
         raise InputError("a flops budget needs --heldout (to measure layer output sizes)")
     size = config.batch_size
@@ -251,7 +256,7 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
     sequential = config.resolved_sequential(method)
     cal, order = None, [[r.name] for r in chosen]
     if calibration is not None:
-        check_fits(model, calibration, "--calibration")
+        check_fits(model, calibration, "--calibration", config.output)
         if sequential:
             order = backend.call_stages(model, chosen, calibration.inputs)
         t1 = time.perf_counter()
@@ -264,7 +269,7 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
     reference = []
     if heldout is not None:
         for inputs, labels in heldout.batches(size):
-            reference.append((backend.predict(model, inputs), labels))
+            reference.append((backend.predict(model, inputs, output=config.output), labels))
     timings["prepare"] = time.perf_counter() - t0
     return Prepared(model, config, records, decompositions, method, sequential, heldout, cal, metric_name,
                     reference, timings, size, order)
@@ -457,15 +462,16 @@ def compress(
     if out is not None:
         store.check_out_dir(out, force, input_paths(sources, heldout, calibration))
     check_outputs_requested(model, config, heldout, out)
+    source = (sources or {}).get("model")
     if max_drop is None:
-        prep = prepare(model, config, heldout, calibration)
+        prep = prepare(model, config, heldout, calibration, model_source=source)
         result = realize(prep, config.budget, sources=sources)
     else:
         from .sweep import search_budget  # sweep builds on this module
 
         if heldout is None:
             raise InputError("--max-drop needs --heldout (the drop is measured on it)")
-        prep = prepare(model, config, heldout, calibration, budgets=["params=1"])
+        prep = prepare(model, config, heldout, calibration, budgets=["params=1"], model_source=source)
         budget, search, _ = search_budget(prep, max_drop)
         prep.config = config = dataclasses.replace(config, budget=budget)
         result = realize(prep, budget, sources=sources)

@@ -164,6 +164,14 @@ def load_factorized(model, folder: str | Path):
     """
     folder = Path(folder)
     plan = read_plan(folder)
+    layers = plan.get("layers")
+    if not isinstance(layers, list):
+        raise InputError(f"{folder}/plan.json: no 'layers' list (a damaged or foreign result folder)")
+    for i, entry in enumerate(layers):
+        missing = [f for f in ("name", "kind", "shape", "rank") if not isinstance(entry, dict) or f not in entry]
+        if missing:
+            raise InputError(f"{folder}/plan.json: layer entry {i} lacks the field(s) {', '.join(missing)} "
+                             "(a damaged result folder)")
     if backend_for(model).FORMAT == "onnx" or (folder / "model.onnx").is_file() and not (folder / "model.safetensors").is_file():
         from .backends import onnx_backend
 
@@ -175,7 +183,7 @@ def load_factorized(model, folder: str | Path):
 
     records = {r.name: r for r in backend.discover(model)}
     ranks = {}
-    for entry in plan["layers"]:
+    for entry in layers:
         name = entry["name"]
         record = records.get(name)
         if record is None:

@@ -81,7 +81,7 @@ def sweep(model, config: CompressConfig, budgets: list[str], *, heldout=None, ca
     if save_models and out is None:
         raise InputError("--save-models needs --out")
     t0 = time.perf_counter()
-    prep = prepare(model, config, heldout, calibration, budgets=budgets)
+    prep = prepare(model, config, heldout, calibration, budgets=budgets, model_source=(sources or {}).get("model"))
     t_prepare = time.perf_counter() - t0
     points, results = [], []
     t0 = time.perf_counter()

@@ -514,10 +514,20 @@ def feed(model: OnnxModel, inputs, *, source: str = "--heldout") -> dict[str, np
     return out
 
 
-def predict(model: OnnxModel, inputs, *, source: str = "--heldout") -> np.ndarray:
-    """Run the graph on one batch with onnxruntime; the first output as float64. ``source``
-    names the data in errors."""
-    result = _session(model).run(None, feed(model, inputs, source=source))
+def predict(model: OnnxModel, inputs, *, source: str = "--heldout", output: str | None = None) -> np.ndarray:
+    """Run the graph on one batch with onnxruntime; the first graph output (or the one named
+    ``output``, or at index ``output``) as float64. ``source`` names the data in errors."""
+    session = _session(model)
+    names = [o.name for o in session.get_outputs()]
+    pick = 0
+    if output is not None:
+        if output in names:
+            pick = names.index(output)
+        elif output.isdigit() and int(output) < len(names):
+            pick = int(output)
+        else:
+            raise InputError(f"--output {output!r}: the graph has no such output (outputs: {', '.join(names)})")
+    result = session.run([names[pick]], feed(model, inputs, source=source))
     return np.asarray(result[0], dtype=np.float64)
 
 

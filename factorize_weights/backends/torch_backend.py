@@ -14,6 +14,7 @@ import importlib.util
 import sys
 from collections import OrderedDict
 from pathlib import Path
+from collections.abc import Mapping
 from typing import Callable, Iterable, Iterator, Sequence
 
 import numpy as np
@@ -86,7 +87,7 @@ def load_factory(spec: str) -> Callable[[], nn.Module]:
     return factory
 
 
-def build_model(spec: str, weights: str | Path | None = None) -> nn.Module:
+def build_model(spec: str, weights: str | Path | None = None, *, weights_key: str | None = None) -> nn.Module:
     """Call the factory, check it returned an ``nn.Module``, load ``weights`` strictly, eval()."""
     factory = load_factory(spec)
     try:
@@ -96,16 +97,72 @@ def build_model(spec: str, weights: str | Path | None = None) -> nn.Module:
     if not isinstance(model, nn.Module):
         raise InputError(f"--model {spec!r}: the factory returned {type(model).__name__}, not an nn.Module")
     if weights is not None:
-        load_weights(model, weights)
+        load_weights(model, weights, key=weights_key)
     return model.eval()
 
 
-def read_checkpoint(path: str | Path) -> dict[str, torch.Tensor]:
-    """A flat name -> tensor mapping from ``.safetensors``, or ``.pt``/``.pth`` read with
-    ``torch.load(weights_only=True)`` (which refuses arbitrary pickled objects)."""
+class CheckpointNotice(UserWarning):
+    """Something about a checkpoint the user should know (a key unwrapped); the CLI prints it."""
+
+
+#: Keys under which training scripts commonly nest a state dict (common practice), in the order tried.
+NESTED_KEYS = ("state_dict", "model_state_dict", "model", "module", "net", "network", "weights", "params")
+
+
+def _is_tensor_map(value) -> bool:
+    return isinstance(value, dict) and bool(value) and all(isinstance(v, torch.Tensor) for v in value.values())
+
+
+class ShardedCheckpoint(Mapping):
+    """The tensors of a sharded safetensors checkpoint (``*.safetensors.index.json`` plus shards),
+    read one tensor at a time: shapes come from the shard headers, values on access."""
+
+    def __init__(self, index: Path):
+        import json
+
+        try:
+            weight_map = json.loads(index.read_text(encoding="utf-8"))["weight_map"]
+        except (OSError, ValueError, KeyError, TypeError) as exc:
+            raise InputError(f"--weights {index}: not a safetensors index (no readable 'weight_map': "
+                             f"{type(exc).__name__})") from exc
+        self.files = {name: index.parent / shard for name, shard in weight_map.items()}
+        missing = sorted({str(f) for f in self.files.values() if not f.is_file()})
+        if missing:
+            raise InputError(f"--weights {index}: shard file {missing[0]} is missing ({len(missing)} missing)")
+
+    def _open(self, name: str):
+        from safetensors import safe_open
+
+        return safe_open(str(self.files[name]), framework="pt")
+
+    def shape(self, name: str) -> tuple:
+        with self._open(name) as f:
+            return tuple(f.get_slice(name).get_shape())
+
+    def __getitem__(self, name: str) -> torch.Tensor:
+        with self._open(name) as f:
+            return f.get_tensor(name)
+
+    def __iter__(self):
+        return iter(self.files)
+
+    def __len__(self):
+        return len(self.files)
+
+
+def read_checkpoint(path: str | Path, key: str | None = None):
+    """A name -> tensor mapping from ``.safetensors``, a sharded safetensors index
+    (``*.safetensors.index.json``, read lazily), or ``.pt``/``.pth``/``.bin`` read with
+    ``torch.load(weights_only=True)`` (which refuses arbitrary pickled objects). A checkpoint that
+    nests its tensors under one key (``{'model': state_dict, 'epoch': 3}``) is unwrapped: ``key``
+    names it, else the first of :data:`NESTED_KEYS` that holds tensors is taken, with a notice."""
+    import warnings
+
     path = Path(path)
     if not path.is_file():
         raise InputError(f"--weights {path}: file does not exist")
+    if path.name.lower().endswith(".index.json"):
+        return ShardedCheckpoint(path)
     suffix = path.suffix.lower()
     try:
         if suffix == ".safetensors":
@@ -113,31 +170,55 @@ def read_checkpoint(path: str | Path) -> dict[str, torch.Tensor]:
 
             state = load_file(str(path))
         elif suffix in (".pt", ".pth", ".bin"):
-            state = torch.load(str(path), map_location="cpu", weights_only=True)
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")  # torch's own warnings about the file format
+                state = torch.load(str(path), map_location="cpu", weights_only=True)
         else:
-            raise InputError(f"--weights {path}: expected a .safetensors, .pt or .pth file")
+            raise InputError(f"--weights {path}: expected a .safetensors, .safetensors.index.json, .pt or .pth file")
     except InputError:
         raise
     except Exception as exc:
         raise InputError(f"--weights {path}: cannot be read as {suffix} ({_describe(exc)})") from exc
-    if isinstance(state, dict) and isinstance(state.get("state_dict"), dict):
-        state = state["state_dict"]
-    if not isinstance(state, dict) or not all(isinstance(v, torch.Tensor) for v in state.values()):
-        raise InputError(f"--weights {path}: expected a mapping of tensor names to tensors")
-    return state
+    if not isinstance(state, dict):
+        raise InputError(f"--weights {path}: holds a {type(state).__name__}, not a mapping of tensor names to tensors")
+    if key is not None:
+        if not _is_tensor_map(state.get(key)):
+            raise InputError(f"--weights-key {key!r}: {path} has no mapping of tensors under that key "
+                             f"(top-level keys: {', '.join(map(str, list(state)[:8]))})")
+        return state[key]
+    if _is_tensor_map(state):
+        return state
+    nested = [k for k in NESTED_KEYS if _is_tensor_map(state.get(k))]
+    others = [k for k in state if _is_tensor_map(state.get(k))]
+    if nested or others:
+        chosen = (nested or others)[0]
+        warnings.warn(CheckpointNotice(
+            f"--weights {path}: the tensors are under the key {chosen!r}; using them "
+            f"(other keys: {', '.join(str(k) for k in state if k != chosen)[:200] or 'none'}; --weights-key picks another)"))
+        return state[chosen]
+    raise InputError(f"--weights {path}: expected a mapping of tensor names to tensors; found keys "
+                     f"{', '.join(map(str, list(state)[:8]))} and none of them holds tensors")
 
 
-def load_weights(model: nn.Module, path: str | Path) -> None:
-    """Load a checkpoint into ``model``; every key and shape must match."""
-    state = read_checkpoint(path)
+def load_weights(model: nn.Module, path: str | Path, *, key: str | None = None) -> None:
+    """Load a checkpoint into ``model``; every key and shape must match. Sharded checkpoints are
+    copied one tensor at a time."""
+    state = read_checkpoint(path, key)
+    shape_of = state.shape if isinstance(state, ShardedCheckpoint) else (lambda k: tuple(state[k].shape))
     own = model.state_dict()
     missing = [k for k in own if k not in state]
     unexpected = [k for k in state if k not in own]
     wrong = [
-        f"{k} {tuple(state[k].shape)} vs model {tuple(own[k].shape)}"
+        f"{k} {shape_of(k)} vs model {tuple(own[k].shape)}"
         for k in own
-        if k in state and tuple(state[k].shape) != tuple(own[k].shape)
+        if k in state and shape_of(k) != tuple(own[k].shape)
     ]
+    if not isinstance(state, ShardedCheckpoint):
+        for k in own:  # float16/bfloat16 into float32 is fine; integers into floats are not weights
+            if k in state and own[k].is_floating_point() and not state[k].is_floating_point():
+                raise InputError(f"--weights {path}: tensor {k!r} is {str(state[k].dtype).removeprefix('torch.')} "
+                                 f"but the model's is {str(own[k].dtype).removeprefix('torch.')} (a quantized "
+                                 "checkpoint? give the floating-point weights)")
     if missing or unexpected or wrong:
         parts = []
         if missing:
@@ -147,6 +228,11 @@ def load_weights(model: nn.Module, path: str | Path) -> None:
         if wrong:
             parts.append(f"{len(wrong)} with other shapes (e.g. {'; '.join(wrong[:2])})")
         raise InputError(f"--weights {path}: tensors do not match the model: {'; '.join(parts)}")
+    if isinstance(state, ShardedCheckpoint):
+        with torch.no_grad():
+            for name, target in own.items():
+                target.copy_(state[name])  # state_dict() tensors share storage with the model
+        return
     model.load_state_dict(state, strict=True)
 
 
@@ -275,7 +361,12 @@ def _skip_reason(name, module, record, parent, owners, names, only, skip) -> str
 
 
 def weight_matrix(record: LayerRecord) -> np.ndarray:
-    """The matrix view in float64: (out, in) or (out_channels, in_channels*kh*kw)."""
+    """The matrix view in float64: (out, in) or (out_channels, in_channels*kh*kw). A NaN or Inf in
+    the layer's bias is refused here too (ValueError naming it), as the weight's are by the core."""
+    bias = getattr(record.handle, "bias", None)
+    if isinstance(bias, torch.Tensor) and not bool(torch.isfinite(bias).all()):
+        bad = int((~torch.isfinite(bias)).sum())
+        raise ValueError(f"layer {record.name!r}: bias has {bad} NaN or Inf value(s)")
     w = record.handle.weight.detach()
     return w.reshape(w.shape[0], -1).to(device="cpu", dtype=torch.float64).numpy()
 
@@ -393,7 +484,11 @@ def load_saved_weights(model: nn.Module, path: str | Path) -> None:
 # ---------------------------------------------------------------- running
 
 
-def to_tensor(array: np.ndarray, model: nn.Module) -> torch.Tensor:
+def to_tensor(array, model: nn.Module):
+    """One batch as tensors on the model's device: floating arrays in the model's dtype, integer
+    arrays (token ids, masks) kept as they are. A dict of arrays gives a dict of tensors."""
+    if isinstance(array, dict):
+        return {k: to_tensor(v, model) for k, v in array.items()}
     t = torch.from_numpy(np.ascontiguousarray(array))
     param = next(model.parameters(), None)
     if t.is_floating_point() and param is not None:
@@ -403,14 +498,56 @@ def to_tensor(array: np.ndarray, model: nn.Module) -> torch.Tensor:
     return t
 
 
-def _to_numpy(out) -> np.ndarray:
+def call(model: nn.Module, batch):
+    """Run ``model`` on one batch: an array is the one positional input; a dict of arrays is passed
+    by name (``input_ids=``, ``attention_mask=``, ...), except keys ``"0"``, ``"1"``, ... which are
+    positional inputs in that order (batches a data callable yielded as tuples)."""
+    x = to_tensor(batch, model)
+    if not isinstance(x, dict):
+        return model(x)
+    positional = sorted((k for k in x if k.isdigit()), key=int)
+    return model(*(x[k] for k in positional), **{k: v for k, v in x.items() if not k.isdigit()})
+
+
+def rows(batch) -> int:
+    """Samples in a batch (an array or a dict of arrays sharing their first dimension)."""
+    return len(next(iter(batch.values()))) if isinstance(batch, dict) else len(batch)
+
+
+def first_rows(batch, n: int = 1):
+    return {k: v[:n] for k, v in batch.items()} if isinstance(batch, dict) else batch[:n]
+
+
+def select_output(out, name: str | None = None) -> torch.Tensor:
+    """The one tensor the metrics read from a model's output. The rule: a tensor is itself; a dict
+    or a Hugging Face-style output object gives the entry ``name``, else its first tensor; a tuple
+    or list gives element ``int(name)``, else its first tensor."""
+    if isinstance(out, torch.Tensor):
+        return out
+    if isinstance(out, dict) or (hasattr(out, "keys") and hasattr(out, "__getitem__")):
+        keys = list(out.keys())
+        if name is not None:
+            if name not in keys:
+                raise InputError(f"--output {name!r}: the model's output has no such entry (it has {', '.join(map(str, keys))})")
+            return select_output(out[name])
+        first = next((out[k] for k in keys if isinstance(out[k], torch.Tensor)), None)
+        if first is None:
+            raise InputError(f"the model's output ({', '.join(map(str, keys))}) holds no tensor")
+        return first
     if isinstance(out, (tuple, list)):
-        out = out[0]
-    if isinstance(out, dict):
-        out = next(iter(out.values()))
-    if not isinstance(out, torch.Tensor):
-        raise InputError(f"the model returned {type(out).__name__}; expected a tensor (or a tuple starting with one)")
-    return out.detach().to(device="cpu", dtype=torch.float64).numpy()
+        if name is not None:
+            if not name.isdigit() or int(name) >= len(out):
+                raise InputError(f"--output {name!r}: the model returns a {len(out)}-tuple; give an index below {len(out)}")
+            return select_output(out[int(name)])
+        first = next((o for o in out if isinstance(o, torch.Tensor)), None)
+        if first is not None:
+            return first
+    raise InputError(f"the model returned {type(out).__name__}; expected a tensor, a tuple, a dict or an output "
+                     "object holding one")
+
+
+def _to_numpy(out, name: str | None = None) -> np.ndarray:
+    return select_output(out, name).detach().to(device="cpu", dtype=torch.float64).numpy()
 
 
 @contextlib.contextmanager
@@ -427,13 +564,30 @@ def inference(model: nn.Module):
             m.training = flag
 
 
-def predict(model: nn.Module, inputs: np.ndarray, *, source: str = "--heldout") -> np.ndarray:
-    """Run ``model`` (in eval mode) on one batch; the first output as a float64 array. ``source``
-    names the data in errors."""
+def predict(model: nn.Module, inputs, *, source: str = "--heldout", output: str | None = None) -> np.ndarray:
+    """Run ``model`` (in eval mode) on one batch (an array, or a dict of arrays passed by name); the
+    output :func:`select_output` picks, as a float64 array. ``source`` names the data in errors."""
     if isinstance(inputs, dict):
-        raise InputError(f"{source}: missing array 'inputs' (arrays found: {', '.join(sorted(inputs))})")
+        _check_names(model, inputs, source)
     with inference(model):
-        return _to_numpy(model(to_tensor(inputs, model)))
+        return _to_numpy(call(model, inputs), output)
+
+
+def _check_names(model: nn.Module, inputs: dict, source: str) -> None:
+    """Named arrays must be parameters of ``forward`` (unless it takes ``**kwargs``)."""
+    import inspect
+
+    try:
+        params = inspect.signature(model.forward).parameters
+    except (TypeError, ValueError):
+        return
+    if any(p.kind is inspect.Parameter.VAR_KEYWORD for p in params.values()):
+        return
+    unknown = [k for k in inputs if not k.isdigit() and k not in params]
+    if unknown:
+        raise InputError(f"{source}: missing array 'inputs' (arrays found: {', '.join(sorted(inputs))}), and "
+                         f"{', '.join(repr(k) for k in unknown)} is not a parameter of the model's "
+                         f"forward({', '.join(params)}): name a single input 'inputs', or several after forward's parameters")
 
 
 def measure_positions(model: nn.Module, records: list[LayerRecord], sample: np.ndarray) -> int:
@@ -480,7 +634,7 @@ def stream_layer_outputs(original: nn.Module, factorized: nn.Module, names: list
     try:
         with inference(original), inference(factorized):
             for batch in batches:
-                original(to_tensor(batch, original))
+                call(original, batch)
     finally:
         for h in hooks:
             h.remove()
@@ -508,11 +662,16 @@ def timing(models: Sequence[nn.Module], threads: int):
 def timer(model: nn.Module, inputs: np.ndarray, threads: int):
     """A zero-argument callable that runs one forward pass in inference mode; call it inside
     :func:`timing` (threads and eval mode are set there, not per call)."""
-    tensor = to_tensor(inputs, model)
+    x = to_tensor(inputs, model)  # converted once, outside the timed call
+    if isinstance(x, dict):
+        args = tuple(x[k] for k in sorted((k for k in x if k.isdigit()), key=int))
+        kwargs = {k: v for k, v in x.items() if not k.isdigit()}
+    else:
+        args, kwargs = (x,), {}
 
     def run():
         with torch.inference_mode():
-            model(tensor)
+            model(*args, **kwargs)
 
     return run
 
@@ -522,10 +681,21 @@ def export_onnx(model: nn.Module, sample: np.ndarray, path, *, opset: int = 17) 
     nothing beyond torch itself)."""
     import warnings
 
-    tensor = to_tensor(sample, model)
+    x = to_tensor(sample, model)
     with warnings.catch_warnings(), inference(model):
         warnings.simplefilter("ignore")
-        torch.onnx.export(model, (tensor,), str(path), dynamo=False, input_names=["input"],
+        if isinstance(x, dict):  # inputs by name: the graph inputs take the forward's parameter names
+            if any(k.isdigit() for k in x):
+                raise InputError("--export-onnx: inputs given by position (a data callable's tuples) cannot be "
+                                 "named in the ONNX graph; yield dicts keyed by the forward's parameter names")
+            import inspect
+
+            order = list(inspect.signature(model.forward).parameters)
+            x = dict(sorted(x.items(), key=lambda kv: order.index(kv[0]) if kv[0] in order else len(order)))
+            torch.onnx.export(model, (), str(path), kwargs=x, dynamo=False, opset_version=opset,
+                              input_names=list(x), dynamic_axes={k: {0: "batch"} for k in x})
+            return
+        torch.onnx.export(model, (x,), str(path), dynamo=False, input_names=["input"],
                           output_names=["output"], opset_version=opset,
                           dynamic_axes={"input": {0: "batch"}, "output": {0: "batch"}})
 
@@ -580,8 +750,8 @@ def stream_inputs(model: nn.Module, records: list[LayerRecord], batches, sink) -
     try:
         with inference(model):
             for batch in batches:
-                model(to_tensor(batch, model))
-                samples += len(batch)
+                call(model, batch)
+                samples += rows(batch)
     finally:
         for h in hooks:
             h.remove()
@@ -639,15 +809,15 @@ def stream_paired_inputs(original, current, records: list[LayerRecord], batches,
                     used[name] = 0
                 seen[:] = [0, 0]
                 if modules is None:
-                    runs = [(original, (to_tensor(batch, original),)), (current, (to_tensor(batch, current),))]
-                    size = len(batch)
+                    runs = [(lambda b=batch: call(original, b), ()), (lambda b=batch: call(current, b), ())]
+                    size = rows(batch)
                 else:
                     h_orig, h_cur, (o_args, o_kwargs), (c_args, c_kwargs) = batch
                     runs = [(original, (h_orig, o_args, o_kwargs)), (current, (h_cur, c_args, c_kwargs))]
                     size = h_orig.shape[0]
-                for run, call in runs:
+                for run, run_args in runs:
                     try:
-                        run(*call)
+                        run(*run_args)
                     except _Enough:
                         pass
                 samples += size
@@ -779,7 +949,7 @@ class PairedRuns:
                 h = block.register_forward_pre_hook(grab, with_kwargs=True)
                 try:
                     with inference(model):
-                        model(to_tensor(batch, model))
+                        call(model, batch)
                 except _Enough:
                     pass
                 finally:
@@ -836,7 +1006,7 @@ def _run_once(model: nn.Module, sample: np.ndarray, hooks: list) -> None:
     """One forward pass on the first sample, then remove ``hooks`` whatever happens."""
     try:
         with inference(model):
-            model(to_tensor(sample[:1], model))
+            call(model, first_rows(sample))
     finally:
         for h in hooks:
             h.remove()
