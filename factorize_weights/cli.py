@@ -465,10 +465,32 @@ def apply_run_file(parser, argv: list[str], args):
     return new
 
 
+class _Terminated(BaseException):
+    """SIGTERM, raised where the program is, so every temporary folder is removed on the way out."""
+
+
+def _on_sigterm(signum, frame):
+    raise _Terminated()
+
+
 def main(argv: list[str] | None = None) -> int:
+    import signal
+
     parser = build_parser()
     argv = list(sys.argv[1:] if argv is None else argv)
     args = parser.parse_args(argv)
+    try:
+        previous = signal.signal(signal.SIGTERM, _on_sigterm)
+    except ValueError:  # not the main thread (an embedding application): leave signals alone
+        previous = None
+    try:
+        return _run(args, parser, argv)
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
+
+
+def _run(args, parser, argv) -> int:
     try:
         if getattr(args, "config", None):
             args = apply_run_file(parser, argv, args)
@@ -486,6 +508,9 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print(f"{PROG}: interrupted", file=sys.stderr)
         return 130
+    except _Terminated:
+        print(f"{PROG}: terminated (SIGTERM); no partial output is left", file=sys.stderr)
+        return 143
     except BrokenPipeError:  # stdout closed early (| head): not an error of ours
         import os
 

@@ -89,9 +89,11 @@ def write_model(model, folder: Path) -> list[str]:
 
 
 @contextlib.contextmanager
-def atomic_folder(out: Path):
+def atomic_folder(out: Path, force: bool = True):
     """Yield a fresh temporary folder next to ``out``; on success it replaces ``out`` in one rename
-    (with the permissions the umask asks for), on any error it is removed and ``out`` untouched."""
+    (with the permissions the umask asks for), on any error it is removed and ``out`` untouched.
+    Without ``force``, a non-empty ``out`` that appeared while the run worked (another run with
+    the same ``--out``) is refused at the moment of the rename, not replaced."""
     tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.tmp-", dir=out.resolve().parent))
     umask = os.umask(0)
     os.umask(umask)
@@ -100,6 +102,9 @@ def atomic_folder(out: Path):
         os.chmod(tmp, 0o777 & ~umask)  # mkdtemp makes a private folder
         for path in tmp.rglob("*"):
             os.chmod(path, (0o777 if path.is_dir() else 0o666) & ~umask)
+        if not force and out.is_dir() and any(out.iterdir()):
+            raise InputError(f"--out {out}: another run wrote this folder while this one worked; not replaced "
+                             "(give --force to replace it)")
         if out.exists():
             trash = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=out.resolve().parent))
             os.replace(out, trash / "old")
@@ -133,9 +138,23 @@ def write_run(out, model, records, plan: Plan, report: dict, config: CompressCon
     in under their given names) into ``out`` atomically; return the folder."""
     out = Path(out)
     check_out_dir(out, force)
-    with atomic_folder(out) as tmp:
-        write_run_files(tmp, model, records, plan, report, config, extra=extra, spectra=spectra)
+    try:
+        with atomic_folder(out, force) as tmp:
+            write_run_files(tmp, model, records, plan, report, config, extra=extra, spectra=spectra)
+    except OSError as exc:
+        raise _disk_error(out, exc) or exc
     return out
+
+
+def _disk_error(out: Path, exc: OSError) -> InputError | None:
+    """A full disk or quota is the environment, not a bug: one line naming --out and the space."""
+    import errno
+
+    if exc.errno not in (errno.ENOSPC, getattr(errno, "EDQUOT", -1)):
+        return None
+    free = shutil.disk_usage(out.resolve().parent).free
+    return InputError(f"--out {out}: no space left on the device while writing the results ({free / 2**20:.1f} MiB "
+                      "free; nothing was left behind)")
 
 
 def read_plan(folder: str | Path) -> dict:

@@ -110,7 +110,7 @@ def _write_sweep(out: Path, doc: dict, results, force: bool) -> None:
     from . import store
     from .report_html import render_sweep_html
 
-    with store.atomic_folder(out) as tmp:
+    with store.atomic_folder(out, force) as tmp:
         (tmp / "sweep.json").write_text(json.dumps(doc, indent=2, allow_nan=False) + "\n", encoding="utf-8")
         (tmp / "sweep.csv").write_text(render_csv(doc), encoding="utf-8")
         (tmp / "sweep.md").write_text(render_markdown(doc), encoding="utf-8")

@@ -220,3 +220,68 @@ def test_damaged_plan_and_a_model_without_layers_are_named(tmp_path, capsys):
     (tmp_path / "flat.py").write_text("from torch import nn\ndef build():\n    return nn.Sequential(nn.ReLU())\n")
     code, _, err = run_cli(capsys, "compress", "--model", f"{tmp_path}/flat.py:build", "--budget", "params=0.5")
     _one_line_exit_2(code, err, "flat.py:build", "nothing to factorize")
+
+
+def test_a_factory_that_exits_is_refused(tmp_path, capsys):
+    (tmp_path / "quits.py").write_text("import sys\ndef build():\n    sys.exit(0)\n")
+    code, _, err = run_cli(capsys, "inspect", "--model", f"{tmp_path}/quits.py:build")
+    _one_line_exit_2(code, err, "quits.py:build", "sys.exit(0)")
+
+
+def _leftovers(folder):
+    return sorted(p.name for p in folder.iterdir() if p.name.startswith("."))
+
+
+def test_faults_while_writing_leave_nothing_behind(tmp_path, capsys, monkeypatch):
+    import errno
+
+    from factorize_weights import cli, store
+
+    real = store.write_model
+    out = tmp_path / "out"
+    base = ["compress", "--demo", "--budget", "params=0.5", "--latency-repeats", "0", "-q", "--out", out]
+
+    def disk_full(model, folder):
+        real(model, folder)
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    monkeypatch.setattr(store, "write_model", disk_full)
+    code, _, err = run_cli(capsys, *base)
+    _one_line_exit_2(code, err, f"--out {out}", "no space left", "MiB free")
+    assert not out.exists() and _leftovers(tmp_path) == []
+
+    def terminated(model, folder):  # SIGTERM arriving in the middle of the writing
+        real(model, folder)
+        raise cli._Terminated()
+
+    monkeypatch.setattr(store, "write_model", terminated)
+    code, _, err = run_cli(capsys, *base)
+    assert code == 143 and err.strip() == "factorize-weights: terminated (SIGTERM); no partial output is left"
+    assert not out.exists() and _leftovers(tmp_path) == []
+
+    def racing(model, folder):  # another run with the same --out finishes first
+        real(model, folder)
+        out.mkdir()
+        (out / "report.json").write_text("{}")
+
+    monkeypatch.setattr(store, "write_model", racing)
+    code, _, err = run_cli(capsys, *base)
+    _one_line_exit_2(code, err, f"--out {out}", "another run wrote this folder")
+    assert sorted(p.name for p in out.iterdir()) == ["report.json"] and _leftovers(tmp_path) == []
+
+
+def test_sigterm_ends_a_real_run_with_one_line(tmp_path):
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    proc = subprocess.Popen([sys.executable, "-m", "factorize_weights", "compress", "--demo", "--budget", "params=0.5",
+                             "--latency-repeats", "100000", "--out", str(tmp_path / "out")],
+                            stderr=subprocess.PIPE, stdout=subprocess.PIPE, text=True)
+    time.sleep(6)  # imports, compression, then the long latency loop
+    proc.send_signal(signal.SIGTERM)
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode == 143 and err.strip().splitlines() == [
+        "factorize-weights: terminated (SIGTERM); no partial output is left"], err
+    assert not (tmp_path / "out").exists() and _leftovers(tmp_path) == []

@@ -92,6 +92,8 @@ def build_model(spec: str, weights: str | Path | None = None, *, weights_key: st
     factory = load_factory(spec)
     try:
         model = factory()
+    except SystemExit as exc:  # a factory must return a model, not end the process (a pipeline would read 0)
+        raise InputError(f"--model {spec!r}: the factory called sys.exit({exc.code!r}) instead of returning a model") from exc
     except Exception as exc:
         raise InputError(f"--model {spec!r}: the factory raised {_describe(exc)}") from exc
     if not isinstance(model, nn.Module):
