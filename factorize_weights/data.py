@@ -32,7 +32,7 @@ from typing import Iterator
 
 import numpy as np
 
-from .errors import InputError
+from .errors import InputError, readable_file
 
 
 @dataclass
@@ -102,9 +102,56 @@ def load_heldout(spec: str | Path, *, flag: str = "--heldout") -> HeldOut:
     raise InputError(f"{flag} {text}: no such file (expected an .npz file or FILE.py:FUNCTION)")
 
 
+#: The most an .npz may inflate to in memory, as a share of the memory available when it is read.
+NPZ_MEMORY_SHARE = 0.5
+
+
+def _available_memory() -> int:
+    import os
+
+    try:
+        return os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
+    except (ValueError, OSError, AttributeError):  # not on Linux: no limit from here
+        return 1 << 62
+
+
+def npz_sizes(path: Path, flag: str) -> dict[str, tuple[tuple, np.dtype]]:
+    """Shape and dtype of every array of an .npz from the .npy headers in the zip, reading no data;
+    refuses what is not an .npz, holds pickled (object) arrays, or would not fit in memory."""
+    import zipfile
+
+    if not zipfile.is_zipfile(path):
+        raise InputError(f"{flag} {path}: not an .npz file (it is not a zip archive of .npy arrays; "
+                         "write it with numpy.savez)")
+    out, total = {}, 0
+    try:
+        with zipfile.ZipFile(path) as zf:
+            for info in zf.infolist():
+                if not info.filename.endswith(".npy"):
+                    continue
+                with zf.open(info) as fh:
+                    version = np.lib.format.read_magic(fh)
+                    reader = (np.lib.format.read_array_header_1_0 if version == (1, 0)
+                              else np.lib.format.read_array_header_2_0)
+                    shape, _, dtype = reader(fh)
+                if dtype.hasobject:
+                    raise InputError(f"{flag} {path}: array {info.filename[:-4]!r} holds Python objects "
+                                     "(pickled data is never loaded); store numbers")
+                out[info.filename[:-4]] = (tuple(shape), dtype)
+                total += int(np.prod(shape, dtype=np.int64)) * dtype.itemsize
+    except InputError:
+        raise
+    except Exception as exc:
+        raise InputError(f"{flag} {path}: not a readable .npz file ({type(exc).__name__}: {exc})") from exc
+    if total > NPZ_MEMORY_SHARE * _available_memory():
+        raise InputError(f"{flag} {path}: its arrays take {total / 2**30:.2f} GiB once inflated, more than half the "
+                         f"{_available_memory() / 2**30:.2f} GiB of memory available; give fewer samples")
+    return out
+
+
 def _load_npz(path: Path, flag: str) -> HeldOut:
-    if not path.is_file():
-        raise InputError(f"{flag} {path}: file does not exist")
+    path = readable_file(path, flag, ".npz file")
+    npz_sizes(path, flag)  # headers first: nothing is inflated that cannot fit
     try:
         with np.load(path, allow_pickle=False) as data:
             arrays = {k: data[k] for k in data.files}

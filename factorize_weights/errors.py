@@ -12,3 +12,21 @@ class InputError(ValueError):
 
     The message is one line that names the offending file, flag or layer and what is wrong.
     """
+
+
+def readable_file(path, flag: str, what: str = "file"):
+    """``path`` as a Path if it is a readable regular file; else an :class:`InputError` that says
+    which of the usual mistakes it is (missing, a folder, unreadable)."""
+    import os
+    from pathlib import Path
+
+    path = Path(path)
+    if path.is_dir():
+        raise InputError(f"{flag} {path}: is a folder, not a {what}")
+    if not path.exists():
+        raise InputError(f"{flag} {path}: {what} does not exist")
+    if not path.is_file():
+        raise InputError(f"{flag} {path}: not a regular {what}")
+    if not os.access(path, os.R_OK):
+        raise InputError(f"{flag} {path}: cannot be read (permission denied)")
+    return path

@@ -159,7 +159,7 @@ def _bad(user, kind):
         return base + ["--weights", user / "bad.safetensors"], "cannot be read as .safetensors"
     if kind == "pickled object":
         torch.save({"w": object()}, str(user / "evil.pt"))
-        return base + ["--weights", user / "evil.pt"], "cannot be read as .pt"
+        return base + ["--weights", user / "evil.pt"], "never unpickles"
     if kind == "mismatched tensors":
         save_file({"0.weight": torch.zeros(3, 3)}, str(user / "other.safetensors"))
         return base + ["--weights", user / "other.safetensors"], "tensors do not match the model"

@@ -31,7 +31,7 @@ def test_demo_splits_are_real_uci_digits_and_disjoint():
 
 def test_npz_errors_name_the_file_and_the_problem(tmp_path):
     (tmp_path / "junk.npz").write_bytes(b"not a zip")
-    with pytest.raises(InputError, match=r"junk.npz: not a readable .npz file"):
+    with pytest.raises(InputError, match=r"junk.npz: not an .npz file \(it is not a zip archive"):
         fw.load_heldout(tmp_path / "junk.npz")
     np.savez(tmp_path / "empty.npz", inputs=np.zeros((0, 3)))
     with pytest.raises(InputError, match="'inputs' is empty"):

@@ -25,7 +25,7 @@ from typing import Any, Iterator, Sequence
 
 import numpy as np
 
-from ..errors import InputError
+from ..errors import InputError, readable_file
 from ..records import LayerRecord, max_saving_rank
 
 FORMAT = "onnx"
@@ -78,9 +78,7 @@ def load(path: str | Path) -> OnnxModel:
     import onnx
     from onnx.external_data_helper import uses_external_data
 
-    path = Path(path)
-    if not path.is_file():
-        raise InputError(f"--model {path}: file does not exist")
+    path = readable_file(path, "--model", "ONNX file")
     try:
         proto = onnx.load(str(path), load_external_data=False)
     except Exception as exc:

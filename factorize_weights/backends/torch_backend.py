@@ -21,7 +21,7 @@ import numpy as np
 import torch
 from torch import nn
 
-from ..errors import InputError
+from ..errors import InputError, readable_file
 from ..records import LayerRecord, max_saving_rank
 
 FORMAT = "torch"
@@ -65,9 +65,7 @@ def load_factory(spec: str) -> Callable[[], nn.Module]:
             "(a callable that returns the nn.Module)"
         )
     if target.endswith(".py") or "/" in target or "\\" in target:
-        path = Path(target)
-        if not path.is_file():
-            raise InputError(f"--model {spec!r}: file {target} does not exist")
+        path = readable_file(target, f"--model {spec!r}:", "Python file")
         name = f"_factorize_weights_user_{abs(hash(str(path.resolve())))}"
         try:
             module_spec = importlib.util.spec_from_file_location(name, path)
@@ -160,9 +158,7 @@ def read_checkpoint(path: str | Path, key: str | None = None):
     names it, else the first of :data:`NESTED_KEYS` that holds tensors is taken, with a notice."""
     import warnings
 
-    path = Path(path)
-    if not path.is_file():
-        raise InputError(f"--weights {path}: file does not exist")
+    path = readable_file(path, "--weights", "checkpoint file")
     if path.name.lower().endswith(".index.json"):
         return ShardedCheckpoint(path)
     suffix = path.suffix.lower()
@@ -180,6 +176,9 @@ def read_checkpoint(path: str | Path, key: str | None = None):
     except InputError:
         raise
     except Exception as exc:
+        if suffix != ".safetensors" and "weights_only" in str(exc):  # torch refused a pickled object
+            raise InputError(f"--weights {path}: holds pickled Python objects besides tensors, which this tool never "
+                             "unpickles; save the weights with safetensors or torch.save(model.state_dict())") from exc
         raise InputError(f"--weights {path}: cannot be read as {suffix} ({_describe(exc)})") from exc
     if not isinstance(state, dict):
         raise InputError(f"--weights {path}: holds a {type(state).__name__}, not a mapping of tensor names to tensors")
