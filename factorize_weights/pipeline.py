@@ -247,6 +247,8 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
     metric_name = check_heldout(model, heldout, config.metric, config.output) if heldout is not None else None
     if any(b.kind == "flops" for b in parsed) and heldout is None:
         raise InputError("a flops budget needs --heldout (to measure layer output sizes)")
+    if calibration is not None:  # before anything runs on it
+        check_fits(model, calibration, "--calibration", config.output)
     size = config.batch_size
     sample = heldout if heldout is not None else calibration
     if sample is not None:  # one sample tells each layer's output positions (FLOPs) and memory
@@ -256,7 +258,6 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
     sequential = config.resolved_sequential(method)
     cal, order = None, [[r.name] for r in chosen]
     if calibration is not None:
-        check_fits(model, calibration, "--calibration", config.output)
         if sequential:
             order = backend.call_stages(model, chosen, calibration.inputs)
         t1 = time.perf_counter()

@@ -524,6 +524,9 @@ def select_output(out, name: str | None = None) -> torch.Tensor:
     or a Hugging Face-style output object gives the entry ``name``, else its first tensor; a tuple
     or list gives element ``int(name)``, else its first tensor."""
     if isinstance(out, torch.Tensor):
+        if name is not None:
+            raise InputError(f"--output {name!r}: the model returns one tensor, with no entries to choose from "
+                             "(leave --output out)")
         return out
     if isinstance(out, dict) or (hasattr(out, "keys") and hasattr(out, "__getitem__")):
         keys = list(out.keys())

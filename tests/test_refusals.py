@@ -1,0 +1,243 @@
+"""The bad-input and fault contract (README "Exit codes"), table-driven: every case gets its exit
+code, exactly one line on stderr naming the flag or file, and nothing written next to --out.
+Signals, a full disk, a race on one --out and the factory that exits are in
+test_inputs_and_checkpoints.py (they need monkeypatching or a subprocess)."""
+
+from __future__ import annotations
+
+import os
+
+import numpy as np
+import pytest
+import torch
+from safetensors.torch import save_file, save_model
+from torch import nn
+
+from conftest import run_cli
+from factorize_weights import demo
+
+USER_MODEL = """\
+import torch
+from torch import nn
+
+def build():
+    torch.manual_seed(0)
+    return nn.Sequential(nn.Linear(20, 64), nn.ReLU(), nn.Linear(64, 64), nn.ReLU(), nn.Linear(64, 5))
+
+def raises():
+    raise RuntimeError("no GPU here")
+
+def not_a_module():
+    return 42
+
+def quits():
+    raise SystemExit(0)
+
+def flat():
+    return nn.Sequential(nn.ReLU())
+
+def empty_batches():
+    return iter(())
+
+def bad_batches():
+    raise ValueError("the database is down")
+"""
+
+
+@pytest.fixture(scope="module")
+def w(tmp_path_factory):
+    """The workspace: a user model with checkpoints and data files, made once."""
+    d = tmp_path_factory.mktemp("refusals")
+    (d / "net.py").write_text(USER_MODEL)
+    (d / "broken.py").write_text("def build(:\n")
+    torch.manual_seed(0)
+    model = nn.Sequential(nn.Linear(20, 64), nn.ReLU(), nn.Linear(64, 64), nn.ReLU(), nn.Linear(64, 5))
+    save_model(model, str(d / "net.safetensors"))
+    state = {k: v.contiguous() for k, v in model.state_dict().items()}
+    torch.save(state, str(d / "net.pt"))
+    torch.save({"w": object()}, str(d / "legacy.pt"), _use_new_zipfile_serialization=False)
+    torch.save({"w": object()}, str(d / "evil.pt"))
+    torch.save({"epoch": 3}, str(d / "notensors.pt"))
+    save_file({k: v.to(torch.int8) for k, v in state.items()}, str(d / "int8.safetensors"))
+    save_file({"0.weight": torch.zeros(3, 3)}, str(d / "other.safetensors"))
+    save_file({**state, "0.weight": torch.zeros(64, 21)}, str(d / "shape.safetensors"))
+    (d / "garbage.safetensors").write_bytes(b"\x00\x01garbage" * 10)
+    (d / "net.ckpt").write_bytes(b"x")
+    (d / "index.safetensors.index.json").write_text('{"weight_map": {"0.weight": "gone.safetensors"}}')
+    (d / "junk.safetensors.index.json").write_text("not json")
+    (d / "folder.safetensors").mkdir()
+    rng = np.random.default_rng(0)
+    np.savez(d / "held.npz", inputs=rng.standard_normal((40, 20)).astype(np.float32), labels=rng.integers(0, 5, 40))
+    np.savez(d / "cal.npz", inputs=rng.standard_normal((40, 20)).astype(np.float32))
+    np.savez(d / "nolabels.npz", inputs=rng.standard_normal((40, 20)).astype(np.float32))
+    np.savez(d / "wrongshape.npz", inputs=np.zeros((8, 7), np.float32))
+    np.savez(d / "emptyin.npz", inputs=np.zeros((0, 20), np.float32))
+    np.savez(d / "nan.npz", inputs=np.full((4, 20), np.nan, np.float32))
+    np.savez(d / "rows.npz", inputs=np.zeros((8, 20), np.float32), labels=np.zeros(5, int))
+    np.savez(d / "named.npz", x=np.zeros((8, 20), np.float32))
+    np.save(d / "objects.npy", np.array([{"a": 1}], dtype=object), allow_pickle=True)
+    import zipfile
+
+    with zipfile.ZipFile(d / "objects.npz", "w") as zf:
+        zf.write(d / "objects.npy", "inputs.npy")
+    (d / "csv.npz").write_text("1,2,3\n4,5,6\n")
+    (d / "heldfolder.npz").mkdir()
+    (d / "run.toml").write_text('budget = "params=0.5"\n')
+    (d / "bad.toml").write_text("budget = \n")
+    (d / "unknown.toml").write_text('budgett = "params=0.5"\n')
+    (d / "typed.toml").write_text("budget = 5\n")
+    (d / "afile").write_text("x")
+    (d / "full").mkdir()
+    (d / "full" / "keep.txt").write_text("x")
+    (d / "garbage.onnx").write_bytes(b"\x08\x01garbage")
+    (d / "empty.onnx").write_bytes(b"")
+    import onnx
+    from onnx import TensorProto, helper
+
+    relu = helper.make_graph([helper.make_node("Relu", ["x"], ["y"])], "g",
+                             [helper.make_tensor_value_info("x", TensorProto.FLOAT, [None, 4])],
+                             [helper.make_tensor_value_info("y", TensorProto.FLOAT, [None, 4])])
+    onnx.save(helper.make_model(relu, opset_imports=[helper.make_opsetid("", 17)]), str(d / "relu.onnx"))
+    return d
+
+
+def compress(w, *extra, weights="net.safetensors"):
+    head = ["compress", "--model", f"{w}/net.py:build", "--budget", "params=0.5", "--out", w / "out"]
+    return head + (["--weights", w / weights] if weights else []) + list(extra)
+
+
+def swap(argv, flag, value):
+    argv = list(argv)
+    argv[argv.index(flag) + 1] = value
+    return argv
+
+
+def without(argv, flag):
+    argv = list(argv)
+    i = argv.index(flag)
+    return argv[:i] + argv[i + 2:]
+
+
+# (id, argv builder, exit code, words the one line must hold)
+CASES = [
+    # checkpoints
+    ("weights missing", lambda w: compress(w, weights="absent.safetensors"), 2, ["--weights", "does not exist"]),
+    ("weights is a folder", lambda w: compress(w, weights="folder.safetensors"), 2, ["--weights", "is a folder"]),
+    ("weights corrupt", lambda w: compress(w, weights="garbage.safetensors"), 2, ["--weights", "cannot be read"]),
+    ("weights pickled object", lambda w: compress(w, weights="evil.pt"), 2, ["evil.pt", "never unpickles"]),
+    ("weights legacy pickle", lambda w: compress(w, weights="legacy.pt"), 2, ["legacy.pt", "never unpickles"]),
+    ("weights names differ", lambda w: compress(w, weights="other.safetensors"), 2, ["--weights", "do not match"]),
+    ("weights shapes differ", lambda w: compress(w, weights="shape.safetensors"), 2, ["other shapes", "0.weight"]),
+    ("weights int8 for float", lambda w: compress(w, weights="int8.safetensors"), 2, ["is int8", "float32"]),
+    ("weights no tensors", lambda w: compress(w, weights="notensors.pt"), 2, ["--weights", "none of them holds"]),
+    ("weights-key absent", lambda w: compress(w, "--weights-key", "ema", weights="net.pt"), 2, ["--weights-key 'ema'"]),
+    ("weights-key alone", lambda w: compress(w, "--weights-key", "ema", weights=None), 2, ["--weights-key"]),
+    ("weights unknown suffix", lambda w: compress(w, weights="net.ckpt"), 2, ["--weights", ".safetensors"]),
+    ("weights shard missing", lambda w: compress(w, weights="index.safetensors.index.json"), 2, ["shard file"]),
+    ("weights index not json", lambda w: compress(w, weights="junk.safetensors.index.json"), 2, ["weight_map"]),
+    ("weights with ONNX", lambda w: ["compress", demo.ONNX, "--weights", w / "net.pt", "--budget", "params=0.5",
+                                     "--out", w / "out"], 2, ["--weights", "ONNX"]),
+    # model specs
+    ("no model", lambda w: ["compress", "--budget", "params=0.5", "--out", w / "out"], 2, ["no model given"]),
+    ("spec not a file", lambda w: swap(compress(w), "--model", "nothing_here"), 2, ["--model 'nothing_here'"]),
+    ("spec file missing", lambda w: swap(compress(w), "--model", f"{w}/absent.py:build"), 2, ["absent.py", "does not exist"]),
+    ("spec factory missing", lambda w: swap(compress(w), "--model", f"{w}/net.py:nothere"), 2, ["no callable named 'nothere'"]),
+    ("spec factory raises", lambda w: swap(compress(w, weights=None), "--model", f"{w}/net.py:raises"), 2, ["raised RuntimeError"]),
+    ("spec returns non-module", lambda w: swap(compress(w, weights=None), "--model", f"{w}/net.py:not_a_module"), 2,
+     ["returned int"]),
+    ("spec syntax error", lambda w: swap(compress(w, weights=None), "--model", f"{w}/broken.py:build"), 2,
+     ["broken.py", "SyntaxError"]),
+    ("spec module missing", lambda w: swap(compress(w, weights=None), "--model", "no_such_pkg_xyz:build"), 2,
+     ["cannot import no_such_pkg_xyz"]),
+    ("model given twice", lambda w: ["compress", demo.ONNX, "--model", demo.ONNX, "--budget", "params=0.5"], 2,
+     ["give the model once"]),
+    ("demo with weights", lambda w: ["compress", "--demo", "--weights", w / "net.pt", "--budget", "params=0.5"], 2,
+     ["--demo cannot be combined"]),
+    ("nothing to factorize", lambda w: swap(compress(w, weights=None), "--model", f"{w}/net.py:flat"), 2,
+     ["net.py:flat", "nothing to factorize"]),
+    # ONNX files
+    ("onnx garbage", lambda w: ["compress", w / "garbage.onnx", "--budget", "params=0.5", "--out", w / "out"], 2,
+     ["garbage.onnx", "not"]),
+    ("onnx empty", lambda w: ["compress", w / "empty.onnx", "--budget", "params=0.5", "--out", w / "out"], 2,
+     ["empty.onnx"]),
+    ("onnx only unsupported ops", lambda w: ["compress", w / "relu.onnx", "--budget", "params=0.5", "--out", w / "out"],
+     2, ["relu.onnx", "nothing to factorize", "no linear or convolution layers"]),
+    ("onnx data wrong shape", lambda w: ["compress", demo.ONNX, "--budget", "params=0.5", "--heldout",
+                                         w / "wrongshape.npz", "--out", w / "out"], 2, ["--heldout", "wrongshape.npz"]),
+    ("onnx recover", lambda w: ["compress", "--demo", "onnx", "--budget", "params=0.5", "--calibration",
+                                demo.CALIBRATION, "--recover", "5", "--out", w / "out"], 2, ["no trainable factors"]),
+    ("onnx export-onnx", lambda w: ["compress", "--demo", "onnx", "--budget", "params=0.5", "--export-onnx",
+                                    "--out", w / "out"], 2, ["--export-onnx", "ONNX already"]),
+    # data files
+    ("heldout missing", lambda w: compress(w, "--heldout", w / "absent.npz"), 2, ["--heldout", "does not exist"]),
+    ("heldout folder", lambda w: compress(w, "--heldout", w / "heldfolder.npz"), 2, ["--heldout", "is a folder"]),
+    ("heldout not zip", lambda w: compress(w, "--heldout", w / "csv.npz"), 2, ["csv.npz", "not an .npz file"]),
+    ("heldout objects", lambda w: compress(w, "--heldout", w / "objects.npz"), 2, ["objects.npz", "Python objects"]),
+    ("heldout empty", lambda w: compress(w, "--heldout", w / "emptyin.npz"), 2, ["'inputs' is empty"]),
+    ("heldout nan", lambda w: compress(w, "--heldout", w / "nan.npz"), 2, ["nan.npz", "NaN or Inf"]),
+    ("heldout label rows", lambda w: compress(w, "--heldout", w / "rows.npz"), 2, ["'labels' has 5 rows"]),
+    ("heldout wrong shape", lambda w: compress(w, "--heldout", w / "wrongshape.npz"), 2, ["--heldout", "do not fit"]),
+    ("heldout names", lambda w: compress(w, "--heldout", w / "named.npz"), 2, ["named.npz", "'x' is not a parameter"]),
+    ("heldout spec raises", lambda w: compress(w, "--heldout", f"{w}/net.py:bad_batches"), 2,
+     ["--heldout", "the database is down"]),
+    ("heldout spec empty", lambda w: compress(w, "--heldout", f"{w}/net.py:empty_batches"), 2, ["yielded no batches"]),
+    ("heldout spec missing", lambda w: compress(w, "--heldout", "no_such_pkg_xyz:batches"), 2, ["--heldout"]),
+    ("calibration is heldout", lambda w: compress(w, "--heldout", w / "held.npz", "--calibration", w / "held.npz"),
+     2, ["--calibration", "same data as --heldout"]),
+    ("calibration wrong shape", lambda w: compress(w, "--calibration", w / "wrongshape.npz"), 2,
+     ["--calibration", "do not fit"]),
+    # budgets and flags
+    ("budget empty", lambda w: swap(compress(w), "--budget", ""), 2, ["--budget ''"]),
+    ("budget twice", lambda w: compress(w, "--budget", "params=0.3"), 2, ["--budget", "given twice"]),
+    ("budget above one", lambda w: swap(compress(w), "--budget", "params=1.5"), 2, ["--budget 'params=1.5'"]),
+    ("budget zero", lambda w: swap(compress(w), "--budget", "params=0"), 2, ["--budget"]),
+    ("budget unknown kind", lambda w: swap(compress(w), "--budget", "speed=2"), 2, ["--budget"]),
+    ("budget infeasible", lambda w: swap(compress(w), "--budget", "params=0.001"), 2, ["--budget", "smallest possible"]),
+    ("flops without data", lambda w: swap(compress(w), "--budget", "flops=0.5"), 2, ["flops budget needs --heldout"]),
+    ("no budget", lambda w: without(compress(w), "--budget"), 2, ["--budget", "--max-drop"]),
+    ("max-drop negative", lambda w: without(compress(w, "--max-drop", "-1", "--heldout", w / "held.npz"), "--budget"),
+     2, ["--max-drop", ">= 0"]),
+    ("fail-over nan", lambda w: compress(w, "--fail-over", "nan", "--heldout", w / "held.npz"), 2, ["--fail-over"]),
+    ("whitened without data", lambda w: compress(w, "--method", "whitened"), 2, ["--method whitened needs --calibration"]),
+    ("sequential without data", lambda w: compress(w, "--sequential"), 2, ["--sequential needs --calibration"]),
+    ("rank multiple zero", lambda w: compress(w, "--rank-multiple", "0"), 2, ["--rank-multiple"]),
+    ("svd unknown", lambda w: compress(w, "--svd", "fast"), 2, ["--svd", "fast"]),
+    ("top1 without labels", lambda w: compress(w, "--heldout", w / "nolabels.npz", "--metric", "top1"), 2, ["top1"]),
+    ("output unknown", lambda w: compress(w, "--heldout", w / "held.npz", "--output", "logits"), 2, ["--output 'logits'"]),
+    ("int8 without data", lambda w: compress(w, "--int8"), 2, ["--int8 needs --heldout"]),
+    ("damping out of range", lambda w: compress(w, "--damping", "2"), 2, ["--damping"]),
+    # run files
+    ("config missing", lambda w: compress(w, "--config", w / "absent.toml"), 2, ["--config", "does not exist"]),
+    ("config not toml", lambda w: compress(w, "--config", w / "bad.toml"), 2, ["--config", "not valid TOML"]),
+    ("config unknown key", lambda w: compress(w, "--config", w / "unknown.toml"), 2, ["--config", "budgett"]),
+    ("config wrong type", lambda w: without(compress(w, "--config", w / "typed.toml"), "--budget"), 2,
+     ["--config", "budget"]),
+    # output folders
+    ("out not empty", lambda w: swap(compress(w), "--out", w / "full"), 2, ["--out", "not empty", "--force"]),
+    ("out is a file", lambda w: swap(compress(w), "--out", w / "afile"), 2, ["--out", "not a folder"]),
+    ("out empty path", lambda w: swap(compress(w), "--out", ""), 2, ["--out", "empty path"]),
+    ("out parent missing", lambda w: swap(compress(w), "--out", w / "no" / "such" / "out"), 2, ["--out", "does not exist"]),
+    ("out holds an input", lambda w: swap(compress(w, "--force"), "--out", w), 2, ["--out", "holds"]),
+    ("evaluate not a result", lambda w: ["evaluate", "--demo", "--factorized", w / "full"], 2, ["full", "no plan.json"]),
+]
+
+
+@pytest.mark.parametrize("case", CASES, ids=[c[0] for c in CASES])
+def test_refusal(case, w, capsys):
+    name, build, code_expected, words = case
+    argv = [str(a) for a in build(w)]
+    before = sorted(p.name for p in w.iterdir())
+    try:
+        code, _, err = run_cli(capsys, *argv)
+    except SystemExit as stop:  # argparse's own usage errors: exit 2 and one line too
+        code, err = stop.code, capsys.readouterr().err
+    lines = err.strip().splitlines()
+    assert code == (2 if code_expected is None else code_expected) and len(lines) == 1, err
+    for word in words:
+        assert word in lines[0], lines[0]
+    assert sorted(p.name for p in w.iterdir()) == before  # nothing written, nothing left behind
+
+
+def test_the_suite_is_broad():
+    assert len(CASES) >= 60
+    assert os.path.basename(__file__) == "test_refusals.py"
