@@ -145,6 +145,8 @@ CASES = [
     ("spec factory raises", lambda w: swap(compress(w, weights=None), "--model", f"{w}/net.py:raises"), 2, ["raised RuntimeError"]),
     ("spec returns non-module", lambda w: swap(compress(w, weights=None), "--model", f"{w}/net.py:not_a_module"), 2,
      ["returned int"]),
+    ("spec factory exits", lambda w: swap(compress(w, weights=None), "--model", f"{w}/net.py:quits"), 2,
+     ["net.py:quits", "sys.exit(0)"]),
     ("spec syntax error", lambda w: swap(compress(w, weights=None), "--model", f"{w}/broken.py:build"), 2,
      ["broken.py", "SyntaxError"]),
     ("spec module missing", lambda w: swap(compress(w, weights=None), "--model", "no_such_pkg_xyz:build"), 2,
@@ -236,6 +238,18 @@ def test_refusal(case, w, capsys):
     for word in words:
         assert word in lines[0], lines[0]
     assert sorted(p.name for p in w.iterdir()) == before  # nothing written, nothing left behind
+
+
+def test_an_npz_that_would_not_fit_is_refused_from_its_headers(w, monkeypatch, capsys):
+    from factorize_weights import data
+
+    loaded = []
+    monkeypatch.setattr(data, "_available_memory", lambda: 1000)  # bytes: the file holds 40 x 20 float32
+    monkeypatch.setattr(data.np, "load", lambda *a, **k: loaded.append(a) or pytest.fail("inflated"))
+    code, _, err = run_cli(capsys, *[str(a) for a in compress(w, "--heldout", w / "held.npz")])
+    lines = err.strip().splitlines()
+    assert code == 2 and len(lines) == 1 and "held.npz" in lines[0] and "once inflated" in lines[0]
+    assert loaded == []
 
 
 def test_the_suite_is_broad():
