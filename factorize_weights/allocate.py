@@ -40,7 +40,7 @@ class Plan:
         Total cost of the selected layers before and after.
     limit : float or None
         The most the budget allows (``None`` for per-layer budgets).
-    rank_multiple, min_rank : int
+    rank_step, min_rank : int
         Constraints the ranks were chosen under.
     """
 
@@ -50,7 +50,7 @@ class Plan:
     cost_before: float
     cost_after: float
     limit: float | None = None
-    rank_multiple: int = 1
+    rank_step: int = 1
     min_rank: int = 1
 
     @property
@@ -59,13 +59,13 @@ class Plan:
         return None if self.limit is None else self.limit - self.cost_after
 
 
-def allowed_ranks(m: int, n: int, *, rank_multiple: int = 1, min_rank: int = 1) -> np.ndarray:
-    """Ranks the allocator may choose for an m x n matrix: multiples of ``rank_multiple``, at
+def allowed_ranks(m: int, n: int, *, rank_step: int = 1, min_rank: int = 1) -> np.ndarray:
+    """Ranks the allocator may choose for an m x n matrix: multiples of ``rank_step``, at
     least ``min_rank``, strictly below the break-even rank (so every one saves)."""
     top = max_saving_rank(m, n)
-    start = max(min_rank, rank_multiple)
-    start = -(-start // rank_multiple) * rank_multiple  # round up to a multiple
-    return np.arange(start, top + 1, rank_multiple, dtype=int)
+    start = max(min_rank, rank_step)
+    start = -(-start // rank_step) * rank_step  # round up to a multiple
+    return np.arange(start, top + 1, rank_step, dtype=int)
 
 
 def _cost_weight(record: LayerRecord, units: str) -> int:
@@ -84,11 +84,11 @@ def _fixed_cost(record: LayerRecord, units: str) -> int:
     return record.bias_params if units == "params" else 0
 
 
-def _options(record, spectrum, units, rank_multiple, min_rank):
+def _options(record, spectrum, units, rank_step, min_rank):
     """(ranks, costs, errors) for one layer; the last option (rank -1) is "stay dense"."""
     m, n = record.matrix_shape
     w = _cost_weight(record, units)
-    ranks = allowed_ranks(m, n, rank_multiple=rank_multiple, min_rank=min_rank)
+    ranks = allowed_ranks(m, n, rank_step=rank_step, min_rank=min_rank)
     if spectrum is not None:
         ranks = ranks[ranks <= spectrum.max_rank]
         errors = 1.0 - np.asarray(spectrum.energy_fraction(ranks), dtype=float)
@@ -115,7 +115,7 @@ def budget_limit(records: list[LayerRecord], budget: Budget) -> tuple[float, flo
 
 
 def check_feasible(
-    records: list[LayerRecord], budget: Budget, *, rank_multiple: int = 1, min_rank: int = 1
+    records: list[LayerRecord], budget: Budget, *, rank_step: int = 1, min_rank: int = 1
 ) -> None:
     """Refuse a shared budget that even the smallest plan cannot meet, before any SVD runs."""
     if not budget.is_global:
@@ -126,12 +126,12 @@ def check_feasible(
     before, limit = budget_limit(records, budget)
     smallest = 0.0
     for r in records:
-        _, costs, _ = _options(r, None, units, rank_multiple, min_rank)
+        _, costs, _ = _options(r, None, units, rank_step, min_rank)
         smallest += costs[0] + _fixed_cost(r, units)
     if smallest > limit:
         raise InputError(
             f"--budget {budget.text}: allows {limit:,.0f} {units} but the smallest possible plan "
-            f"(rank {max(min_rank, rank_multiple)} in every layer that can be factorized) needs "
+            f"(rank {max(min_rank, rank_step)} in every layer that can be factorized) needs "
             f"{smallest:,.0f} of the selected layers' {before:,.0f}"
         )
 
@@ -141,7 +141,7 @@ def allocate(
     spectra: list[Spectrum],
     budget: Budget,
     *,
-    rank_multiple: int = 1,
+    rank_step: int = 1,
     min_rank: int = 1,
 ) -> Plan:
     """Choose a rank (or dense) for every record so the selected layers meet ``budget``.
@@ -150,7 +150,7 @@ def allocate(
     ----------
     records, spectra : lists of equal length, in the same order
     budget : Budget
-    rank_multiple : int
+    rank_step : int
         Every rank is a multiple of this (8 or 16 suits SIMD kernels; common practice).
     min_rank : int
         No layer is factorized below this rank.
@@ -161,15 +161,15 @@ def allocate(
     """
     if len(records) != len(spectra):
         raise ValueError(f"{len(records)} records but {len(spectra)} spectra")
-    if rank_multiple < 1 or min_rank < 1:
+    if rank_step < 1 or min_rank < 1:
         raise InputError(
-            f"--rank-multiple and --min-rank must be at least 1; got {rank_multiple}, {min_rank}"
+            f"--rank-step and --min-rank must be at least 1; got {rank_step}, {min_rank}"
         )
     units = units_of(budget)
-    menus = [_options(r, s, units, rank_multiple, min_rank) for r, s in zip(records, spectra)]
+    menus = [_options(r, s, units, rank_step, min_rank) for r, s in zip(records, spectra)]
     fixed = sum(_fixed_cost(r, units) for r in records)
     if budget.is_global:
-        check_feasible(records, budget, rank_multiple=rank_multiple, min_rank=min_rank)
+        check_feasible(records, budget, rank_step=rank_step, min_rank=min_rank)
         before, limit = budget_limit(records, budget)
         chosen = _plan(menus, limit - fixed)
     else:
@@ -181,7 +181,7 @@ def allocate(
         rank = int(opt_ranks[idx])
         ranks[record.name] = None if rank < 0 else rank
         cost_after += float(costs[idx])
-    return Plan(budget, ranks, units, float(before), cost_after, limit, rank_multiple, min_rank)
+    return Plan(budget, ranks, units, float(before), cost_after, limit, rank_step, min_rank)
 
 
 def _per_layer_choice(errors: np.ndarray, budget: Budget) -> int:

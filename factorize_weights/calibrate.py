@@ -45,7 +45,7 @@ class Calibration:
     moments : dict of layer name to Moments
         Their Gram matrices are released once each layer is decomposed (``rows`` stays).
     warnings : list of str
-    damping : float
+    ridge : float
         The relative ridge added to every moment before use.
     gram_bytes : int
         Memory the Gram matrices took while they were held.
@@ -54,7 +54,7 @@ class Calibration:
     data: HeldOut
     moments: dict[str, Moments]
     warnings: list[str] = field(default_factory=list)
-    damping: float = 0.0
+    ridge: float = 0.0
     gram_bytes: int = 0
     batch_size: int = 256
     passes: int = 1  # passes over the calibration set for the latest budget (moments + refit groups)
@@ -68,7 +68,7 @@ class Calibration:
             "gram_bytes": self.gram_bytes,
             "peak_rss_bytes": peak_rss(),
             "warnings": list(self.warnings),
-            "ridge": self.damping,
+            "ridge": self.ridge,
             "passes": self.passes,
             "batch_size": self.batch_size,
         }
@@ -112,7 +112,7 @@ def calibrate(model, records: list[LayerRecord], data: HeldOut, config: Compress
     chosen = [r for r in records if r.skip_reason is None]
     batch_size = batch_size or config.batch_size
     if not moments:
-        return Calibration(data, {}, [], config.damping, 0, batch_size, 0)
+        return Calibration(data, {}, [], config.ridge, 0, batch_size, 0)
     backend = backend_for(model)
     moments, _ = input_moments(backend, model, chosen, _batches(data, batch_size, config, "calibration"))
     warnings = []
@@ -124,11 +124,11 @@ def calibrate(model, records: list[LayerRecord], data: HeldOut, config: Compress
         if st.rows < n:
             warnings.append(
                 f"layer {record.name!r}: {st.rows} calibration rows for {n} input features; its input "
-                + (f"second moment is rank-deficient (a ridge of {config.damping:g} x its mean diagonal keeps it usable)"
-                   if config.damping > 0 else "second moment is rank-deficient and was only floored (--damping 0)")
+                + (f"second moment is rank-deficient (a ridge of {config.ridge:g} x its mean diagonal keeps it usable)"
+                   if config.ridge > 0 else "second moment is rank-deficient and was only floored (--ridge 0)")
             )
     gram_bytes = int(sum(st.nbytes for st in moments.values()))
-    return Calibration(data, moments, warnings, config.damping, gram_bytes, batch_size)
+    return Calibration(data, moments, warnings, config.ridge, gram_bytes, batch_size)
 
 
 def groups_in_order(stages: list[list[str]], records: dict[str, LayerRecord], groups: int,
@@ -183,14 +183,14 @@ def sequential_refit(model, records: list[LayerRecord], ranks: dict, cal: Calibr
         for name in group:
             st = acc.pop(name)
             # the same ridge on both moments: where the calibration data says nothing, M stays W
-            wh_new = whitening(ridge(st.gram, config.damping))
+            wh_new = whitening(ridge(st.gram, config.ridge))
             w = backend.weight_matrix(by_name[name])
-            product = regression_product(w, ridge(st.cross, config.damping, st.gram), wh_new)  # M S'
+            product = regression_product(w, ridge(st.cross, config.ridge, st.gram), wh_new)  # M S'
             del st
             dec = Whitened.decompose_product(name, product, wh_new, dtype=by_name[name].dtype)
             a, x = done[name] = dec.factors(ranks[name], config.split)
             errors[name] = weight_error(w, a, x)
-            fits[name] = {"method": wh_new.method, "damping": wh_new.damping}
+            fits[name] = {"method": wh_new.method, "ridge": config.ridge, "floor": wh_new.floor}
         working = backend.rewrite(working, records, done, in_place=True)
     cal.passes = (1 if cal.moments else 0) + len(groups)  # this budget's: the moments pass, then one per group
     return working, fits, errors

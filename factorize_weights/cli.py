@@ -83,13 +83,13 @@ def _plan_options(p: argparse.ArgumentParser, *, sweep: bool = False) -> None:
                    help="svd (weights only), whitened (calibrated on real inputs), columns (pivoted-QR columns); "
                         "auto: whitened with --calibration, else svd")
     g.add_argument("--split", choices=SPLITS, default=_DEFAULTS.split, help="how singular values are shared by the factors")
-    g.add_argument("--rank-multiple", type=int, default=_DEFAULTS.rank_multiple, metavar="N", help="round ranks to multiples of N (e.g. 8)")
+    g.add_argument("--rank-step", type=int, default=_DEFAULTS.rank_step, metavar="N", help="round ranks to multiples of N (e.g. 8)")
     g.add_argument("--min-rank", type=int, default=_DEFAULTS.min_rank, metavar="N", help="lowest rank of a factorized layer")
     g = p.add_argument_group("calibration (data-aware factors; never the held-out set)")
     g.add_argument("--calibration", metavar="DATA", help="calibration .npz (inputs[, labels]) or FILE.py:FUNCTION")
     g.add_argument("--allow-overlap", action="store_true", help="allow the same data for --calibration and --heldout")
-    g.add_argument("--damping", type=float, default=_DEFAULTS.damping, metavar="A",
-                   help=f"ridge added to the calibration moments, as a fraction of their mean diagonal (default {_DEFAULTS.damping})")
+    g.add_argument("--ridge", type=float, default=_DEFAULTS.ridge, metavar="A",
+                   help=f"ridge added to the calibration moments, as a fraction of their mean diagonal (default {_DEFAULTS.ridge})")
     g.add_argument("--sequential", action=argparse.BooleanOptionalAction, default=_DEFAULTS.sequential,
                    help="refit layers in forward order to the original outputs (reduced-rank regression); "
                         "on by default with whitened factors")
@@ -145,13 +145,13 @@ def build_parser() -> argparse.ArgumentParser:
     g = p.add_argument_group("plan")
     g.add_argument("--budget", metavar="KIND=VALUE", action=_Once,
                    help="params=F|N, flops=F|N, energy=F or error=F (one per run)")
-    g.add_argument("--max-drop", type=float, metavar="D",
+    g.add_argument("--keep-within", type=float, metavar="D",
                    help="instead of --budget: the smallest params budget whose held-out drop is at most D, in the "
                         "metric's units (percentage points for top1/top5/agreement, absolute for cosine and mse)")
     _plan_options(p)
     g = p.add_argument_group("gate")
     g.add_argument("--fail-over", type=float, metavar="D",
-                   help="write everything, then exit 3 when the held-out drop exceeds D (metric units as --max-drop)")
+                   help="write everything, then exit 3 when the held-out drop exceeds D (metric units as --keep-within)")
     p.set_defaults(func=cmd_compress)
 
     p = sub.add_parser("sweep", help="several budgets in one go, spectra and calibration computed once",
@@ -265,13 +265,13 @@ def cmd_inspect(args) -> int:
 
 def _plan_config(args, budget: str) -> CompressConfig:
     return _config(args, budget=budget, method=args.method, split=args.split,
-                   rank_multiple=args.rank_multiple, min_rank=args.min_rank, metric=args.metric, output=args.output,
+                   rank_step=args.rank_step, min_rank=args.min_rank, metric=args.metric, output=args.output,
                    batch_size=args.batch_size, error_samples=args.error_samples,
                    latency_batch=args.latency_batch, latency_threads=args.latency_threads,
                    latency_repeats=args.latency_repeats, latency_warmup=args.latency_warmup,
                    export_onnx=getattr(args, "export_onnx", False), int8=getattr(args, "int8", False),
                    sequential=args.sequential, sequential_groups=args.sequential_groups, recover=args.recover, recover_lr=args.recover_lr,
-                   allow_overlap=args.allow_overlap, damping=args.damping)
+                   allow_overlap=args.allow_overlap, ridge=args.ridge)
 
 
 def _calibration(args):
@@ -319,21 +319,21 @@ def cmd_compress(args) -> int:
 
     if args.budget is not None and not args.budget.strip():
         raise InputError("--budget '': empty; give KIND=VALUE, e.g. --budget params=0.5")
-    if (args.budget is None) == (args.max_drop is None):
-        raise InputError("give exactly one of --budget and --max-drop")
+    if (args.budget is None) == (args.keep_within is None):
+        raise InputError("give exactly one of --budget and --keep-within")
     import math
 
-    for flag, value in (("--max-drop", args.max_drop), ("--fail-over", args.fail_over)):
+    for flag, value in (("--keep-within", args.keep_within), ("--fail-over", args.fail_over)):
         if value is not None and not (math.isfinite(value) and value >= 0):
             raise InputError(f"{flag} must be a finite number >= 0 (in the metric's units); got {value}")
-    if (args.max_drop is not None or args.fail_over is not None) and not args.heldout and not args.demo:
-        raise InputError(f"{'--max-drop' if args.max_drop is not None else '--fail-over'} needs --heldout "
+    if (args.keep_within is not None or args.fail_over is not None) and not args.heldout and not args.demo:
+        raise InputError(f"{'--keep-within' if args.keep_within is not None else '--fail-over'} needs --heldout "
                          "(the drop is measured on it)")
     config = _plan_config(args, args.budget or "params=1")
     model, sources = _load_model(args)
     heldout, calibration = _heldout(args), _calibration(args)
     result = compress(model, config, heldout=heldout, out=args.out, force=args.force, sources=sources,
-                      calibration=calibration, max_drop=args.max_drop)
+                      calibration=calibration, keep_within=args.keep_within)
     for warning in (result.report.get("calibration") or {}).get("warnings", []):
         _warn(warning)
     _verbose(args, result.report)
@@ -345,7 +345,7 @@ def cmd_compress(args) -> int:
             print("skipped: " + "; ".join(f"{s['name']} ({s['reason']})" for s in result.report["skipped"]))
         if "search" in result.report:
             sr = result.report["search"]
-            print(f"search: {sr['chosen']} is the smallest budget within a drop of {sr['max_drop']} "
+            print(f"search: {sr['chosen']} is the smallest budget within a drop of {sr['keep_within']} "
                   f"{sr['unit']} ({sr['evaluations']} evaluations: "
                   + ", ".join(f"{t['budget']} {t['drop']:+.2f}" for t in sr["tried"]) + ")")
         print(summary_line(result.report))
@@ -427,7 +427,7 @@ def _run_file_value(path, key: str, value, action):
 
 def apply_run_file(parser, argv: list[str], args):
     """Re-parse with the TOML run file's values as defaults: flags on the command line win.
-    Keys are the long option names (``rank-multiple`` or ``rank_multiple``); unknown keys are
+    Keys are the long option names (``rank-step`` or ``rank_step``); unknown keys are
     refused by name."""
     try:
         import tomllib

@@ -17,7 +17,7 @@ METHODS = ("auto", "svd", "whitened", "columns")
 class CompressConfig:
     """Settings of one ``compress`` run (``inspect`` reads the spectrum fields only).
 
-    Every field has a CLI flag of the same name with dashes (``rank_multiple`` -> ``--rank-multiple``).
+    Every field has a CLI flag of the same name with dashes (``rank_step`` -> ``--rank-step``).
     """
 
     budget: str = "params=0.5"  # half the selected layers' parameters: a safe first try
@@ -27,7 +27,7 @@ class CompressConfig:
     oversampling: int = 10  # Halko et al.'s usual p; error within a few % of optimal
     power_iterations: int = 2  # q=2 brings slowly decaying spectra to ~1.00x optimal error
     split: str = "balanced"  # singular values shared by both factors (see factors.py)
-    rank_multiple: int = 1  # 8 or 16 suits SIMD kernels; 1 lets the allocator choose freely
+    rank_step: int = 1  # 8 or 16 suits SIMD kernels; 1 lets the allocator choose freely
     min_rank: int = 1  # lowest rank a factorized layer may get
     only: tuple[str, ...] = ()  # name globs of layers to consider (empty: all)
     skip: tuple[str, ...] = ()  # name globs of layers to leave dense
@@ -50,7 +50,7 @@ class CompressConfig:
     # ridge on the calibration moments, relative to their mean diagonal: 1% (common practice) kept
     # sequential refits from zeroing directions 180 calibration images never visit (measured:
     # demo logit error at params=0.3 0.022 -> 0.004)
-    damping: float = 0.01
+    ridge: float = 0.01
     allow_overlap: bool = False  # refuse the same file as calibration and held-out set unless set
     export_onnx: bool = False  # also write the factorized PyTorch model as model.onnx (checked)
     int8: bool = False  # also compare dynamic int8 quantization on top (ONNX, onnxruntime)
@@ -70,11 +70,11 @@ class CompressConfig:
                 raise InputError(f"--{name.replace('_', '-')} must be one of {', '.join(allowed)}; got {value!r}")
         if self.metric is not None and self.metric not in METRICS:
             raise InputError(f"--metric must be one of {', '.join(METRICS)}; got {self.metric!r}")
-        if not (isinstance(self.damping, (int, float)) and 0 <= self.damping < 1):
-            raise InputError(f"--damping must be in [0, 1); got {self.damping!r}")
+        if not (isinstance(self.ridge, (int, float)) and 0 <= self.ridge < 1):
+            raise InputError(f"--ridge must be in [0, 1); got {self.ridge!r}")
         if not (isinstance(self.recover_lr, (int, float)) and 0 < self.recover_lr < 1):
             raise InputError(f"--recover-lr must be in (0, 1); got {self.recover_lr!r}")
-        minimum = {"recover": 0, "sequential_groups": 1, "rank_multiple": 1, "min_rank": 1, "batch_size": 1, "oversampling": 0,
+        minimum = {"recover": 0, "sequential_groups": 1, "rank_step": 1, "min_rank": 1, "batch_size": 1, "oversampling": 0,
                    "power_iterations": 0, "error_samples": 0, "seed": 0, "latency_batch": 1,
                    "latency_threads": 1, "latency_warmup": 0, "latency_repeats": 0}
         for name, low in minimum.items():

@@ -144,8 +144,11 @@ class Whitened:
             raise ValueError(f"layer {name!r}: whitened factors need the calibration moments of its inputs")
         matrix = checked_matrix(name, matrix)
         if matrix.shape[0] <= matrix.shape[1]:
-            return self.decompose_left(name, matrix, ridge(moments, self.ridge), dtype=dtype)
-        return self.decompose_whitened(name, matrix, self.whitening(moments), dtype=dtype)
+            dec = self.decompose_left(name, matrix, ridge(moments, self.ridge), dtype=dtype)
+        else:
+            dec = self.decompose_whitened(name, matrix, self.whitening(moments), dtype=dtype)
+        dec.extra["whitening"]["ridge"] = self.ridge
+        return dec
 
     @staticmethod
     def decompose_left(name: str, matrix: np.ndarray, gram: np.ndarray, *, dtype: str = "float32") -> Decomposition:
@@ -165,7 +168,7 @@ class Whitened:
         right = (u[:, :top].T @ matrix) / safe[:, None]  # (t, n): diag(1/s) U^T W
         keep = _store_dtype(dtype)
         spectrum = Spectrum(name, (m, n), s, float(np.sum(vals)), "exact")
-        extra = {"whitening": {"method": "left-gram", "damping": 0.0, "clamped": 0}}
+        extra = {"whitening": {"method": "left-gram", "floor": 0.0, "clamped": 0}}
         return Decomposition(spectrum, np.ascontiguousarray(u[:, :top], dtype=keep), s[:top].copy(),
                              np.ascontiguousarray(right, dtype=keep), extra)
 
@@ -185,7 +188,7 @@ class Whitened:
         keep = _store_dtype(dtype)
         right = wh.right_inverse(vt[:top])  # (t, n): the split scales rows of V^T, so S^{-1} can come first
         spectrum = Spectrum(name, (m, n), s, total, "exact")
-        extra = {"whitening": {"method": wh.method, "damping": wh.damping, "clamped": wh.clamped}}
+        extra = {"whitening": {"method": wh.method, "floor": wh.floor, "clamped": wh.clamped}}
         return Decomposition(spectrum, np.ascontiguousarray(u[:, :top], dtype=keep), s[:top].copy(),
                              np.ascontiguousarray(right, dtype=keep), extra)
 
@@ -210,7 +213,7 @@ def make(name: str, config) -> PlainSvd | Whitened | Columns:
     if name == "svd":
         return PlainSvd(config.svd, config.seed, config.oversampling, config.power_iterations)
     if name == "whitened":
-        return Whitened(config.damping)
+        return Whitened(config.ridge)
     if name == "columns":
         return Columns()
     raise ValueError(f"unknown method {name!r}; expected one of {', '.join(METHODS)}")

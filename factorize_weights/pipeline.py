@@ -254,7 +254,7 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
     if sample is not None:  # one sample tells each layer's output positions (FLOPs) and memory
         size = batch_size_for(config, backend.measure_positions(model, records, sample.inputs))
     for budget in parsed:
-        check_feasible(chosen, budget, rank_multiple=config.rank_multiple, min_rank=config.min_rank)
+        check_feasible(chosen, budget, rank_step=config.rank_step, min_rank=config.min_rank)
     sequential = config.resolved_sequential(method)
     cal, order = None, [[r.name] for r in chosen]
     if calibration is not None:
@@ -279,7 +279,7 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
 def plan_budget(prep: Prepared, budget: str) -> Plan:
     chosen = prep.selected
     return allocate(chosen, [prep.decompositions[r.name].spectrum for r in chosen], parse_budget(budget),
-                    rank_multiple=prep.config.rank_multiple, min_rank=prep.config.min_rank)
+                    rank_step=prep.config.rank_step, min_rank=prep.config.min_rank)
 
 
 def plan_for(model, config: CompressConfig, heldout: HeldOut | None = None, calibration: HeldOut | None = None):
@@ -432,7 +432,7 @@ def compress(
     force: bool = False,
     sources: dict | None = None,
     calibration: HeldOut | None = None,
-    max_drop: float | None = None,
+    keep_within: float | None = None,
 ) -> CompressResult:
     """Plan, rewrite, evaluate, report and (with ``out``) save, in one call. The CLI's
     ``compress`` calls exactly this.
@@ -452,7 +452,7 @@ def compress(
     calibration : HeldOut, optional
         Inputs for calibrated (whitened) factors, sequential refits and recovery; must not be
         the held-out set unless ``config.allow_overlap``.
-    max_drop : float, optional
+    keep_within : float, optional
         Instead of ``config.budget``: the smallest params fraction whose held-out drop is at most
         this (in the metric's units), found by bisection on one preparation; the report's
         ``search`` entry lists every budget tried. Needs ``heldout``.
@@ -464,16 +464,16 @@ def compress(
         store.check_out_dir(out, force, input_paths(sources, heldout, calibration))
     check_outputs_requested(model, config, heldout, out)
     source = (sources or {}).get("model")
-    if max_drop is None:
+    if keep_within is None:
         prep = prepare(model, config, heldout, calibration, model_source=source)
         result = realize(prep, config.budget, sources=sources)
     else:
         from .sweep import search_budget  # sweep builds on this module
 
         if heldout is None:
-            raise InputError("--max-drop needs --heldout (the drop is measured on it)")
+            raise InputError("--keep-within needs --heldout (the drop is measured on it)")
         prep = prepare(model, config, heldout, calibration, budgets=["params=1"], model_source=source)
-        budget, search, _ = search_budget(prep, max_drop)
+        budget, search, _ = search_budget(prep, keep_within)
         prep.config = config = dataclasses.replace(config, budget=budget)
         result = realize(prep, budget, sources=sources)
         result.report["search"] = search

@@ -110,7 +110,7 @@ def build_report(
             "before": plan.cost_before,
             "under_by": plan.slack,
             "met": plan.limit is None or plan.cost_after <= plan.limit,
-            "rank_multiple": plan.rank_multiple,
+            "rank_step": plan.rank_step,
             "min_rank": plan.min_rank,
         }
     )
@@ -266,7 +266,7 @@ def render_markdown(report: dict) -> str:
         what += f", then {rec['steps_run']} recovery steps ({rec['loss']})"
     lines.append(
         f"Method `{report['method']}` ({what}; {report['factor_split']} split), ranks chosen globally "
-        f"under `{b['given']}`; rank multiple {b['rank_multiple']}, minimum rank {b['min_rank']}. "
+        f"under `{b['given']}`; rank step {b['rank_step']}, minimum rank {b['min_rank']}. "
         "Weight error is the relative Frobenius error of the layer matrix; output error is the relative "
         "error of the layer's output on held-out inputs."
     )

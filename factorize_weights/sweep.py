@@ -1,5 +1,5 @@
 """Several budgets in one go (``sweep``) and the smallest budget within an accuracy loss
-(``compress --max-drop``). Both prepare spectra and calibration statistics once and reuse them.
+(``compress --keep-within``). Both prepare spectra and calibration statistics once and reuse them.
 """
 
 from __future__ import annotations
@@ -152,19 +152,19 @@ def render_markdown(doc: dict) -> str:
     return "\n".join(lines) + "\n"
 
 
-def search_budget(prep: Prepared, max_drop: float, *, steps: int = 7) -> tuple[str, dict, object]:
-    """The smallest params fraction whose held-out drop is at most ``max_drop``, by bisection.
+def search_budget(prep: Prepared, keep_within: float, *, steps: int = 7) -> tuple[str, dict, object]:
+    """The smallest params fraction whose held-out drop is at most ``keep_within``, by bisection.
 
     Returns (budget, search record for the report, result at that budget or None when the answer
     is params=1, i.e. nothing can be factorized within the drop).
     """
     if prep.heldout is None:
-        raise InputError("--max-drop needs --heldout (the drop is measured on it)")
+        raise InputError("--keep-within needs --heldout (the drop is measured on it)")
     chosen = prep.selected
     lo = 1.0  # the smallest fraction on a coarse ladder that some plan can meet
     for f in (0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1.0):
         try:
-            check_feasible(chosen, parse_budget(f"params={f}"), rank_multiple=prep.config.rank_multiple,
+            check_feasible(chosen, parse_budget(f"params={f}"), rank_step=prep.config.rank_step,
                            min_rank=prep.config.min_rank)
             lo = f
             break
@@ -176,8 +176,8 @@ def search_budget(prep: Prepared, max_drop: float, *, steps: int = 7) -> tuple[s
         budget = f"params={f:.4f}".rstrip("0").rstrip(".")
         result = realize(prep, budget, latency=False, layer_errors=False)
         d = drop_of(result.metric)
-        tried.append({"budget": budget, "metric": result.metric.after, "drop": d, "within": d <= max_drop})
-        return d <= max_drop, budget, result
+        tried.append({"budget": budget, "metric": result.metric.after, "drop": d, "within": d <= keep_within})
+        return d <= keep_within, budget, result
 
     ok, budget, result = evaluate(lo)
     if ok:
@@ -193,6 +193,6 @@ def search_budget(prep: Prepared, max_drop: float, *, steps: int = 7) -> tuple[s
                 hi, best = mid, (budget, result)
             else:
                 lo = mid
-    record = {"max_drop": max_drop, "unit": POINT_UNITS[prep.metric_name], "evaluations": len(tried),
+    record = {"keep_within": keep_within, "unit": POINT_UNITS[prep.metric_name], "evaluations": len(tried),
               "tried": tried, "chosen": best[0] if best else "params=1"}
     return (best[0], record, best[1]) if best else ("params=1", record, None)

@@ -23,10 +23,10 @@ from scipy.linalg import solve_triangular
 
 from .spectra import Spectrum, flip_signs, gram_svd
 
-#: Relative eigenvalue floor of the damped fallback: eigenvalues below DAMPING x the largest are
+#: Relative eigenvalue floor of the fallback: eigenvalues below FLOOR x the largest are
 #: raised to it. Small enough not to change a well-conditioned problem, large enough that S^{-1}
 #: stays finite in float64 (machine epsilon 2.2e-16; its square root ~1.5e-8).
-DAMPING = 1e-8
+FLOOR = 1e-8
 
 #: Cholesky is trusted while min(diag L)^2 / max(diag L)^2 stays above this.
 CHOLESKY_MIN_RATIO = 1e-12
@@ -34,7 +34,7 @@ CHOLESKY_MIN_RATIO = 1e-12
 
 @dataclass
 class Whitening:
-    """A square root S of a Gram matrix G (S S^T = G, up to the recorded damping). S^{-1} is never
+    """A square root S of a Gram matrix G (S S^T = G, up to the recorded floor). S^{-1} is never
     formed: products with it are triangular solves (Cholesky) or a diagonal scaling of the
     eigenvectors (damped fallback), n^2 per row instead of a general n x n inverse.
 
@@ -44,7 +44,7 @@ class Whitening:
         Lower-triangular for ``"cholesky"``; ``Q diag(sqrt(lambda))`` for ``"eigh-damped"``.
     method : str
         ``"cholesky"`` or ``"eigh-damped"``.
-    damping : float
+    floor : float
         The eigenvalue floor that was applied (0.0 for Cholesky).
     clamped : int
         How many eigenvalues were raised to the floor (a dead input feature shows here).
@@ -52,7 +52,7 @@ class Whitening:
 
     s: np.ndarray
     method: str
-    damping: float = 0.0
+    floor: float = 0.0
     clamped: int = 0
     _root: np.ndarray | None = None  # eigh-damped: sqrt of the floored eigenvalues
 
@@ -76,7 +76,7 @@ class Whitening:
         return self.right_inverse(np.eye(self.s.shape[0]))
 
 
-def whitening(gram: np.ndarray, *, damping: float = DAMPING) -> Whitening:
+def whitening(gram: np.ndarray, *, floor: float = FLOOR) -> Whitening:
     """S with S S^T = G: Cholesky when G is well conditioned, else a damped eigendecomposition."""
     gram = np.asarray(gram, dtype=np.float64)
     n = gram.shape[0]
@@ -91,7 +91,7 @@ def whitening(gram: np.ndarray, *, damping: float = DAMPING) -> Whitening:
         pass
     vals, vecs = np.linalg.eigh(gram)
     top = max(float(vals.max()), 0.0)
-    floor = damping * top if top > 0 else 1.0
+    floor = floor * top if top > 0 else 1.0
     clamped = int(np.sum(vals < floor))
     vals = np.maximum(vals, floor)
     root = np.sqrt(vals)

@@ -55,9 +55,9 @@ def test_bad_budgets_are_refused_with_the_rule(text, message):
 
 def test_allowed_ranks_stay_below_break_even_and_follow_the_multiple():
     assert list(allowed_ranks(10, 10)) == [1, 2, 3, 4]  # break-even floor(100/20) = 5
-    assert list(allowed_ranks(512, 512, rank_multiple=64)) == [64, 128, 192]  # < 256
-    assert list(allowed_ranks(10, 256, rank_multiple=16)) == []  # break-even 9: no multiple of 16
-    assert list(allowed_ranks(64, 64, min_rank=20, rank_multiple=8)) == [24]  # 32 is break-even
+    assert list(allowed_ranks(512, 512, rank_step=64)) == [64, 128, 192]  # < 256
+    assert list(allowed_ranks(10, 256, rank_step=16)) == []  # break-even 9: no multiple of 16
+    assert list(allowed_ranks(64, 64, min_rank=20, rank_step=8)) == [24]  # 32 is break-even
 
 
 def test_global_allocation_prefers_the_compressible_layer():
@@ -91,7 +91,7 @@ def test_params_budget_is_never_exceeded_and_no_rank_reaches_break_even(shapes, 
         specs.append(s)
     budget = parse_budget(f"params={fraction}")
     try:
-        plan = allocate(recs, specs, budget, rank_multiple=multiple)
+        plan = allocate(recs, specs, budget, rank_step=multiple)
     except InputError as exc:
         assert "smallest possible plan" in str(exc)
         return
@@ -158,7 +158,7 @@ def test_gap_to_brute_force_is_no_worse_than_before_on_many_small_cases():
         budget = parse_budget(f"params={rng.uniform(0.1, 0.95):.3f}")
         multiple = int(rng.choice([1, 1, 2, 4]))
         try:
-            plan = allocate(recs, specs, budget, rank_multiple=multiple)
+            plan = allocate(recs, specs, budget, rank_step=multiple)
         except InputError:
             continue  # infeasible: refused up front (tested elsewhere)
         # oracle for the capacity: an independent recount of each layer's parameters
@@ -316,7 +316,7 @@ def test_a_hundred_bert_sized_layers_plan_in_seconds_within_budget():
     for text, multiple in (("params=0.5", 1), ("params=0.2", 1), ("params=0.3", 8), ("flops=0.3", 1)):
         budget = parse_budget(text)
         start = time.perf_counter()
-        plan = allocate(recs, specs, budget, rank_multiple=multiple)
+        plan = allocate(recs, specs, budget, rank_step=multiple)
         # oracle for speed: the brief's bound, generous so it is not a flaky timing test
         assert time.perf_counter() - start < 10.0
         # oracle for the capacity: an independent recount of each layer's cost
@@ -327,7 +327,7 @@ def test_a_hundred_bert_sized_layers_plan_in_seconds_within_budget():
         assert used == plan.cost_after <= plan.limit
         for r in recs:  # oracle for the menu: allowed_ranks
             k = plan.ranks[r.name]
-            assert k is None or k in allowed_ranks(*r.matrix_shape, rank_multiple=multiple)
+            assert k is None or k in allowed_ranks(*r.matrix_shape, rank_step=multiple)
         # oracle for quality: the Lagrangian lower bound (weak duality); the hull greedy alone ends
         # within one hull segment's gain of it
         units = "flops" if budget.kind == "flops" else "params"

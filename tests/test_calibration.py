@@ -37,7 +37,7 @@ def test_whitened_output_error_is_the_dropped_tail_and_beats_plain_svd(k):
     w = np.random.default_rng(k).standard_normal((30, 40))
     x = correlated_inputs(40, 500)
     wh = whitening(x @ x.T)
-    assert wh.method == "cholesky" and wh.damping == 0.0
+    assert wh.method == "cholesky" and wh.floor == 0.0
     a, f = whitened_factors(w, wh, k)
     loss = np.linalg.norm((w - a @ f) @ x)
     sigma = np.linalg.svd(w @ wh.s, compute_uv=False)  # numpy as the reference SVD
@@ -63,7 +63,7 @@ def test_singular_gram_with_a_dead_feature_gives_finite_factors_no_worse_than_sv
     x = correlated_inputs(24, 300)
     x[5] = 0.0  # a dead input feature: X X^T is singular
     wh = whitening(x @ x.T)
-    assert wh.method == "eigh-damped" and wh.clamped >= 1 and wh.damping > 0
+    assert wh.method == "eigh-damped" and wh.clamped >= 1 and wh.floor > 0
     for k in (2, 8, 15):
         a, f = whitened_factors(w, wh, k)
         assert np.all(np.isfinite(a)) and np.all(np.isfinite(f))

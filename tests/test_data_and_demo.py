@@ -115,8 +115,8 @@ def test_model_without_factorizable_layers_is_refused():
 
 
 def test_config_refuses_bad_values_and_unknown_keys():
-    with pytest.raises(InputError, match=r"--rank-multiple must be an integer in \[1, inf\); got 0"):
-        fw.CompressConfig(rank_multiple=0)
+    with pytest.raises(InputError, match=r"--rank-step must be an integer in \[1, inf\); got 0"):
+        fw.CompressConfig(rank_step=0)
     with pytest.raises(InputError, match="--svd must be one of exact, randomized, auto; got 'fast'"):
         fw.CompressConfig(svd="fast")
     with pytest.raises(InputError, match="unknown configuration key"):

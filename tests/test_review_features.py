@@ -73,9 +73,9 @@ def test_sweep_save_models_and_bad_budget_lists(tmp_path, capsys):
         assert code == 2 and message in err, err
 
 
-def test_max_drop_finds_a_budget_within_target(tmp_path, capsys):
+def test_keep_within_finds_a_budget_within_target(tmp_path, capsys):
     out = tmp_path / "run"
-    code, stdout, err = run(capsys, "compress", "--demo", "--max-drop", "0.5", "--out", out, "-q",
+    code, stdout, err = run(capsys, "compress", "--demo", "--keep-within", "0.5", "--out", out, "-q",
                             "--latency-repeats", "0", "--method", "svd")
     assert code == 0, err
     report = json.loads((out / "report.json").read_text())
@@ -91,12 +91,12 @@ def test_max_drop_finds_a_budget_within_target(tmp_path, capsys):
     assert "search: params=" in stdout
 
 
-def test_max_drop_needs_heldout_and_one_budget(capsys, tmp_path):
+def test_keep_within_needs_heldout_and_one_budget(capsys, tmp_path):
     (tmp_path / "m.py").write_text("from torch import nn\ndef build():\n    return nn.Sequential(nn.Linear(8, 8))\n")
-    code, _, err = run(capsys, "compress", "--model", f"{tmp_path}/m.py:build", "--max-drop", "1")
-    assert code == 2 and "--max-drop needs --heldout" in err
-    code, _, err = run(capsys, "compress", "--demo", "--max-drop", "1", "--budget", "params=0.5")
-    assert code == 2 and "exactly one of --budget and --max-drop" in err
+    code, _, err = run(capsys, "compress", "--model", f"{tmp_path}/m.py:build", "--keep-within", "1")
+    assert code == 2 and "--keep-within needs --heldout" in err
+    code, _, err = run(capsys, "compress", "--demo", "--keep-within", "1", "--budget", "params=0.5")
+    assert code == 2 and "exactly one of --budget and --keep-within" in err
 
 
 def test_fail_over_gate_exits_3_after_writing_everything(tmp_path, capsys):
@@ -114,12 +114,12 @@ def test_fail_over_gate_exits_3_after_writing_everything(tmp_path, capsys):
 
 def test_run_file_options_flags_override_and_unknown_keys(tmp_path, capsys):
     run_file = tmp_path / "run.toml"
-    run_file.write_text('demo = "torch"\nbudget = "params=0.3"\nrank-multiple = 8\nlatency_repeats = 0\n'
+    run_file.write_text('demo = "torch"\nbudget = "params=0.3"\nrank-step = 8\nlatency_repeats = 0\n'
                         f'out = "{tmp_path / "o"}"\n')
     code, stdout, err = run(capsys, "compress", "--config", run_file, "--json", "-q")
     assert code == 0, err
     report = json.loads(stdout)
-    assert report["budget"]["given"] == "params=0.3" and report["config"]["rank_multiple"] == 8
+    assert report["budget"]["given"] == "params=0.3" and report["config"]["rank_step"] == 8
     assert report["sources"]["config_file"]["sha256"] and (tmp_path / "o" / "report.json").is_file()
     code, stdout, err = run(capsys, "compress", "--config", run_file, "--budget", "params=0.5", "--force", "--json", "-q")
     assert code == 0 and json.loads(stdout)["budget"]["given"] == "params=0.5"  # the flag wins

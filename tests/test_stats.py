@@ -181,7 +181,7 @@ def test_sequential_refit_equals_the_closed_form_layer_by_layer():
     records = tb.discover(model)
     x = torch.randn(200, 12)
     data = HeldOut(x.numpy(), None, "test")
-    config = CompressConfig(damping=0.01, sequential_groups=10)
+    config = CompressConfig(ridge=0.01, sequential_groups=10)
     cal = calibrate(model, records, data, config, 64)
     stages = tb.call_stages(model, records, x[:1].numpy())
     ranks = {"0": 3, "2": 3}
