@@ -64,6 +64,12 @@ def parse_budget(text: str) -> Budget:
     kind = kind.lower()
     if kind not in KINDS:
         raise InputError(f"--budget {raw!r}: unknown kind {kind!r}; expected one of {', '.join(KINDS)}")
+    if value_text.endswith("%"):  # params=30% is params=0.3
+        number_text = value_text[:-1].strip()
+        try:
+            value_text = repr(float(number_text) / 100.0) if number_text else value_text
+        except ValueError:
+            pass
     if value_text.startswith("-"):
         raise InputError(f"--budget {raw!r}: {kind} must be positive; got {value_text}")
     match = re.fullmatch(r"([0-9]*\.?[0-9]+(?:[eE][-+]?[0-9]+)?)\s*([kKmMgG]?)", value_text)

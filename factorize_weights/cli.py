@@ -314,7 +314,7 @@ def cmd_compress(args) -> int:
     from pathlib import Path
 
     from .pipeline import compress
-    from .report import layer_table, summary_line
+    from . import terminal
     from .sweep import POINT_UNITS, drop_of
 
     if args.budget is not None and not args.budget.strip():
@@ -340,17 +340,21 @@ def cmd_compress(args) -> int:
     if args.json:
         _print_json(result.report)
     else:
-        print("\n".join(layer_table(result.report)))
+        _flush_warnings()  # warnings first, one line each, then the results
+        head, rows = terminal.layer_rows(result.report)
+        print("\n".join(terminal.table(head, rows)))
         if result.report["skipped"]:
-            print("skipped: " + "; ".join(f"{s['name']} ({s['reason']})" for s in result.report["skipped"]))
+            print(f"skipped {len(result.report['skipped'])} layer(s):")
+            for s in result.report["skipped"]:
+                print(f"  {s['name']}: {s['reason']}")
         if "search" in result.report:
             sr = result.report["search"]
-            print(f"search: {sr['chosen']} is the smallest budget within a drop of {sr['keep_within']} "
-                  f"{sr['unit']} ({sr['evaluations']} evaluations: "
-                  + ", ".join(f"{t['budget']} {t['drop']:+.2f}" for t in sr["tried"]) + ")")
-        print(summary_line(result.report))
-        if args.out:
-            print(f"wrote {str(args.out).rstrip('/')}/ ({', '.join(sorted(p.name for p in Path(args.out).iterdir()))})")
+            tried = ", ".join(f"{t['budget']} drop {t['drop']:.4g}" for t in sr["tried"])
+            print(f"search: {sr['chosen']} is the smallest budget within a drop of {sr['keep_within']:g} "
+                  f"{sr['unit']} ({sr['evaluations']} evaluations: {tried}); the held-out set chose it, so its "
+                  "figure below is optimistic")
+        files = sorted(p.name for p in Path(args.out).iterdir()) if args.out else None
+        print("\n".join(terminal.summary(result.report, args.out, files)))
     if args.fail_over is not None and result.metric is not None:
         drop = drop_of(result.metric)
         if drop > args.fail_over:
@@ -397,9 +401,11 @@ def cmd_evaluate(args) -> int:
     if args.json:
         _print_json({"metric": result.to_dict(), "factorized": args.factorized, "heldout": heldout.source})
     else:
-        unit = " points" if result.name in ("top1", "top5", "agreement") else ""
-        print(f"{result.name}: original {result.before:.4f}, factorized {result.after:.4f}, "
-              f"delta {result.delta:+.4f}{unit} on {result.samples} samples")
+        from . import terminal
+
+        change = terminal.fmt_change(result.name, result.before, result.after, result.higher_is_better)
+        print(f"held-out {result.name} {terminal.fmt_value(result.name, result.before)} -> "
+              f"{terminal.fmt_value(result.name, result.after)} ({change}; {result.samples} samples)")
     return 0
 
 

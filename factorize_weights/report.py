@@ -14,6 +14,7 @@ from .data import HeldOut
 from .metrics import MetricResult
 from .records import LayerRecord
 from .spectra import Spectrum
+from .terminal import fmt_change, fmt_value
 
 
 def _layer_entry(record: LayerRecord, spectrum: Spectrum, rank: int | None, method: str,
@@ -203,7 +204,12 @@ def fmt_int(n) -> str:
 
 
 def fmt_metric(name: str, value: float) -> str:
-    return f"{value:.2f}%" if name in ("top1", "top5", "agreement") else f"{value:.4f}"
+    return fmt_value(name, value)
+
+
+def _int8_change(metric: str, v: dict) -> str:
+    before = v["metric"] - v["delta"]
+    return fmt_change(metric, before, v["metric"], metric not in ("mse",))
 
 
 def summary_line(report: dict) -> str:
@@ -226,10 +232,10 @@ def summary_line(report: dict) -> str:
                  f"(x{lat['speedup']:.2f}; FLOPs predict x{lat['predicted_speedup'] or 1:.2f})")
     m = report.get("metric")
     if m:
-        unit = " points" if m["name"] in ("top1", "top5", "agreement") else ""
+        change = fmt_change(m["name"], m["before"], m["after"], m["higher_is_better"])
         text += (
             f"; held-out {m['name']} {fmt_metric(m['name'], m['before'])} -> "
-            f"{fmt_metric(m['name'], m['after'])} ({m['delta']:+.2f}{unit}, {m['samples']} samples)"
+            f"{fmt_metric(m['name'], m['after'])} ({change}, {m['samples']} samples)"
         )
     return text
 
@@ -284,10 +290,10 @@ def render_markdown(report: dict) -> str:
     q = report.get("int8")
     if q:
         lines += ["", "## int8 on top", "", f"{q['quantization']}; {q['runtime']}, batch {q['batch']}, "
-                  f"{q['threads']} thread(s). Metric: {q['metric']} (delta against the original).", "",
-                  "| variant | size on disk | metric | delta | median ms |", "|---|---:|---:|---:|---:|"]
+                  f"{q['threads']} thread(s). Metric: {q['metric']} (change against the original).", "",
+                  "| variant | size on disk | metric | change | median ms |", "|---|---:|---:|---:|---:|"]
         lines += [f"| {v['name']} | {fmt_int(v['size_bytes'])} B | {fmt_metric(q['metric'], v['metric'])} | "
-                  f"{v['delta']:+.2f} | {'' if v['latency_ms'] is None else format(v['latency_ms'], '.3f')} |"
+                  f"{_int8_change(q['metric'], v)} | {'' if v['latency_ms'] is None else format(v['latency_ms'], '.3f')} |"
                   for v in q["variants"]]
     cal = report.get("calibration")
     if cal:

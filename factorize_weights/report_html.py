@@ -11,6 +11,7 @@ import io
 import numpy as np
 
 from .report import fmt_int, fmt_metric, summary_line
+from .terminal import fmt_change
 
 # Okabe & Ito, "Color Universal Design" (2008): safe for protanopia, deuteranopia, tritanopia
 BLUE, ORANGE, VERMILLION, GREEN, GREY = "#0072B2", "#E69F00", "#D55E00", "#009E73", "#666666"
@@ -151,10 +152,9 @@ def render_report_html(report: dict, spectra: dict) -> str:
         rows.append(["multiply-adds per sample", f"{fmt_int(t['flops_before'])} → {fmt_int(t['flops_after'])} "
                                                  f"({100 * t['flops_ratio']:.1f}%)"])
     if m:
-        unit = " points" if m["name"] in ("top1", "top5", "agreement") else ""
         worse = m["delta"] < 0 if m["higher_is_better"] else m["delta"] > 0
         rows.append([f"held-out {esc(m['name'])}", f"{fmt_metric(m['name'], m['before'])} → {fmt_metric(m['name'], m['after'])} "
-                     f"<span class=\"{'bad' if worse else 'good'}\">({m['delta']:+.2f}{unit})</span> on {m['samples']} samples"])
+                     f"<span class=\"{'bad' if worse else 'good'}\">({esc(fmt_change(m['name'], m['before'], m['after'], m['higher_is_better']))})</span> on {m['samples']} samples"])
     lat = report.get("latency")
     if lat:
         rows.append(["CPU latency", f"{lat['before_ms']:.3f} → {lat['after_ms']:.3f} ms (×{lat['speedup']:.2f}; "
@@ -245,7 +245,8 @@ def render_sweep_html(sweep: dict) -> str:
     head = ["budget", "params kept", "parameters after", "layers factorized", "metric after", "delta", "median ms"]
     rows = [[f"<code>{esc(p['budget'])}</code>", f"{p['params_ratio_pct']:.1f}%", fmt_int(p["params_after"]),
              str(p["layers_factorized"]), "" if not p.get("metric") else fmt_metric(p["metric"]["name"], p["metric"]["after"]),
-             "" if not p.get("metric") else f"{p['metric']['delta']:+.2f}",
+             "" if not p.get("metric") else esc(fmt_change(p["metric"]["name"], p["metric"]["before"], p["metric"]["after"],
+                                                  p["metric"]["higher_is_better"])),
              "" if not p.get("latency") else f"{p['latency']['after_ms']:.3f}"] for p in points]
     body += ["<h2>Points</h2>", _table(head, rows)]
     return _page("Budget sweep", body)

@@ -18,6 +18,7 @@ from .config import CompressConfig
 from .errors import InputError
 from .pipeline import Prepared, prepare, realize
 from .progress import bar
+from .terminal import fmt_change
 
 POINT_UNITS = {"top1": "percentage points", "top5": "percentage points", "agreement": "percentage points",
                "cosine": "cosine (absolute)", "mse": "mse (absolute increase)"}
@@ -140,12 +141,12 @@ def render_csv(doc: dict) -> str:
 def render_markdown(doc: dict) -> str:
     lines = ["# Budget sweep", "", f"Method `{doc['method']}`; spectra and calibration once "
              f"({doc['wall_seconds']['prepare']:.2f} s), all points {doc['wall_seconds']['points']:.2f} s.", "",
-             "| budget | params kept | parameters after | layers factorized | mean weight error | metric after | delta | latency ms |",
+             "| budget | params kept | parameters after | layers factorized | mean weight error | metric after | change | latency ms |",
              "|---|---:|---:|---:|---:|---:|---:|---:|"]
     for p in doc["points"]:
         m, lat = p["metric"], p["latency"]
         after = "" if not m else format(m["after"], ".4f")
-        delta = "" if not m else format(m["delta"], "+.4f")
+        delta = "" if not m else fmt_change(m["name"], m["before"], m["after"], m["higher_is_better"])
         ms = "" if not lat else format(lat["after_ms"], ".3f")
         lines.append(f"| `{p['budget']}` | {p['params_ratio_pct']:.1f}% | {p['params_after']:,} | {p['layers_factorized']} | "
                      f"{p['mean_weight_error']:.4f} | {after} | {delta} | {ms} |")

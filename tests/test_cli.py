@@ -75,7 +75,10 @@ def test_evaluate_reproduces_the_saved_run(demo_runs, capsys):
 
 def test_compress_prints_the_table_and_json(capsys, tmp_path):
     code, stdout, _ = run(capsys, "compress", "--demo", "--budget", "energy=0.9", "-q")
-    assert code == 0 and "| `9` | linear | 512x512 |" in stdout and "held-out top1" in stdout
+    row = next(line for line in stdout.splitlines() if line.startswith("9 "))
+    assert code == 0 and row.split()[:3] == ["9", "linear", "512x512"] and "held-out top1" in stdout
+    assert "|" not in stdout and "`" not in stdout  # plain text on the terminal; Markdown is for report.md
+    assert stdout.rstrip().endswith("nothing was written (no --out)")
     code, stdout, _ = run(capsys, "compress", "--demo", "--budget", "params=0.4", "--json", "-q",
                           "--rank-step", "8")
     report = json.loads(stdout)
@@ -257,3 +260,28 @@ def test_module_entry_point_runs_as_a_process():
     assert proc.returncode == 2 and proc.stderr.count("\n") == 1 and "--budget 'params=7.5'" in proc.stderr
     proc = subprocess.run([sys.executable, "-m", "factorize_weights", "--version"], capture_output=True, text=True)
     assert proc.returncode == 0 and proc.stdout.startswith("factorize-weights ")
+
+
+def test_numbers_keep_their_scale_and_changes_read_as_drops_or_gains():
+    from factorize_weights.budget import parse_budget
+    from factorize_weights.terminal import fmt_change, fmt_value
+
+    assert fmt_value("mse", 0.000338) == "0.000338" and fmt_value("top1", 99.2593) == "99.26%"
+    # a regression of an error metric must not read "+0.00": it is a drop, with its ratio
+    assert fmt_change("mse", 0.000338, 0.00468, higher_is_better=False) == "drop 0.004342, x13.8 worse"
+    assert fmt_change("top1", 97.04, 96.42, higher_is_better=True) == "drop 0.62 points"
+    assert fmt_change("top1", 96.42, 97.04, higher_is_better=True) == "gain 0.62 points"
+    assert parse_budget("params=30%").value == pytest.approx(0.3)
+
+
+def test_no_option_or_field_uses_the_old_names(capsys):
+    from factorize_weights import report
+
+    texts = []
+    for command in ("compress", "sweep", "evaluate", "inspect"):
+        with pytest.raises(SystemExit):
+            main([command, "--help"])
+        texts.append(capsys.readouterr().out)
+    texts += [json.dumps(report.schema(n)) for n in ("report", "sweep")]
+    for old in ("damping", "max-drop", "max_drop", "rank-multiple", "rank_multiple"):
+        assert all(old not in t for t in texts), old
