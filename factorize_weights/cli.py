@@ -148,6 +148,9 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--keep-within", type=float, metavar="D",
                    help="instead of --budget: the smallest params budget whose held-out drop is at most D, in the "
                         "metric's units (percentage points for top1/top5/agreement, absolute for cosine and mse)")
+    g.add_argument("--selection", metavar="DATA",
+                   help="with --keep-within: the data the budget is chosen on (.npz or FILE.py:FUNCTION; not the "
+                        "held-out set); without it the held-out set chooses and its figure is optimistic")
     _plan_options(p)
     g = p.add_argument_group("gate")
     g.add_argument("--fail-over", type=float, metavar="D",
@@ -332,8 +335,13 @@ def cmd_compress(args) -> int:
     config = _plan_config(args, args.budget or "params=1")
     model, sources = _load_model(args)
     heldout, calibration = _heldout(args), _calibration(args)
+    if args.selection and args.keep_within is None:
+        raise InputError("--selection is the data --keep-within chooses the budget on; give --keep-within too")
+    from .data import load_heldout
+
+    selection = load_heldout(args.selection, flag="--selection") if args.selection else None
     result = compress(model, config, heldout=heldout, out=args.out, force=args.force, sources=sources,
-                      calibration=calibration, keep_within=args.keep_within)
+                      calibration=calibration, keep_within=args.keep_within, selection=selection)
     for warning in (result.report.get("calibration") or {}).get("warnings", []):
         _warn(warning)
     _verbose(args, result.report)
@@ -350,9 +358,10 @@ def cmd_compress(args) -> int:
         if "search" in result.report:
             sr = result.report["search"]
             tried = ", ".join(f"{t['budget']} drop {t['drop']:.4g}" for t in sr["tried"])
+            chooser = ("the selection set chose it" if sr.get("selection") else
+                       "the held-out set chose it, so its figure below is optimistic (give --selection)")
             print(f"search: {sr['chosen']} is the smallest budget within a drop of {sr['keep_within']:g} "
-                  f"{sr['unit']} ({sr['evaluations']} evaluations: {tried}); the held-out set chose it, so its "
-                  "figure below is optimistic")
+                  f"{sr['unit']} ({sr['evaluations']} evaluations: {tried}); {chooser}")
         files = sorted(p.name for p in Path(args.out).iterdir()) if args.out else None
         print("\n".join(terminal.summary(result.report, args.out, files)))
     if args.fail_over is not None and result.metric is not None:

@@ -288,7 +288,8 @@ def plan_for(model, config: CompressConfig, heldout: HeldOut | None = None, cali
     return prep.records, prep.spectra, plan_budget(prep, config.budget), prep.calibration
 
 
-def _check_overlap(heldout: HeldOut | None, calibration: HeldOut | None, allow: bool) -> None:
+def _check_overlap(heldout: HeldOut | None, calibration: HeldOut | None, allow: bool,
+                   flag: str = "--calibration") -> None:
     if heldout is None or calibration is None or allow:
         return
     same = heldout.source == calibration.source or (heldout.sha256 is not None and heldout.sha256 == calibration.sha256)
@@ -296,8 +297,9 @@ def _check_overlap(heldout: HeldOut | None, calibration: HeldOut | None, allow: 
         same = heldout.inputs.shape == calibration.inputs.shape and np.array_equal(heldout.inputs, calibration.inputs)
     if same:
         raise InputError(
-            f"--calibration {calibration.source} is the same data as --heldout {heldout.source}: the accuracy "
-            "would be measured on what the factors were fitted to (give --allow-overlap to do it anyway)"
+            f"{flag} {calibration.source} is the same data as --heldout {heldout.source}: the accuracy "
+            "would be measured on what was used to fit or choose" + (" (give --allow-overlap to do it anyway)"
+                                                                     if flag == "--calibration" else "")
         )
 
 
@@ -433,6 +435,7 @@ def compress(
     sources: dict | None = None,
     calibration: HeldOut | None = None,
     keep_within: float | None = None,
+    selection: HeldOut | None = None,
 ) -> CompressResult:
     """Plan, rewrite, evaluate, report and (with ``out``) save, in one call. The CLI's
     ``compress`` calls exactly this.
@@ -456,6 +459,10 @@ def compress(
         Instead of ``config.budget``: the smallest params fraction whose held-out drop is at most
         this (in the metric's units), found by bisection on one preparation; the report's
         ``search`` entry lists every budget tried. Needs ``heldout``.
+    selection : HeldOut, optional
+        With ``keep_within``: the data the budget is chosen on (a third split, refused if it is the
+        held-out set), so the held-out figure stays an honest estimate. Without it the held-out set
+        chooses, and the report says so.
     """
     from . import store
 
@@ -472,8 +479,17 @@ def compress(
 
         if heldout is None:
             raise InputError("--keep-within needs --heldout (the drop is measured on it)")
-        prep = prepare(model, config, heldout, calibration, budgets=["params=1"], model_source=source)
+        if selection is not None:
+            _check_overlap(heldout, selection, False, "--selection")
+            _check_overlap(selection, calibration, config.allow_overlap)
+        prep = prepare(model, config, selection or heldout, calibration, budgets=["params=1"], model_source=source)
         budget, search, _ = search_budget(prep, keep_within)
+        search["selection"] = None if selection is None else {
+            "source": selection.source, "sha256": selection.sha256, "samples": len(selection)}
+        if selection is not None:  # the result is measured on the held-out set, which played no part
+            prep.heldout, prep.metric_name = heldout, check_heldout(model, heldout, config.metric, config.output)
+            prep.reference = [(prep.backend.predict(model, x, output=config.output), y)
+                              for x, y in heldout.batches(prep.batch_size)]
         prep.config = config = dataclasses.replace(config, budget=budget)
         result = realize(prep, budget, sources=sources)
         result.report["search"] = search

@@ -146,7 +146,7 @@ def build_report(
         "skipped": [{"name": r.name, "kind": r.kind, "reason": r.skip_reason} for r in records if r.skip_reason],
         "layers": layers,
         "config": config.to_dict(),
-        "environment": {"python": platform.python_version(), "machine": platform.machine()},
+        "environment": {"python": platform.python_version(), "machine": platform.machine(), **_versions()},
         "wall_seconds": {k: round(v, 3) for k, v in timings.items()},
     }
 
@@ -205,6 +205,19 @@ def fmt_int(n) -> str:
 
 def fmt_metric(name: str, value: float) -> str:
     return fmt_value(name, value)
+
+
+def _versions() -> dict:
+    """Versions of the libraries that computed the result (those already imported; nothing is
+    imported just to ask)."""
+    import sys
+
+    out = {}
+    for name in ("numpy", "scipy", "torch", "onnx", "onnxruntime"):
+        module = sys.modules.get(name)
+        if module is not None:
+            out[name] = str(getattr(module, "__version__", "unknown"))
+    return out
 
 
 def _int8_change(metric: str, v: dict) -> str:
@@ -305,6 +318,15 @@ def render_markdown(report: dict) -> str:
         e = report["export"]
         lines += ["", f"Exported `{e['file']}`, checked with {e['checked_with']} on {e['samples']} samples: "
                   f"max |difference| {e['max_abs_diff']:.3g} (tolerance {e['tolerance']:.3g})."]
+    sr = report.get("search")
+    if sr:
+        chooser = "the selection set" if sr.get("selection") else "the held-out set (so the held-out figure is optimistic)"
+        lines += ["", "## Budget search", "",
+                  f"The smallest params budget whose drop stays within {sr['keep_within']:g} {sr['unit']}, chosen on "
+                  f"{chooser}: `{sr['chosen']}` after {sr['evaluations']} evaluations.", "",
+                  "| budget | metric | drop | within |", "|---|---:|---:|---|"]
+        lines += [f"| `{t['budget']}` | {t['metric']:.4g} | {t['drop']:.4g} | {'yes' if t['within'] else 'no'} |"
+                  for t in sr["tried"]]
     lines += ["", "## Layers", ""] + layer_table(report)
     if report["skipped"]:
         lines += ["", "## Skipped layers", "", "| layer | kind | reason |", "|---|---|---|"]

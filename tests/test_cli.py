@@ -285,3 +285,20 @@ def test_no_option_or_field_uses_the_old_names(capsys):
     texts += [json.dumps(report.schema(n)) for n in ("report", "sweep")]
     for old in ("damping", "max-drop", "max_drop", "rank-multiple", "rank_multiple"):
         assert all(old not in t for t in texts), old
+
+
+def test_keep_within_chooses_on_the_selection_set_and_reports_on_the_held_out_set(tmp_path, capsys):
+    # the demo's held-out split cut in two: one half chooses the budget, the other measures it
+    from factorize_weights import demo
+
+    data = np.load(demo.HELDOUT)
+    np.savez(tmp_path / "sel.npz", inputs=data["inputs"][:270], labels=data["labels"][:270])
+    np.savez(tmp_path / "held.npz", inputs=data["inputs"][270:], labels=data["labels"][270:])
+    code, out, err = run(capsys, "compress", "--demo", "--keep-within", "0.5", "--heldout", tmp_path / "held.npz",
+                         "--selection", tmp_path / "sel.npz", "--json", "-q", "--latency-repeats", "0")
+    assert code == 0, err
+    report = json.loads(out)
+    assert report["search"]["selection"]["samples"] == 270 and report["metric"]["samples"] == 270
+    assert report["heldout"]["source"].endswith("held.npz")
+    code, out, err = run(capsys, "compress", "--demo", "--keep-within", "0.5", "-q", "--latency-repeats", "0")
+    assert code == 0 and "the held-out set chose it, so its figure below is optimistic" in out

@@ -288,3 +288,19 @@ def test_int8_on_a_torch_model_needs_export(tmp_path, capsys):
     code = main(["compress", "--demo", "--budget", "params=0.3", "--int8", "--out", str(tmp_path / "o")])
     err = capsys.readouterr().err
     assert code == 2 and "--int8 quantizes ONNX models" in err and not (tmp_path / "o").exists()
+
+
+def test_products_of_two_activations_are_not_listed():
+    # attention scores Q K^T: neither operand is a weight, so the node is no layer at all
+    import onnx
+    from onnx import TensorProto, helper, numpy_helper
+
+    w = numpy_helper.from_array(np.ones((4, 4), np.float32), "W")
+    graph = helper.make_graph(
+        [helper.make_node("MatMul", ["x", "W"], ["q"], name="proj"),
+         helper.make_node("Transpose", ["q"], ["qt"], perm=[1, 0]),
+         helper.make_node("MatMul", ["q", "qt"], ["scores"], name="scores")],
+        "g", [helper.make_tensor_value_info("x", TensorProto.FLOAT, [3, 4])],
+        [helper.make_tensor_value_info("scores", TensorProto.FLOAT, [3, 3])], [w])
+    model = ob.OnnxModel(helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)]))
+    assert [r.name for r in ob.discover(model)] == ["proj"]

@@ -143,11 +143,29 @@ def discover(model: OnnxModel, *, only: Sequence[str] = (), skip: Sequence[str] 
     producers = {o: n for n in graph.node for o in n.output}
     uses = _uses(graph)
     records = []
+    memo: dict[str, bool] = {}
     for name, node in zip(_node_names(graph), graph.node):
         if node.op_type not in ("Gemm", "MatMul", "Conv"):
             continue
+        if node.op_type == "MatMul" and not any(i in graph_inputs or _constant(i, inits, producers, memo)
+                                                for i in node.input[:2]):
+            continue  # a product of two computed activations (attention scores): no weight, not a layer
         records.append(_record(name, node, inits, graph_inputs, producers, uses, only, skip))
     return records
+
+
+def _constant(name: str, inits, producers, memo: dict) -> bool:
+    """Whether a value is a constant: an initializer, or computed from constants only."""
+    if name in memo:
+        return memo[name]
+    memo[name] = False  # cycles cannot occur in a valid graph; this also stops deep recursion
+    node = producers.get(name)
+    if name in inits:
+        memo[name] = True
+    elif node is not None:
+        memo[name] = node.op_type == "Constant" or (
+            bool([i for i in node.input if i]) and all(_constant(i, inits, producers, memo) for i in node.input if i))
+    return memo[name]
 
 
 def _weight_problem(wname, inits, graph_inputs, producers) -> str | None:
