@@ -85,6 +85,7 @@ class MetricResult:
     before: float
     after: float
     samples: int
+    per_class: list | None = None  # top1/top5 with class labels: [{"class", "samples", "before", "after"}]
 
     @property
     def delta(self) -> float:
@@ -95,7 +96,7 @@ class MetricResult:
         return HIGHER_IS_BETTER[self.name]
 
     def to_dict(self) -> dict:
-        return {
+        out = {
             "name": self.name,
             "before": self.before,
             "after": self.after,
@@ -103,6 +104,9 @@ class MetricResult:
             "higher_is_better": self.higher_is_better,
             "samples": self.samples,
         }
+        if self.per_class is not None:
+            out["per_class"] = self.per_class
+        return out
 
 
 class MetricAccumulator:
@@ -115,6 +119,7 @@ class MetricAccumulator:
         self.n = 0
         self.before = 0.0
         self.after = 0.0
+        self.classes: dict[int, list[int]] = {}  # class id -> [samples, correct before, correct after]
 
     def update(self, original: np.ndarray, factorized: np.ndarray, labels: np.ndarray | None) -> None:
         self.n += original.shape[0]
@@ -122,6 +127,12 @@ class MetricAccumulator:
             k = 1 if self.name == "top1" else 5
             self.before += topk_correct(original, labels, k)
             self.after += topk_correct(factorized, labels, k)
+            for c in np.unique(labels):  # per class: the cautions ask users to check classes, not averages
+                rows = labels == c
+                acc = self.classes.setdefault(int(c), [0, 0, 0])
+                acc[0] += int(np.sum(rows))
+                acc[1] += topk_correct(original[rows], labels[rows], k)
+                acc[2] += topk_correct(factorized[rows], labels[rows], k)
         elif self.name == "mse":
             self.before += float(np.sum((original - labels) ** 2)) / max(np.prod(original.shape[1:]), 1)
             self.after += float(np.sum((factorized - labels) ** 2)) / max(np.prod(original.shape[1:]), 1)
@@ -135,4 +146,8 @@ class MetricAccumulator:
     def result(self) -> MetricResult:
         scale = 100.0 if self.name in ("top1", "top5", "agreement") else 1.0
         n = max(self.n, 1)
-        return MetricResult(self.name, scale * self.before / n, scale * self.after / n, self.n)
+        per_class = None
+        if self.classes:
+            per_class = [{"class": c, "samples": s, "before": 100.0 * b / s, "after": 100.0 * a / s}
+                         for c, (s, b, a) in sorted(self.classes.items())]
+        return MetricResult(self.name, scale * self.before / n, scale * self.after / n, self.n, per_class)

@@ -327,12 +327,32 @@ def render_markdown(report: dict) -> str:
                   "| budget | metric | drop | within |", "|---|---:|---:|---|"]
         lines += [f"| `{t['budget']}` | {t['metric']:.4g} | {t['drop']:.4g} | {'yes' if t['within'] else 'no'} |"
                   for t in sr["tried"]]
+    lines += per_class_lines(report)
     lines += ["", "## Layers", ""] + layer_table(report)
     if report["skipped"]:
         lines += ["", "## Skipped layers", "", "| layer | kind | reason |", "|---|---|---|"]
         lines += [f"| `{s['name']}` | {s['kind']} | {s['reason']} |" for s in report["skipped"]]
     lines += ["", f"factorize-weights {report['tool_version']}, {report['created']}", ""]
     return "\n".join(lines)
+
+
+def worst_classes(metric: dict, n: int = 5) -> list[dict]:
+    """The classes that lost most (before - after, largest first), at most ``n``."""
+    rows = sorted(metric.get("per_class") or [], key=lambda r: r["after"] - r["before"])
+    return rows[:n]
+
+
+def per_class_lines(report: dict) -> list[str]:
+    m = report.get("metric")
+    if not m or not m.get("per_class"):
+        return []
+    lines = ["", "## Per class", "", f"Held-out {m['name']} per class, the classes that lost most first "
+             "(an average can hide a class that collapsed).", "",
+             "| class | samples | before | after | change |", "|---:|---:|---:|---:|---|"]
+    for r in sorted(m["per_class"], key=lambda r: r["after"] - r["before"]):
+        lines.append(f"| {r['class']} | {r['samples']} | {r['before']:.2f}% | {r['after']:.2f}% | "
+                     f"{fmt_change('top1', r['before'], r['after'], True)} |")
+    return lines
 
 
 def render_inspect(report: dict) -> str:

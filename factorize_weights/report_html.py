@@ -25,7 +25,8 @@ th, td { border: 1px solid #ccc; padding: 0.25rem 0.5rem; text-align: right; }
 th { background: #f2f2f2; } td:first-child, th:first-child { text-align: left; }
 code { font-size: 0.9em; }
 .summary td:first-child { font-weight: 600; } .summary td { text-align: left; }
-.grid { display: grid; grid-template-columns: repeat(auto-fill, minmax(330px, 1fr)); gap: 0.75rem; }
+.skipped td { text-align: left; }
+.grid { display: grid; grid-template-columns: repeat(auto-fill, minmax(420px, 1fr)); gap: 0.75rem; }
 figure { margin: 0; border: 1px solid #e0e0e0; padding: 0.25rem; break-inside: avoid; }
 figure svg { width: 100%; height: auto; display: block; }
 figure.chart { max-width: 760px; }
@@ -62,27 +63,32 @@ def _pyplot():
 def spectrum_figure(entry: dict, spectrum) -> str:
     """Singular values on a log scale with the chosen and break-even ranks, and the energy curve."""
     plt = _pyplot()
-    fig, (ax, bx) = plt.subplots(1, 2, figsize=(5.2, 2.1))
+    fig, (ax, bx) = plt.subplots(1, 2, figsize=(6.4, 2.6))
     s = np.asarray(spectrum.singular_values, dtype=float)
     ranks = np.arange(1, len(s) + 1)
     positive = s > 0
     ax.semilogy(ranks[positive], s[positive], color=BLUE, lw=1.4)
-    bx.plot(ranks, 100 * spectrum.energy_curve(), color=BLUE, lw=1.4)
+    discarded = np.maximum(1.0 - spectrum.energy_curve(), 1e-12)  # near 100% kept, a log scale shows the rest
+    bx.semilogy(ranks, discarded, color=BLUE, lw=1.4)
     for axis in (ax, bx):
         axis.axvline(entry["break_even_rank"], color=GREY, ls="--", lw=1, label=f"break-even {entry['break_even_rank']}")
         if entry["rank"] is not None:
             axis.axvline(entry["rank"], color=VERMILLION, ls="-", lw=1.6, label=f"chosen rank {entry['rank']}")
         axis.set_xlabel("rank")
     ax.set_ylabel("singular value")
-    bx.set_ylabel("energy kept (%)")
-    bx.set_ylim(0, 101)
-    ax.legend(fontsize=7, frameon=False, loc="upper right")
+    bx.set_ylabel("energy discarded")
+    ax.legend(fontsize=8, frameon=False, loc="upper right")
+    from matplotlib.ticker import MaxNLocator
+
+    for axis in (ax, bx):
+        axis.xaxis.set_major_locator(MaxNLocator(integer=True))
     # a fixed layout and plain tick labels: tight_layout and TeX-style log labels took most of the
     # time per figure (0.35 s; measured on a 12-layer model)
     from matplotlib.ticker import LogFormatter, NullFormatter
 
-    ax.yaxis.set_major_formatter(LogFormatter(labelOnlyBase=True))
-    ax.yaxis.set_minor_formatter(NullFormatter())
+    for axis in (ax, bx):
+        axis.yaxis.set_major_formatter(LogFormatter(labelOnlyBase=True))
+        axis.yaxis.set_minor_formatter(NullFormatter())
     fig.subplots_adjust(left=0.13, right=0.98, bottom=0.2, top=0.95, wspace=0.45)
     return _svg(fig)
 
@@ -99,6 +105,43 @@ def _spectrum_layers(layers: list[dict], spectra: dict) -> list[dict]:
         return have
     keep = {e["name"] for e in sorted(have, key=lambda e: -e["params_before"])[:SPECTRUM_FIGURES]}
     return [e for e in have if e["name"] in keep]
+
+
+def _review_sections(report: dict) -> list[str]:
+    """What a reviewer reads first: the layers with the largest output error, and per-class
+    accuracy (the classes that lost most) when the held-out set has labels."""
+    from .report import worst_classes
+
+    esc = html.escape
+    out = []
+    flagged = sorted((e for e in report["layers"] if e.get("output_error") is not None and e["rank"] is not None),
+                     key=lambda e: -e["output_error"])[:5]
+    if flagged:
+        rows = [[f"<code>{esc(e['name'])}</code>", esc(e["kind"]), "×".join(map(str, e["matrix_shape"])), str(e["rank"]),
+                 f"{e['output_error']:.4g}", f"{e['weight_error']:.4g}"] for e in flagged]
+        out += ["<section id=\"review\"><h2>Layers to review</h2><p>The factorized layers with the largest relative "
+                "output error on held-out inputs.</p>",
+                _table(["layer", "kind", "matrix", "rank", "output error", "weight error"], rows, "flagged"), "</section>"]
+    m = report.get("metric")
+    if m and m.get("per_class"):
+        rows = [[str(r["class"]), str(r["samples"]), f"{r['before']:.2f}%", f"{r['after']:.2f}%",
+                 esc(fmt_change("top1", r["before"], r["after"], True))] for r in worst_classes(m, len(m["per_class"]))]
+        out += ["<section id=\"per-class\"><h2>Per class</h2><p>Held-out " + esc(m["name"]) + " per class, the classes "
+                "that lost most first: an average can hide a class that collapsed.</p>",
+                _table(["class", "samples", "before", "after", "change"], rows, "per-class"), "</section>"]
+    sr = report.get("search")
+    if sr:
+        chooser = "the selection set" if sr.get("selection") else "the held-out set, so the held-out figure is optimistic"
+        rows = [[f"<code>{esc(t['budget'])}</code>", f"{t['metric']:.4g}", f"{t['drop']:.4g}", "yes" if t["within"] else "no"]
+                for t in sr["tried"]]
+        out += [f"<section id=\"search\"><h2>Budget search</h2><p>Chosen: <code>{esc(sr['chosen'])}</code>, the "
+                f"smallest params budget within a drop of {sr['keep_within']:g} {esc(sr['unit'])}; chosen on {chooser}.</p>",
+                _table(["budget", "metric", "drop", "within"], rows, "search"), "</section>"]
+    return out
+
+
+def _size(n: int) -> str:
+    return f"{n / 2**20:.2f} MiB" if n >= 2**20 else f"{n / 2**10:.1f} KiB"
 
 
 def params_figure(layers: list[dict]) -> str:
@@ -162,12 +205,17 @@ def render_report_html(report: dict, spectra: dict) -> str:
                      f"{lat['threads']} thread(s)"])
     body = ["<h1>Factorization report</h1>", f"<p>{esc(summary_line(report))}.</p>",
             "<section><h2>Summary</h2>", _table(None, rows, "summary"), "</section>"]
-    body += ["<section><h2>Parameters per layer</h2>", f"<figure>{params_figure(report['layers'])}"
-             "<figcaption>Grey: before; blue, hatched: after.</figcaption></figure></section>"]
+    body += _review_sections(report)
+    many = len(report["layers"]) > 40
+    body += ["<section><h2>Parameters per layer</h2>", "<details><summary>show the chart</summary>" if many else "",
+             f"<figure>{params_figure(report['layers'])}"
+             "<figcaption>Grey: before; blue, hatched: after.</figcaption></figure>", "</details>" if many else "",
+             "</section>"]
     label = "W·S (whitened)" if report["method"] == "whitened" else ("pivoted-QR steps" if report["method"] == "columns" else "W")
-    body += [f"<section><h2>Spectra</h2><p>Per layer: the singular values of {label} on a log scale and the energy "
-             "kept against rank. Solid vermillion line: chosen rank; dashed grey line: break-even rank (at or "
-             "above it two factors save nothing).</p><div class=\"grid\">"]
+    body += [f"<section><h2>Spectra</h2><details open><summary>per-layer spectra</summary><p>Per layer: the "
+             f"singular values of {label} and the share of energy discarded at each rank, both on log scales. "
+             "Solid vermillion line: chosen rank; dashed grey line: break-even rank (at or above it two factors "
+             "save nothing).</p><div class=\"grid\">"]
     plotted = _spectrum_layers(report["layers"], spectra)
     if len(plotted) < sum(1 for e in report["layers"] if e["name"] in spectra):
         body.append(f"<p>The {len(plotted)} largest layers are plotted; the table below lists every layer.</p>")
@@ -176,7 +224,7 @@ def render_report_html(report: dict, spectra: dict) -> str:
             caption = f"<code>{esc(e['name'])}</code> {esc(e['kind'])} {'×'.join(map(str, e['matrix_shape']))}: " + (
                 "stays dense" if e["rank"] is None else f"rank {e['rank']}, energy kept {100 * e['energy_kept']:.1f}%")
             body.append(f"<figure>{spectrum_figure(e, spectra[e['name']])}<figcaption>{caption}</figcaption></figure>")
-    body.append("</div></section>")
+    body.append("</div></details></section>")
     head = ["layer", "kind", "matrix", "rank", "break-even", "params before", "params after", "energy kept", "weight error"]
     has_out = any("output_error" in e for e in report["layers"])
     if has_out:
@@ -193,11 +241,11 @@ def render_report_html(report: dict, spectra: dict) -> str:
     if report["skipped"]:
         body += ["<section><h2>Skipped layers</h2>",
                  _table(["layer", "kind", "reason"], [[f"<code>{esc(s['name'])}</code>", esc(s["kind"]), esc(s["reason"])]
-                                                      for s in report["skipped"]]), "</section>"]
+                                                      for s in report["skipped"]], "skipped"), "</section>"]
     q = report.get("int8")
     if q:
         body += ["<section><h2>int8 on top</h2>", _table(["variant", "size on disk", esc(q["metric"]), "delta", "median ms"],
-                 [[esc(v["name"]), f"{fmt_int(v['size_bytes'])} B", fmt_metric(q["metric"], v["metric"]),
+                 [[esc(v["name"]), _size(v['size_bytes']), fmt_metric(q["metric"], v["metric"]),
                    f"{v['delta']:+.2f}", "" if v["latency_ms"] is None else f"{v['latency_ms']:.3f}"]
                   for v in q["variants"]]), "</section>"]
     cal = report.get("calibration")

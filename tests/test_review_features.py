@@ -149,7 +149,10 @@ window.addEventListener('load', () => {
   const sizes = Array.from(document.querySelectorAll('svg')).map(s => {
     const r = s.getBoundingClientRect(); return [Math.round(r.width), Math.round(r.height)]; });
   const res = performance.getEntriesByType('resource').map(e => e.name);
-  document.body.setAttribute('data-probe', JSON.stringify({svgs: sizes, resources: res}));
+  const sections = Array.from(document.querySelectorAll('section[id]')).map(s => {
+    const r = s.getBoundingClientRect();
+    return [s.id, Math.round(r.height), s.querySelectorAll('tr').length]; });
+  document.body.setAttribute('data-probe', JSON.stringify({svgs: sizes, resources: res, sections: sections}));
 });
 </script>
 """
@@ -188,6 +191,11 @@ def test_report_html_renders_in_chromium_without_network(tmp_path, capsys):
     layers = json.loads((out / "report.json").read_text())["layers"]
     assert len(probe["svgs"]) == 1 + len(layers)  # parameters chart + one spectrum figure per layer
     assert all(w > 100 and h > 50 for w, h in probe["svgs"])
+    # the reviewer's sections are rendered, with rows: the flagged layers and the per-class table
+    # (the demo's held-out set has 10 classes: a header row plus one row each)
+    sections = {name: (height, rows) for name, height, rows in probe["sections"]}
+    assert sections["review"][0] > 50 and sections["review"][1] >= 2
+    assert sections["per-class"][1] == 11
 
 
 @pytest.mark.skipif(CHROMIUM is None, reason="Chromium is not installed (apt-get install chromium); .ci/run installs it")
