@@ -467,6 +467,7 @@ def compress(
     from . import store
 
     config = config or CompressConfig()
+    t_start = time.perf_counter()
     if out is not None:
         store.check_out_dir(out, force, input_paths(sources, heldout, calibration))
     check_outputs_requested(model, config, heldout, out)
@@ -483,7 +484,9 @@ def compress(
             _check_overlap(heldout, selection, False, "--selection")
             _check_overlap(selection, calibration, config.allow_overlap)
         prep = prepare(model, config, selection or heldout, calibration, budgets=["params=1"], model_source=source)
+        t_search = time.perf_counter()
         budget, search, _ = search_budget(prep, keep_within)
+        prep.timings["search"] = time.perf_counter() - t_search
         search["selection"] = None if selection is None else {
             "source": selection.source, "sha256": selection.sha256, "samples": len(selection)}
         if selection is not None:  # the result is measured on the held-out set, which played no part
@@ -493,6 +496,8 @@ def compress(
         prep.config = config = dataclasses.replace(config, budget=budget)
         result = realize(prep, budget, sources=sources)
         result.report["search"] = search
+    # the whole run up to here (preparation, any search, the final budget); writing is timed apart
+    result.report["wall_seconds"]["total"] = round(time.perf_counter() - t_start, 3)
     save_result(result, prep, out, force)
     return result
 

@@ -257,21 +257,52 @@ def render_report_html(report: dict, spectra: dict) -> str:
     return _page("Factorization report", body)
 
 
-def sweep_figure(points: list[dict], x_key: str, x_label: str, *, line: bool = True) -> str:
+def sweep_figure(points: list[dict], x_key: str, x_label: str, *, line: bool = True,
+                 baseline_x: float | None = None, spread: bool = False) -> str:
+    """Held-out metric against ``x_key``; the original model as a baseline point at ``baseline_x``;
+    with ``spread``, latency error bars from the 10th to the 90th percentile."""
     plt = _pyplot()
-    fig, ax = plt.subplots(figsize=(5.5, 3.2))
+    fig, ax = plt.subplots(figsize=(6.0, 3.6))
     points = sorted(points, key=lambda p: p[x_key])
     xs = [p[x_key] for p in points]
     ys = [p["metric"]["after"] for p in points]
-    ax.plot(xs, ys, color=BLUE, marker="o", lw=1.5 if line else 0, label="factorized")
-    ax.axhline(points[0]["metric"]["before"], color=GREY, ls="--", lw=1, label="original")
+    xerr = None
+    if spread:
+        xerr = [[max(x - p["latency"]["after_spread_ms"][0], 0.0) for p, x in zip(points, xs)],
+                [max(p["latency"]["after_spread_ms"][1] - x, 0.0) for p, x in zip(points, xs)]]
+    ax.errorbar(xs, ys, xerr=xerr, color=BLUE, marker="o", lw=1.5 if line else 0, elinewidth=1, capsize=3,
+                label="factorized")
+    before = points[0]["metric"]["before"]
+    ax.axhline(before, color=GREY, ls="--", lw=1)
+    if baseline_x is not None:
+        bxerr = None
+        if spread:
+            lo, hi = points[0]["latency"]["before_spread_ms"]
+            bxerr = [[max(baseline_x - lo, 0.0)], [max(hi - baseline_x, 0.0)]]
+        ax.errorbar([baseline_x], [before], xerr=bxerr, color=GREY, marker="D", lw=0, elinewidth=1, capsize=3,
+                    label="original")
     for p, x, y in zip(points, xs, ys):
-        ax.annotate(p["budget"], (x, y), textcoords="offset points", xytext=(4, -10), fontsize=7)
+        ax.annotate(p["budget"], (x, y), textcoords="offset points", xytext=(5, -11), fontsize=7, clip_on=True)
+    ax.margins(x=0.12, y=0.15)  # room for the labels inside the axes
     ax.set_xlabel(x_label)
     ax.set_ylabel(f"held-out {points[0]['metric']['name']}")
-    ax.legend(frameon=False)
+    ax.legend(frameon=False, fontsize=8)
     fig.tight_layout()
     return _svg(fig)
+
+
+def _ms(median: float, spread) -> str:
+    return f"{median:.3f} [{spread[0]:.3f}-{spread[1]:.3f}]"
+
+
+def _sweep_baseline(points: list[dict]) -> list[list[str]]:
+    """The original model as the first row of the points table."""
+    if not points:
+        return []
+    p, m, lat = points[0], points[0].get("metric"), points[0].get("latency")
+    return [["original", "100.0%", fmt_int(p["params_before"]), "0",
+             "" if not m else fmt_metric(m["name"], m["before"]), "",
+             "" if not lat else _ms(lat["before_ms"], lat["before_spread_ms"])]]
 
 
 def render_sweep_html(sweep: dict) -> str:
@@ -281,20 +312,25 @@ def render_sweep_html(sweep: dict) -> str:
             f"spectra and calibration computed once ({sweep['wall_seconds']['prepare']:.2f} s), then "
             f"{sweep['wall_seconds']['points']:.2f} s for all points.</p>"]
     if points and points[0].get("metric"):
-        body.append(f"<figure class=\"chart\">{sweep_figure(points, 'params_ratio_pct', 'parameters kept (% of selected layers)')}"
-                    "<figcaption>Held-out metric against parameters kept; dashed: the original model.</figcaption></figure>")
+        body.append(f"<figure class=\"chart\">{sweep_figure(points, 'params_ratio_pct', 'parameters kept (% of selected layers)', baseline_x=100.0)}"
+                    "<figcaption>Held-out metric against parameters kept; grey diamond and dashed line: the original "
+                    "model.</figcaption></figure>")
         if all(p.get("latency") for p in points):
             for p in points:
                 p["_after_ms"] = p["latency"]["after_ms"]
-            body.append(f"<figure class=\"chart\">{sweep_figure(points, '_after_ms', 'measured median latency (ms)', line=False)}"
-                        "<figcaption>Held-out metric against measured CPU latency of the factorized model.</figcaption></figure>")
+            base_ms = points[0]["latency"]["before_ms"]
+            body.append(f"<figure class=\"chart\">{sweep_figure(points, '_after_ms', 'measured median latency (ms)', line=False, baseline_x=base_ms, spread=True)}"
+                        "<figcaption>Held-out metric against measured CPU latency (median; bars: 10th to 90th "
+                        "percentile); grey diamond: the original model.</figcaption></figure>")
             for p in points:
                 p.pop("_after_ms")
-    head = ["budget", "params kept", "parameters after", "layers factorized", "metric after", "delta", "median ms"]
-    rows = [[f"<code>{esc(p['budget'])}</code>", f"{p['params_ratio_pct']:.1f}%", fmt_int(p["params_after"]),
+    name = points[0]["metric"]["name"] if points and points[0].get("metric") else "metric"
+    head = ["budget", "params kept", "parameters after", "layers factorized", f"held-out {name}", f"change in {name}",
+            "median ms [p10-p90]"]
+    rows = _sweep_baseline(points) + [[f"<code>{esc(p['budget'])}</code>", f"{p['params_ratio_pct']:.1f}%", fmt_int(p["params_after"]),
              str(p["layers_factorized"]), "" if not p.get("metric") else fmt_metric(p["metric"]["name"], p["metric"]["after"]),
              "" if not p.get("metric") else esc(fmt_change(p["metric"]["name"], p["metric"]["before"], p["metric"]["after"],
                                                   p["metric"]["higher_is_better"])),
-             "" if not p.get("latency") else f"{p['latency']['after_ms']:.3f}"] for p in points]
+             "" if not p.get("latency") else _ms(p["latency"]["after_ms"], p["latency"]["after_spread_ms"])] for p in points]
     body += ["<h2>Points</h2>", _table(head, rows)]
     return _page("Budget sweep", body)

@@ -138,16 +138,32 @@ def render_csv(doc: dict) -> str:
     return buf.getvalue()
 
 
+def _name(doc: dict) -> str:
+    m = doc["points"][0]["metric"] if doc["points"] else None
+    return m["name"] if m else "metric"
+
+
+def _ms(median: float, spread) -> str:
+    return f"{median:.3f} [{spread[0]:.3f}-{spread[1]:.3f}]"
+
+
 def render_markdown(doc: dict) -> str:
     lines = ["# Budget sweep", "", f"Method `{doc['method']}`; spectra and calibration once "
              f"({doc['wall_seconds']['prepare']:.2f} s), all points {doc['wall_seconds']['points']:.2f} s.", "",
-             "| budget | params kept | parameters after | layers factorized | mean weight error | metric after | change | latency ms |",
+             f"| budget | params kept | parameters after | layers factorized | mean weight error | held-out {_name(doc)} "
+             f"| change in {_name(doc)} | latency ms [p10-p90] |",
              "|---|---:|---:|---:|---:|---:|---:|---:|"]
+    if doc["points"]:
+        p0 = doc["points"][0]
+        m0, l0 = p0["metric"], p0["latency"]
+        lines.append(f"| original | 100.0% | {p0['params_before']:,} | 0 | 0 | "
+                     f"{'' if not m0 else format(m0['before'], '.4g')} |  | "
+                     f"{'' if not l0 else _ms(l0['before_ms'], l0['before_spread_ms'])} |")
     for p in doc["points"]:
         m, lat = p["metric"], p["latency"]
-        after = "" if not m else format(m["after"], ".4f")
+        after = "" if not m else format(m["after"], ".4g")
         delta = "" if not m else fmt_change(m["name"], m["before"], m["after"], m["higher_is_better"])
-        ms = "" if not lat else format(lat["after_ms"], ".3f")
+        ms = "" if not lat else _ms(lat["after_ms"], lat["after_spread_ms"])
         lines.append(f"| `{p['budget']}` | {p['params_ratio_pct']:.1f}% | {p['params_after']:,} | {p['layers_factorized']} | "
                      f"{p['mean_weight_error']:.4f} | {after} | {delta} | {ms} |")
     return "\n".join(lines) + "\n"
@@ -172,10 +188,12 @@ def search_budget(prep: Prepared, keep_within: float, *, steps: int = 7) -> tupl
         except InputError:
             continue
     tried, best = [], None
+    progress = bar(None, prep.config, "budget search", total=steps + 1, unit="budget")
 
     def evaluate(f: float):
         budget = f"params={f:.4f}".rstrip("0").rstrip(".")
         result = realize(prep, budget, latency=False, layer_errors=False)
+        progress.update(1)
         d = drop_of(result.metric)
         tried.append({"budget": budget, "metric": result.metric.after, "drop": d, "within": d <= keep_within})
         return d <= keep_within, budget, result
@@ -194,6 +212,7 @@ def search_budget(prep: Prepared, keep_within: float, *, steps: int = 7) -> tupl
                 hi, best = mid, (budget, result)
             else:
                 lo = mid
+    progress.close()
     record = {"keep_within": keep_within, "unit": POINT_UNITS[prep.metric_name], "evaluations": len(tried),
               "tried": tried, "chosen": best[0] if best else "params=1"}
     return (best[0], record, best[1]) if best else ("params=1", record, None)

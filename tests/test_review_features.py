@@ -203,4 +203,30 @@ def test_sweep_html_renders_in_chromium(tmp_path, demo_sweep):
     out, _, _ = demo_sweep
     shot, probe = _browser(out / "sweep.html", tmp_path)
     assert probe["resources"] == [] and len(probe["svgs"]) == 2  # metric vs params, metric vs latency
+    page = (out / "sweep.html").read_text()
+    assert "<td>original</td>" in page and "held-out top1" in page and "p10-p90" in page  # baseline, named metric
+    assert "| original | 100.0% |" in (out / "sweep.md").read_text()
     assert all(w > 100 and h > 50 for w, h in probe["svgs"])
+
+
+@pytest.mark.skipif(CHROMIUM is None, reason="Chromium is not installed (apt-get install chromium); .ci/run installs it")
+def test_report_html_of_a_hundred_layer_model_stays_navigable(tmp_path):
+    # 100 linear layers: the page draws the 12 largest spectra, folds the per-layer chart away, and
+    # still flags the layers to review
+    import numpy as np
+    import torch
+    from torch import nn
+
+    import factorize_weights as fw
+
+    torch.manual_seed(0)
+    model = nn.Sequential(*[nn.Sequential(nn.Linear(32, 32), nn.Tanh()) for _ in range(100)]).eval()
+    held = fw.HeldOut(np.random.default_rng(0).standard_normal((32, 32)).astype(np.float32), None, "x")
+    fw.compress(model, fw.CompressConfig(budget="params=0.5", quiet=True, latency_repeats=2), heldout=held,
+                out=tmp_path / "run")
+    page = (tmp_path / "run" / "report.html").read_text()
+    assert "The 12 largest layers are plotted" in page and "<details><summary>show the chart</summary>" in page
+    shot, probe = _browser(tmp_path / "run" / "report.html", tmp_path)
+    assert probe["resources"] == [] and len(probe["svgs"]) == 1 + 12
+    sections = {name: rows for name, _, rows in probe["sections"]}
+    assert sections["review"] == 6  # header + the five layers with the largest output error
