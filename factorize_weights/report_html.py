@@ -144,6 +144,31 @@ def _size(n: int) -> str:
     return f"{n / 2**20:.2f} MiB" if n >= 2**20 else f"{n / 2**10:.1f} KiB"
 
 
+def overview_figure(layers: list[dict]) -> str:
+    """All layers at a glance, whatever their number: the share of parameters each keeps (bars, in
+    model order) and its output error where measured (dots, right axis)."""
+    plt = _pyplot()
+    fig, ax = plt.subplots(figsize=(7.5, 2.6))
+    x = np.arange(len(layers))
+    kept = [100 * e["params_after"] / max(e["params_before"], 1) for e in layers]
+    ax.bar(x, kept, width=0.8, color=BLUE, label="parameters kept (%)")
+    ax.set_ylim(0, 105)
+    ax.set_ylabel("parameters kept (%)")
+    ax.set_xlabel("layer (model order)")
+    from matplotlib.ticker import MaxNLocator
+
+    ax.xaxis.set_major_locator(MaxNLocator(integer=True))
+    errs = [(i, e["output_error"]) for i, e in enumerate(layers) if e.get("output_error") is not None and e["rank"]]
+    if errs:
+        bx = ax.twinx()
+        bx.plot([i for i, _ in errs], [v for _, v in errs], ls="none", marker="D", ms=4, color=VERMILLION,
+                label="output error")
+        bx.set_ylabel("output error")
+        bx.spines["right"].set_visible(True)
+    fig.tight_layout()
+    return _svg(fig)
+
+
 def params_figure(layers: list[dict]) -> str:
     """Parameters per layer before and after, horizontal bars (hatched after)."""
     plt = _pyplot()
@@ -206,6 +231,9 @@ def render_report_html(report: dict, spectra: dict) -> str:
     body = ["<h1>Factorization report</h1>", f"<p>{esc(summary_line(report))}.</p>",
             "<section><h2>Summary</h2>", _table(None, rows, "summary"), "</section>"]
     body += _review_sections(report)
+    body += ["<section id=\"overview\"><h2>All layers</h2>", f"<figure>{overview_figure(report['layers'])}"
+             "<figcaption>Blue bars: share of parameters each layer keeps (100%: dense); vermillion diamonds: "
+             "output error of the factorized layers on held-out inputs.</figcaption></figure></section>"]
     many = len(report["layers"]) > 40
     body += ["<section><h2>Parameters per layer</h2>", "<details><summary>show the chart</summary>" if many else "",
              f"<figure>{params_figure(report['layers'])}"

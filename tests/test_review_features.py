@@ -189,7 +189,7 @@ def test_report_html_renders_in_chromium_without_network(tmp_path, capsys):
     assert shot.stat().st_size > 20_000  # a real rendering, not a blank page
     assert probe["resources"] == []  # the page asked for nothing: no network, no files
     layers = json.loads((out / "report.json").read_text())["layers"]
-    assert len(probe["svgs"]) == 1 + len(layers)  # parameters chart + one spectrum figure per layer
+    assert len(probe["svgs"]) == 2 + len(layers)  # overview, parameters chart, one spectrum figure per layer
     assert all(w > 100 and h > 50 for w, h in probe["svgs"])
     # the reviewer's sections are rendered, with rows: the flagged layers and the per-class table
     # (the demo's held-out set has 10 classes: a header row plus one row each)
@@ -227,6 +227,18 @@ def test_report_html_of_a_hundred_layer_model_stays_navigable(tmp_path):
     page = (tmp_path / "run" / "report.html").read_text()
     assert "The 12 largest layers are plotted" in page and "<details><summary>show the chart</summary>" in page
     shot, probe = _browser(tmp_path / "run" / "report.html", tmp_path)
-    assert probe["resources"] == [] and len(probe["svgs"]) == 1 + 12
+    assert probe["resources"] == [] and len(probe["svgs"]) == 2 + 12  # overview + folded chart + 12 spectra
     sections = {name: rows for name, _, rows in probe["sections"]}
     assert sections["review"] == 6  # header + the five layers with the largest output error
+
+
+@pytest.mark.skipif(CHROMIUM is None, reason="Chromium is not installed (apt-get install chromium); .ci/run installs it")
+def test_report_html_shows_the_budget_search(tmp_path, capsys):
+    out = tmp_path / "run"
+    code, _, err = run(capsys, "compress", "--demo", "--keep-within", "0.5", "--out", out, "-q", "--latency-repeats", "0")
+    assert code == 0, err
+    _, probe = _browser(out / "report.html", tmp_path)
+    sections = {name: rows for name, _, rows in probe["sections"]}
+    tried = json.loads((out / "report.json").read_text())["search"]["tried"]
+    assert sections["search"] == 1 + len(tried)  # header + one row per budget tried
+    assert "optimistic" in (out / "report.html").read_text()
