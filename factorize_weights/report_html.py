@@ -309,8 +309,10 @@ def sweep_figure(points: list[dict], x_key: str, x_label: str, *, line: bool = T
             bxerr = [[max(baseline_x - lo, 0.0)], [max(hi - baseline_x, 0.0)]]
         ax.errorbar([baseline_x], [before], xerr=bxerr, color=GREY, marker="D", lw=0, elinewidth=1, capsize=3,
                     label="original")
-    for p, x, y in zip(points, xs, ys):
-        ax.annotate(p["budget"], (x, y), textcoords="offset points", xytext=(5, -11), fontsize=7, clip_on=True)
+    offsets = [(5, -11), (5, 6), (5, -22), (5, 17)]  # staggered, so labels of nearby points do not overprint
+    for i, (p, x, y) in enumerate(zip(points, xs, ys)):
+        ax.annotate(p["budget"], (x, y), textcoords="offset points", xytext=offsets[i % len(offsets)], fontsize=7,
+                    clip_on=True)
     ax.margins(x=0.12, y=0.15)  # room for the labels inside the axes
     ax.set_xlabel(x_label)
     ax.set_ylabel(f"held-out {points[0]['metric']['name']}")
