@@ -205,8 +205,18 @@ def _load_model(args):
             raise InputError(f"--weights is for PyTorch models; the ONNX file {spec} holds its own weights")
         return onnx_backend.load(spec), _run_sources(args, {"model": spec, "format": "onnx",
                                                             "model_sha256": file_sha256(spec)})
+    from pathlib import Path
+
+    if Path(spec).is_dir() and (Path(spec) / "config.json").is_file():  # a Hugging Face-style model folder
+        if args.weights:
+            raise InputError(f"--weights is for a factory; the model folder {spec} holds its own weights")
+        weights = next((str(p) for p in sorted(Path(spec).glob("*.safetensors"))), None)
+        sources = {"model": spec, "format": "torch", "model_sha256": file_sha256(Path(spec) / "config.json"),
+                   "weights": weights, "weights_sha256": file_sha256(weights) if weights else None}
+        return torch_backend.load_pretrained(spec), _run_sources(args, sources)
     if ":" not in spec:
-        raise InputError(f"--model {spec!r}: not an ONNX file and not FILE.py:FACTORY or package.module:FACTORY")
+        raise InputError(f"--model {spec!r}: not an ONNX file, a model folder (config.json), or "
+                         "FILE.py:FACTORY or package.module:FACTORY")
     import warnings
 
     if getattr(args, "weights_key", None) and not args.weights:

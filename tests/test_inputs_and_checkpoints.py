@@ -285,3 +285,32 @@ def test_sigterm_ends_a_real_run_with_one_line(tmp_path):
     assert proc.returncode == 143 and err.strip().splitlines() == [
         "factorize-weights: terminated (SIGTERM); no partial output is left"], err
     assert not (tmp_path / "out").exists() and _leftovers(tmp_path) == []
+
+
+def test_a_hugging_face_model_folder_compresses_end_to_end(tmp_path, capsys):
+    # transformers builds a small BERT from a config (no download); the original model is the oracle
+    transformers = pytest.importorskip("transformers", reason="the optional 'transformers' package is not installed")
+    config = transformers.BertConfig(vocab_size=60, hidden_size=64, num_hidden_layers=2, num_attention_heads=4,
+                                     intermediate_size=128, max_position_embeddings=32)
+    torch.manual_seed(0)
+    transformers.BertModel(config).eval().save_pretrained(str(tmp_path / "bert"))
+    rng = np.random.default_rng(0)
+    for name, n in (("held.npz", 24), ("cal.npz", 48)):
+        ids = rng.integers(0, 60, (n, 10)).astype(np.int64)
+        np.savez(tmp_path / name, input_ids=ids, attention_mask=np.ones_like(ids))
+    code, out, err = run_cli(capsys, "compress", "--model", tmp_path / "bert", "--budget", "params=0.5",
+                             "--heldout", tmp_path / "held.npz", "--calibration", tmp_path / "cal.npz",
+                             "--out", tmp_path / "out", "--json", "-q", "--latency-repeats", "2")
+    assert code == 0, err
+    report = json.loads(out)
+    names = {e["name"] for e in report["layers"]}
+    assert "encoder.layer.0.attention.self.query" in names and report["totals"]["layers_factorized"] >= 4
+    assert report["metric"]["name"] == "cosine" and report["metric"]["after"] > 0.5  # last_hidden_state
+    from factorize_weights.store import load_factorized
+
+    original = transformers.BertModel.from_pretrained(str(tmp_path / "bert"), local_files_only=True).eval()
+    small = load_factorized(original, tmp_path / "out")
+    data = np.load(tmp_path / "held.npz")
+    x = {k: torch.from_numpy(data[k]) for k in ("input_ids", "attention_mask")}
+    with torch.no_grad():
+        assert small(**x).last_hidden_state.shape == (24, 10, 64)

@@ -101,6 +101,29 @@ def build_model(spec: str, weights: str | Path | None = None, *, weights_key: st
     return model.eval()
 
 
+def load_pretrained(folder: str | Path) -> nn.Module:
+    """A Hugging Face-style model folder (``config.json`` plus weights saved by ``save_pretrained``)
+    loaded through ``transformers`` from local files only: the class named in the config's
+    ``architectures`` (so a classifier keeps its head), else ``AutoModel``. Never any network."""
+    import os
+
+    folder = Path(folder)
+    os.environ.setdefault("HF_HUB_OFFLINE", "1")  # local files only, whatever the environment says
+    try:
+        import transformers
+    except ImportError as exc:
+        raise InputError(f"--model {folder}: a Hugging Face model folder needs the optional package 'transformers' "
+                         "(pip install 'factorize-weights[hf]')") from exc
+    try:
+        config = transformers.AutoConfig.from_pretrained(str(folder), local_files_only=True)
+        names = getattr(config, "architectures", None) or []
+        cls = getattr(transformers, names[0], None) if names else None
+        model = (cls or transformers.AutoModel).from_pretrained(str(folder), local_files_only=True)
+    except Exception as exc:
+        raise InputError(f"--model {folder}: not a loadable model folder ({_describe(exc)})") from exc
+    return model.eval()
+
+
 class CheckpointNotice(UserWarning):
     """Something about a checkpoint the user should know (a key unwrapped); the CLI prints it."""
 
