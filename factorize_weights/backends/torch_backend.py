@@ -300,8 +300,14 @@ def discover(
         if isinstance(module, nn.MultiheadAttention):
             records += _attention_projections(name, module)
         kind = next((k for cls, k in _KINDS.items() if type(module) is cls or isinstance(module, cls)), None)
+        transposed = kind is None and _is_transposed_linear(module)
+        if transposed:
+            kind = "linear"
         if kind is None:
             reason = next((r for cls, r in _UNSUPPORTED.items() if isinstance(module, cls)), None)
+            own = module._parameters.get("weight")
+            if reason is None and isinstance(own, torch.Tensor) and own.dim() >= 2 and not isinstance(module, nn.Embedding):
+                reason = f"module type {type(module).__name__} is not a layer kind this tool splits"
             if reason is not None:
                 w = module.weight
                 records.append(
@@ -318,6 +324,9 @@ def discover(
         shape = tuple(int(d) for d in weight.shape)
         m, n = shape[0], int(np.prod(shape[1:]))
         options = {}
+        if transposed:  # y = x @ W + b with W (in, out): the matrix view is W^T
+            m, n = shape[1], shape[0]
+            options = {"transposed": True}
         if kind != "linear":
             options = {
                 "stride": tuple(module.stride),
@@ -332,6 +341,14 @@ def discover(
                                           aliases.get(id(module), [name]), only, skip)
         records.append(record)
     return records
+
+
+def _is_transposed_linear(module: nn.Module) -> bool:
+    """transformers' ``Conv1D`` (GPT-2 style): ``y = x @ W + b`` with W (in, out), checked by its
+    class name and attributes so transformers need not be imported."""
+    w = module._parameters.get("weight")
+    return (type(module).__name__ == "Conv1D" and hasattr(module, "nf") and isinstance(w, torch.Tensor)
+            and w.dim() == 2 and int(w.shape[1]) == int(module.nf))
 
 
 def _attention_projections(name: str, mha: nn.MultiheadAttention) -> list[LayerRecord]:
@@ -358,8 +375,8 @@ def _skip_reason(name, module, record, parent, owners, names, only, skip) -> str
         return f"excluded by --skip {' '.join(repr(p) for p in skip if fnmatch.fnmatchcase(name, p))}"
     if isinstance(parent, nn.MultiheadAttention):
         return "read directly by its parent MultiheadAttention, so replacing it would have no effect"
-    base = next(cls for cls in _KINDS if isinstance(module, cls))
-    if type(module).forward is not base.forward:
+    base = next((cls for cls in _KINDS if isinstance(module, cls)), None)
+    if base is not None and type(module).forward is not base.forward:
         return (f"class {type(module).__name__} overrides forward(); two plain factors would not compute "
                 "what it computes")
     if module._forward_hooks or module._forward_pre_hooks:
@@ -392,6 +409,8 @@ def weight_matrix(record: LayerRecord) -> np.ndarray:
         bad = int((~torch.isfinite(bias)).sum())
         raise ValueError(f"layer {record.name!r}: bias has {bad} NaN or Inf value(s)")
     w = record.handle.weight.detach()
+    if record.options.get("transposed"):
+        w = w.T
     return w.reshape(w.shape[0], -1).to(device="cpu", dtype=torch.float64).numpy()
 
 
@@ -405,7 +424,7 @@ def _factor_pair(module: nn.Module, record: LayerRecord, a: np.ndarray, x: np.nd
     kw = {"device": w.device, "dtype": w.dtype}
     m = record.matrix_shape[0]
     if record.kind == "linear":
-        reduce = nn.Linear(module.in_features, rank, bias=False, **kw)
+        reduce = nn.Linear(record.matrix_shape[1], rank, bias=False, **kw)
         expand = nn.Linear(rank, m, bias=module.bias is not None, **kw)
     else:
         conv = nn.Conv1d if record.kind == "conv1d" else nn.Conv2d
@@ -703,7 +722,19 @@ def timer(model: nn.Module, inputs: np.ndarray, threads: int):
     return run
 
 
-def export_onnx(model: nn.Module, sample: np.ndarray, path, *, opset: int = 17) -> None:
+class _NamedCall(nn.Module):
+    """For export: the model called with named inputs (positional here, so the exporter can name
+    them), reduced to the one output tensor the metrics read (:func:`select_output`)."""
+
+    def __init__(self, model: nn.Module, names: list[str], output: str | None):
+        super().__init__()
+        self.model, self.names, self.output = model, names, output
+
+    def forward(self, *tensors):
+        return select_output(self.model(**dict(zip(self.names, tensors))), self.output)
+
+
+def export_onnx(model: nn.Module, sample: np.ndarray, path, *, opset: int = 17, output: str | None = None) -> None:
     """Write ``model`` as ONNX with a dynamic batch axis (TorchScript-based exporter: it needs
     nothing beyond torch itself)."""
     import warnings
@@ -711,20 +742,27 @@ def export_onnx(model: nn.Module, sample: np.ndarray, path, *, opset: int = 17) 
     x = to_tensor(sample, model)
     with warnings.catch_warnings(), inference(model):
         warnings.simplefilter("ignore")
-        if isinstance(x, dict):  # inputs by name: the graph inputs take the forward's parameter names
+        if isinstance(x, dict):  # inputs by name: the graph inputs take the array names
             if any(k.isdigit() for k in x):
                 raise InputError("--export-onnx: inputs given by position (a data callable's tuples) cannot be "
                                  "named in the ONNX graph; yield dicts keyed by the forward's parameter names")
-            import inspect
-
-            order = list(inspect.signature(model.forward).parameters)
-            x = dict(sorted(x.items(), key=lambda kv: order.index(kv[0]) if kv[0] in order else len(order)))
-            torch.onnx.export(model, (), str(path), kwargs=x, dynamo=False, opset_version=opset,
-                              input_names=list(x), dynamic_axes={k: {0: "batch"} for k in x})
+            names = list(x)
+            _export(_NamedCall(model, names, output), tuple(x[k] for k in names), path, opset, names, output="output")
             return
-        torch.onnx.export(model, (x,), str(path), dynamo=False, input_names=["input"],
-                          output_names=["output"], opset_version=opset,
-                          dynamic_axes={"input": {0: "batch"}, "output": {0: "batch"}})
+        _export(model, (x,), path, opset, ["input"], output="output")
+
+
+def _export(model: nn.Module, args: tuple, path, opset: int, names: list[str], output: str | None = None) -> None:
+    """torch.onnx.export (TorchScript-based) with PyTorch's fused attention path off: its eval-mode
+    kernel (aten::_native_multi_head_attention) has no ONNX form, the regular path does."""
+    fast = torch.backends.mha.get_fastpath_enabled()
+    torch.backends.mha.set_fastpath_enabled(False)
+    try:
+        torch.onnx.export(model, args, str(path), dynamo=False, input_names=names, opset_version=opset,
+                          output_names=[output] if output else None,
+                          dynamic_axes={**{k: {0: "batch"} for k in names}, **({output: {0: "batch"}} if output else {})})
+    finally:
+        torch.backends.mha.set_fastpath_enabled(fast)
 
 
 # ---------------------------------------------------------------- calibration inputs
