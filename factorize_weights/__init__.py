@@ -14,8 +14,11 @@ import importlib
 
 from ._version import __version__
 
+# names that are also submodules are bound now (numpy only, no torch): importing the submodule later
+# would otherwise leave the module object where the function belongs
+from .allocate import Plan, allocate  # noqa: E402
+
 _EXPORTS = {
-    "Plan": "allocate", "allocate": "allocate",
     "FactorPair": "backends.torch_backend", "build_model": "backends.torch_backend",
     "discover": "backends.torch_backend",
     "Budget": "budget", "parse_budget": "budget",
@@ -33,7 +36,7 @@ _EXPORTS = {
     "search_budget": "sweep",
 }
 
-__all__ = ["__version__", *sorted(_EXPORTS)]
+__all__ = ["__version__", "Plan", "allocate", *sorted(_EXPORTS)]
 
 
 def __getattr__(name: str):

@@ -275,3 +275,15 @@ def test_left_gram_whitened_factors_equal_the_cholesky_route(shape):
         a, f = dec.factors(k)
         ca, cf = whitened_factors(w, whitening(g), k)
         np.testing.assert_allclose(a @ f, ca @ cf, rtol=1e-7, atol=1e-9)
+
+
+def test_public_names_stay_functions_after_their_modules_are_imported():
+    # a package attribute named like a submodule (allocate.py) must stay the function the README uses
+    import subprocess
+    import sys
+
+    code = ("import factorize_weights.pipeline, factorize_weights.allocate, sys, factorize_weights as fw; "
+            "assert callable(fw.allocate) and fw.allocate.__module__ == 'factorize_weights.allocate'; "
+            "import factorize_weights.spectra; print('torch' in sys.modules)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip() == "False"  # and the numeric core, pipeline included, did not import torch
