@@ -164,8 +164,9 @@ class Whitened:
         vals, u = np.maximum(vals[::-1], 0.0), vecs[:, ::-1]
         s = np.sqrt(vals)
         u, _ = flip_signs(u, u.T)
-        safe = np.maximum(s[:top], np.finfo(np.float64).tiny ** 0.5)
-        right = (u[:, :top].T @ matrix) / safe[:, None]  # (t, n): diag(1/s) U^T W
+        small = s[:top] <= np.finfo(np.float64).eps * max(m, n) * (s[0] if len(s) else 0.0)
+        right = (u[:, :top].T @ matrix) / np.where(small, 1.0, s[:top])[:, None]  # (t, n): diag(1/s) U^T W
+        right[small] = 0.0  # no energy in that direction: nothing to divide
         keep = _store_dtype(dtype)
         spectrum = Spectrum(name, (m, n), s, float(np.sum(vals)), "exact")
         extra = {"whitening": {"method": "left-gram", "floor": 0.0, "clamped": 0}}

@@ -135,13 +135,18 @@ def gram_svd(a: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     vals, vecs = np.linalg.eigh(g)  # ascending
     vals, vecs = np.maximum(vals[::-1], 0.0), vecs[:, ::-1]
     s = np.sqrt(vals)
-    safe = np.maximum(s, np.finfo(np.float64).tiny ** 0.5)  # an exactly zero value: its column is ~0 anyway
+    # directions with (numerically) no energy: their other singular vector is set to zero instead of
+    # dividing rounding noise by ~0 (which overflows in float32); the truncation stays a projection
+    small = s <= np.finfo(np.float64).eps * max(m, n) * (s[0] if len(s) else 0.0)
+    safe = np.where(small, 1.0, s)
     if tall:
         v = vecs
         u = (a @ v) / safe
+        u[:, small] = 0.0
     else:
         u = vecs
         v = (a.T @ u) / safe
+        v[:, small] = 0.0
     u, vt = flip_signs(u, v.T)
     return u, s, vt
 

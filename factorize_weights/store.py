@@ -108,7 +108,12 @@ def atomic_folder(out: Path, force: bool = True):
         if out.exists():
             trash = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=out.resolve().parent))
             os.replace(out, trash / "old")
-            os.replace(tmp, out)
+            try:
+                os.replace(tmp, out)
+            except BaseException:
+                os.replace(trash / "old", out)  # the previous result goes back where it was
+                shutil.rmtree(trash, ignore_errors=True)
+                raise
             shutil.rmtree(trash, ignore_errors=True)
         else:
             os.replace(tmp, out)

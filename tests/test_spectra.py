@@ -150,3 +150,17 @@ def test_gram_svd_matches_lapack_svd_and_eckart_young(shape):
     for k in (1, 7, min(m, n) // 2):
         err = np.linalg.norm(a - (u[:, :k] * s[:k]) @ vt[:k])
         assert err == pytest.approx(np.sqrt(np.sum(values[k:] ** 2)), rel=1e-9)
+
+
+def test_rank_deficient_matrices_give_finite_exact_factors_at_any_kept_rank():
+    # a rank-3 matrix factorized past its rank: Eckart-Young says the error is 0 from rank 3 on, and
+    # no factor may hold Inf or NaN (float32 storage of rounding noise divided by ~0 once did)
+    from factorize_weights.methods import PlainSvd
+
+    a = planted(64, 48, [5.0, 2.0, 1.0], seed=4)
+    dec = PlainSvd("exact").decompose("w", a, dtype="float32")
+    for k in (1, 3, 10, len(dec.values)):
+        fa, fx = dec.factors(k)
+        assert np.all(np.isfinite(fa)) and np.all(np.isfinite(fx))
+        expected = 0.0 if k >= 3 else np.sqrt(np.sum(np.array([5.0, 2.0, 1.0])[k:] ** 2))
+        assert np.linalg.norm(a - fa @ fx) == pytest.approx(expected, abs=1e-5 * np.linalg.norm(a))

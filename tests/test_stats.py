@@ -287,3 +287,54 @@ def test_public_names_stay_functions_after_their_modules_are_imported():
             "import factorize_weights.spectra; print('torch' in sys.modules)")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
     assert out.strip() == "False"  # and the numeric core, pipeline included, did not import torch
+
+
+class _InPlace(nn.Module):
+    """A block that scales its input in place before using it."""
+
+    def __init__(self):
+        super().__init__()
+        self.up, self.down = nn.Linear(6, 12), nn.Linear(12, 6)
+
+    def forward(self, x):
+        x.mul_(0.5)
+        return x + self.down(torch.relu(self.up(x)))
+
+
+def test_chain_cache_survives_blocks_that_change_their_input_in_place():
+    # whole-model passes (checked against numpy above) as the oracle for the cached ones
+    torch.manual_seed(6)
+    model = nn.Sequential(nn.Linear(5, 6), nn.Sequential(*[_InPlace() for _ in range(3)]), nn.Linear(6, 2)).eval()
+    records = tb.discover(model)
+    batches = [torch.randn(12, 5).numpy()]
+    tb.call_stages(model, records, batches[0])
+    working = tb.rewrite(model, records, {})
+    runs = tb.paired_runs(model, working, records, batches)
+    by = {r.name: r for r in records}
+    for names in (["1.0.up"], ["1.0.down"], ["1.1.up"], ["1.2.down"]):
+        recs = [by[n] for n in names]
+        cached = {n: CrossMoments(by[n].matrix_shape[1]) for n in names}
+        runs.stream(recs, lambda name, a, b: cached[name].add(a, b))
+        direct = {n: CrossMoments(by[n].matrix_shape[1]) for n in names}
+        tb.stream_paired_inputs(model, working, recs, batches, lambda name, a, b: direct[name].add(a, b))
+        for n in names:
+            np.testing.assert_allclose(cached[n].cross, direct[n].cross, rtol=1e-5, atol=1e-6)
+    assert runs.blocks  # the chain was used, not bypassed
+
+
+def test_blocks_fed_a_changing_cache_object_are_not_replayed():
+    # transformers' GPT-2 hands every block a key/value cache that changes as it runs: replaying a
+    # block with it is wrong, so the refit must use whole-model passes (and not crash with a mask)
+    transformers = pytest.importorskip("transformers", reason="the optional 'transformers' package is not installed")
+    from factorize_weights import CompressConfig, HeldOut, compress
+
+    torch.manual_seed(0)
+    cfg = transformers.GPT2Config(vocab_size=60, n_embd=32, n_layer=3, n_head=4, n_positions=32)
+    model = transformers.GPT2Model(cfg).eval()
+    ids = np.random.default_rng(0).integers(0, 60, (24, 8)).astype(np.int64)
+    data = {"input_ids": ids, "attention_mask": np.ones_like(ids)}
+    assert tb.find_chain(model, tb.discover(model), {k: v[:1] for k, v in data.items()}) is None
+    held = {"input_ids": ids[:8], "attention_mask": np.ones_like(ids[:8])}
+    result = compress(model, CompressConfig(budget="params=0.5", quiet=True, latency_repeats=0, sequential_groups=2),
+                      heldout=HeldOut(held, None, "held"), calibration=HeldOut(data, None, "cal"))
+    assert result.report["sequential"] and result.metric.after > 0.5

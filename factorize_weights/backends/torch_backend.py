@@ -902,6 +902,16 @@ def paired_runs(original: nn.Module, current: nn.Module, records: list[LayerReco
     return PairedRuns(original, current, records, batches)
 
 
+def _stateless(value) -> bool:
+    """Arguments a block may be replayed with: tensors, plain values, and tuples of them. A cache
+    object (transformers' key/value caches) changes at every call, so replaying it is wrong."""
+    if value is None or isinstance(value, (torch.Tensor, bool, int, float, str)):
+        return True
+    if isinstance(value, (tuple, list)):
+        return all(_stateless(v) for v in value)
+    return False
+
+
 def find_chain(model: nn.Module, records: list[LayerRecord], sample) -> tuple[list[str], dict[str, int]] | None:
     """The chain of blocks holding most of the records, if the model has one: the children of one
     ``nn.Sequential`` or ``nn.ModuleList``, each called once per forward pass, each fed the hidden
@@ -947,7 +957,8 @@ def find_chain(model: nn.Module, records: list[LayerRecord], sample) -> tuple[li
         args, kwargs, _ = seen[i][0]
         prev_out = seen[i - 1][0][2]
         same_extra = len(args) == len(first_args) and all(x is y for x, y in zip(args[1:], first_args[1:])) \
-            and kwargs.keys() == first_kwargs.keys() and all(kwargs[k] is first_kwargs[k] for k in kwargs)
+            and kwargs.keys() == first_kwargs.keys() and all(kwargs[k] is first_kwargs[k] for k in kwargs) \
+            and all(_stateless(x) for x in list(args[1:]) + list(kwargs.values()))
         if not args or args[0] is not prev_out or not same_extra:
             return None
     return blocks, inside["owned"]
@@ -991,6 +1002,7 @@ class PairedRuns:
 
     @staticmethod
     def _run(span, which, h, args, kwargs):
+        h = h.clone()  # a block may change its input in place; the cached copy must stay as it was
         for pair in span:
             h = _hidden(pair[which](h, *args, **kwargs))
         return h
