@@ -236,12 +236,20 @@ def test_chain_cached_passes_equal_whole_model_passes():
     assert chain is not None and chain[0] == ["blocks.0", "blocks.1", "blocks.2"]
     assert chain[1] == {"blocks.0.up": 0, "blocks.0.down": 0, "blocks.1.up": 1, "blocks.1.down": 1,
                         "blocks.2.up": 2, "blocks.2.down": 2}
+    runs = _cached_against_whole_model(
+        model, records, batches, (["embed"], ["blocks.0.up"], ["blocks.1.up"], ["blocks.1.down", "blocks.2.up"], ["head"]))
+    assert runs.at == 1  # the cache moved through the chain instead of rerunning the model
+
+
+def _cached_against_whole_model(model, records, batches, groups):
+    """Paired moments of each group from the chain cache equal those of whole-model passes; each
+    group is then patched in place with random rank-2 factors, as a refit does."""
     tb.call_stages(model, records, batches[0])
     by = {r.name: r for r in records}
     working = tb.rewrite(model, records, {})
     runs = tb.paired_runs(model, working, records, batches)
     rng = np.random.default_rng(0)
-    for names in (["embed"], ["blocks.0.up"], ["blocks.1.up"], ["blocks.1.down", "blocks.2.up"], ["head"]):
+    for names in groups:
         recs = [by[n] for n in names]
         cached = {n: CrossMoments(by[n].matrix_shape[1]) for n in names}
         runs.stream(recs, lambda name, a, b: cached[name].add(a, b))
@@ -250,11 +258,10 @@ def test_chain_cached_passes_equal_whole_model_passes():
         for n in names:
             np.testing.assert_allclose(cached[n].cross, direct[n].cross, rtol=1e-5, atol=1e-6)
             np.testing.assert_allclose(cached[n].gram, direct[n].gram, rtol=1e-5, atol=1e-6)
-        # patch the group in place, as a refit does, so later groups see it
         m, n_in = by[names[0]].matrix_shape
         tb.rewrite(working, records, {names[0]: (rng.standard_normal((m, 2)), rng.standard_normal((2, n_in)))},
                    in_place=True)
-    assert runs.at == 1  # the cache moved through the chain instead of rerunning the model
+    return runs
 
 
 @pytest.mark.parametrize("shape", [(12, 30), (20, 20)])
@@ -307,18 +314,7 @@ def test_chain_cache_survives_blocks_that_change_their_input_in_place():
     model = nn.Sequential(nn.Linear(5, 6), nn.Sequential(*[_InPlace() for _ in range(3)]), nn.Linear(6, 2)).eval()
     records = tb.discover(model)
     batches = [torch.randn(12, 5).numpy()]
-    tb.call_stages(model, records, batches[0])
-    working = tb.rewrite(model, records, {})
-    runs = tb.paired_runs(model, working, records, batches)
-    by = {r.name: r for r in records}
-    for names in (["1.0.up"], ["1.0.down"], ["1.1.up"], ["1.2.down"]):
-        recs = [by[n] for n in names]
-        cached = {n: CrossMoments(by[n].matrix_shape[1]) for n in names}
-        runs.stream(recs, lambda name, a, b: cached[name].add(a, b))
-        direct = {n: CrossMoments(by[n].matrix_shape[1]) for n in names}
-        tb.stream_paired_inputs(model, working, recs, batches, lambda name, a, b: direct[name].add(a, b))
-        for n in names:
-            np.testing.assert_allclose(cached[n].cross, direct[n].cross, rtol=1e-5, atol=1e-6)
+    runs = _cached_against_whole_model(model, records, batches, (["1.0.up"], ["1.0.down"], ["1.1.up"], ["1.2.down"]))
     assert runs.blocks  # the chain was used, not bypassed
 
 
