@@ -98,10 +98,15 @@ def input_moments(backend, model, records: list[LayerRecord], batches) -> tuple[
     return acc, samples
 
 
-def paired_moments(backend, original, current, records: list[LayerRecord], batches) -> dict[str, CrossMoments]:
-    """``C = sum x x'^T`` and ``G' = sum x' x'^T`` per record (one pass of each model)."""
+def paired_moments(backend, original, current, records: list[LayerRecord], batches, runs=None) -> dict[str, CrossMoments]:
+    """``C = sum x x'^T`` and ``G' = sum x' x'^T`` per record (one pass of each model, or of the
+    blocks that hold them when ``runs``, a backend's paired runner, is given)."""
     acc = {r.name: CrossMoments(r.matrix_shape[1]) for r in records}
-    backend.stream_paired_inputs(original, current, records, batches, lambda name, x, y: acc[name].add(x, y))
+    sink = lambda name, x, y: acc[name].add(x, y)  # noqa: E731
+    if runs is not None:
+        runs.stream(records, sink)
+    else:
+        backend.stream_paired_inputs(original, current, records, batches, sink)
     return acc
 
 
@@ -176,9 +181,7 @@ def sequential_refit(model, records: list[LayerRecord], ranks: dict, cal: Calibr
     batches = [x for x, _ in cal.data.batches(cal.batch_size)]
     runs = backend.paired_runs(model, working, [by_name[n] for g in groups for n in g], batches)
     for group in bar(groups, config, "sequential refit", unit="group"):
-        recs = [by_name[n] for n in group]
-        acc = {r.name: CrossMoments(r.matrix_shape[1]) for r in recs}
-        runs.stream(recs, lambda name, x, y: acc[name].add(x, y))
+        acc = paired_moments(backend, model, working, [by_name[n] for n in group], batches, runs)
         done = {}
         for name in group:
             st = acc.pop(name)

@@ -70,10 +70,6 @@ class Whitening:
         q = self.s / self._root  # S^{-T} = Q diag(1/r)
         return (np.asarray(y) @ q) / self._root
 
-    @property
-    def s_inv(self) -> np.ndarray:
-        """S^{-1} (n, n), formed on request (tests, small problems)."""
-        return self.right_inverse(np.eye(self.s.shape[0]))
 
 
 def whitening(gram: np.ndarray, *, floor: float = FLOOR) -> Whitening:
@@ -132,7 +128,3 @@ def regression_product(matrix: np.ndarray, cross: np.ndarray, gram_new: Whitenin
     since G'^{-1} S' = S'^{-T}, M S' = W C S'^{-T}, formed without any inverse."""
     return gram_new.right_inverse_transposed(np.asarray(matrix, dtype=np.float64) @ cross)
 
-
-def regression_target(matrix: np.ndarray, cross: np.ndarray, gram_new: Whitening) -> np.ndarray:
-    """M = W C G'^{-1} (reduced-rank regression), for callers that want M itself."""
-    return gram_new.right_inverse(regression_product(matrix, cross, gram_new))

@@ -349,6 +349,12 @@ def rewrite(model: OnnxModel, records, factors: dict[str, tuple[np.ndarray, np.n
     if in_place:
         return _refill(model, records, factors)
     proto = copy.deepcopy(model.proto)
+    pairs = _split_into(proto, records, factors)
+    return OnnxModel(proto, None, model.external_data, pairs)
+
+
+def _split_into(proto, records, factors) -> dict:
+    """Replace, in ``proto`` itself, each node in ``factors`` by its two factor nodes; the pairs made."""
     graph = proto.graph
     by_name = {r.name: r for r in records}
     names = _Names(graph)
@@ -375,16 +381,15 @@ def rewrite(model: OnnxModel, records, factors: dict[str, tuple[np.ndarray, np.n
     kept = [t for t in graph.initializer if t.name not in dropped]
     del graph.initializer[:]
     graph.initializer.extend(kept + new_inits)
-    return OnnxModel(proto, None, model.external_data, pairs)
+    return pairs
 
 
 def _refill(model: OnnxModel, records, factors) -> OnnxModel:
     """In place: nodes not split yet are split (the graph is rebuilt into ``model``); pairs
     already split get their initializers overwritten with new factors of the same ranks."""
     new = {n: f for n, f in factors.items() if n not in model.pairs}
-    if new:
-        rebuilt = rewrite(model, records, new)
-        model.proto, model.pairs = rebuilt.proto, {**model.pairs, **rebuilt.pairs}
+    if new:  # split in the working copy itself: no copy of the whole graph per group
+        model.pairs.update(_split_into(model.proto, records, new))
         factors = {n: f for n, f in factors.items() if n not in new}
     by_name = {r.name: r for r in records}
     inits = {t.name: t for t in model.graph.initializer}
