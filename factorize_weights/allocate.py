@@ -84,7 +84,7 @@ def _fixed_cost(record: LayerRecord, units: str) -> int:
     return record.bias_params if units == "params" else 0
 
 
-def _options(record, spectrum, units, rank_step, min_rank):
+def _options(record, spectrum, units, rank_step, min_rank, effect=None, objective="error-sum"):
     """(ranks, costs, errors) for one layer; the last option (rank -1) is "stay dense"."""
     m, n = record.matrix_shape
     w = _cost_weight(record, units)
@@ -92,6 +92,10 @@ def _options(record, spectrum, units, rank_step, min_rank):
     if spectrum is not None:
         ranks = ranks[ranks <= spectrum.max_rank]
         errors = 1.0 - np.asarray(spectrum.energy_fraction(ranks), dtype=float)
+        if effect is not None:  # what reaches the model's output, not the layer's own error
+            errors = effect.curve(ranks, errors)
+        elif objective == "energy-product":  # -log of the kept fraction: sums to -log of the product
+            errors = -np.log(np.maximum(1.0 - errors, 1e-12))
     else:
         errors = np.zeros(len(ranks))
     costs = np.concatenate([ranks * (m + n) * w, [m * n * w]]).astype(float)
@@ -143,6 +147,8 @@ def allocate(
     *,
     rank_step: int = 1,
     min_rank: int = 1,
+    effects: list | None = None,
+    objective: str = "error-sum",
 ) -> Plan:
     """Choose a rank (or dense) for every record so the selected layers meet ``budget``.
 
@@ -154,6 +160,14 @@ def allocate(
         Every rank is a multiple of this (8 or 16 suits SIMD kernels; common practice).
     min_rank : int
         No layer is factorized below this rank.
+    effects : list of effects.Effect or None, optional
+        Each layer's measured effect on the model output: the allocator then minimises the summed
+        estimated output error instead of the layers' own errors.
+    objective : str
+        Without effects: ``"error-sum"`` minimises the summed normalized errors e_l;
+        ``"energy-product"`` minimises the summed -log(1 - e_l), i.e. keeps the most of the product
+        of kept energy fractions. Both agree for small errors; the product refuses to crush one
+        layer (e_l -> 1 costs without bound) to spare a little in many.
 
     Returns
     -------
@@ -166,7 +180,8 @@ def allocate(
             f"--rank-step and --min-rank must be at least 1; got {rank_step}, {min_rank}"
         )
     units = units_of(budget)
-    menus = [_options(r, s, units, rank_step, min_rank) for r, s in zip(records, spectra)]
+    effects = effects if effects is not None else [None] * len(records)
+    menus = [_options(r, s, units, rank_step, min_rank, e, objective) for r, s, e in zip(records, spectra, effects)]
     fixed = sum(_fixed_cost(r, units) for r in records)
     if budget.is_global:
         check_feasible(records, budget, rank_step=rank_step, min_rank=min_rank)

@@ -24,7 +24,7 @@ from .backends import backend_for
 from .config import CompressConfig
 from .data import HeldOut
 from .errors import InputError
-from .methods import Whitened
+from .methods import Whitened, unscale_rows
 from .progress import bar
 from .records import LayerRecord
 from .stats import CrossMoments, Moments, ridge, weight_error
@@ -190,7 +190,13 @@ def sequential_refit(model, records: list[LayerRecord], ranks: dict, cal: Calibr
             w = backend.weight_matrix(by_name[name])
             product = regression_product(w, ridge(st.cross, config.ridge, st.gram), wh_new)  # M S'
             del st
-            dec = Whitened.decompose_product(name, product, wh_new, dtype=by_name[name].dtype)
+            record = by_name[name]
+            if record.row_scale is None:
+                dec = Whitened.decompose_product(name, product, wh_new, dtype=record.dtype)
+            else:  # the error after the BatchNorm that reads this layer (methods.row_weighted)
+                d = np.maximum(record.row_scale, 1e-6 * float(np.max(record.row_scale)))
+                dec = unscale_rows(Whitened.decompose_product(name, product * d[:, None], wh_new, dtype=record.dtype),
+                                   d, record.scaled_by)
             a, x = done[name] = dec.factors(ranks[name], config.split)
             errors[name] = weight_error(w, a, x)
             fits[name] = {"method": wh_new.method, "ridge": config.ridge, "floor": wh_new.floor}

@@ -13,7 +13,7 @@ import sys
 import traceback
 
 from ._version import __version__
-from .config import METHODS, CompressConfig
+from .config import ALLOCATIONS, METHODS, CompressConfig
 from .errors import InputError
 from .factors import SPLITS
 from .metrics import METRICS
@@ -96,6 +96,13 @@ def _plan_options(p: argparse.ArgumentParser, *, sweep: bool = False) -> None:
     g.add_argument("--sequential-groups", type=int, default=_DEFAULTS.sequential_groups, metavar="N",
                    help=f"most passes of a sequential refit: layers are refitted in N groups in forward order "
                         f"(default {_DEFAULTS.sequential_groups}; one group per layer is exact layer by layer)")
+    g.add_argument("--allocation", choices=ALLOCATIONS, default=_DEFAULTS.allocation,
+                   help="output: share ranks by each layer's measured effect on the model's output (PyTorch, needs "
+                        "--calibration); energy-product: keep the most of the product of the layers' kept energy; "
+                        "error-sum: least summed layer error (the earlier default); auto: output when it can, "
+                        "else energy-product")
+    g.add_argument("--effect-samples", type=int, default=_DEFAULTS.effect_samples, metavar="N",
+                   help=f"calibration samples the output-effect probes run on (default {_DEFAULTS.effect_samples})")
     g.add_argument("--recover", type=int, default=_DEFAULTS.recover, metavar="STEPS",
                    help="PyTorch: fine-tune only the factors for up to STEPS steps on the calibration inputs")
     g.add_argument("--recover-lr", type=float, default=_DEFAULTS.recover_lr, metavar="LR", help=f"recovery learning rate (default {_DEFAULTS.recover_lr:g})")
@@ -284,7 +291,8 @@ def _plan_config(args, budget: str) -> CompressConfig:
                    latency_repeats=args.latency_repeats, latency_warmup=args.latency_warmup,
                    export_onnx=getattr(args, "export_onnx", False), int8=getattr(args, "int8", False),
                    sequential=args.sequential, sequential_groups=args.sequential_groups, recover=args.recover, recover_lr=args.recover_lr,
-                   allow_overlap=args.allow_overlap, ridge=args.ridge)
+                   allow_overlap=args.allow_overlap, ridge=args.ridge, allocation=args.allocation,
+                   effect_samples=args.effect_samples)
 
 
 def _calibration(args):
@@ -352,7 +360,7 @@ def cmd_compress(args) -> int:
     selection = load_heldout(args.selection, flag="--selection") if args.selection else None
     result = compress(model, config, heldout=heldout, out=args.out, force=args.force, sources=sources,
                       calibration=calibration, keep_within=args.keep_within, selection=selection)
-    for warning in (result.report.get("calibration") or {}).get("warnings", []):
+    for warning in (result.report.get("calibration") or {}).get("warnings", []) + result.report.get("warnings", []):
         _warn(warning)
     _verbose(args, result.report)
     if args.json:

@@ -11,6 +11,7 @@ from .metrics import METRICS
 from .spectra import SVD_METHODS
 
 METHODS = ("auto", "svd", "whitened", "columns")
+ALLOCATIONS = ("auto", "output", "energy-product", "error-sum")
 
 
 @dataclass
@@ -45,6 +46,13 @@ class CompressConfig:
     # most passes a sequential refit makes (groups of consecutive layers, fitted in forward order);
     # one per layer is the exact layer-by-layer refit
     sequential_groups: int = 64
+    # how ranks are shared out (allocate.py): "output" measures each layer's effect on the model's
+    # output on calibration data (effects.py); "energy-product" keeps the most of the product of the
+    # layers' kept energy fractions (no layer is crushed to save a little elsewhere); "error-sum"
+    # minimises the sum of the layers' own normalized errors (the earlier default). "auto" is
+    # "output" with calibration data and a PyTorch model, else "energy-product"
+    allocation: str = "auto"
+    effect_samples: int = 32  # calibration samples the output-effect probes run on
     recover: int = 0  # fine-tuning steps of the factors after factorization (needs calibration); 0: off
     recover_lr: float = 1e-4  # 1e-3 overshot on whitened factors (validation loss rose at once; measured)
     # ridge on the calibration moments, relative to their mean diagonal: 1% (common practice) kept
@@ -63,7 +71,7 @@ class CompressConfig:
 
     def validate(self) -> None:
         """Raise :class:`InputError` naming the field, the allowed values and the value given."""
-        choices = {"method": METHODS, "svd": SVD_METHODS, "split": SPLITS}
+        choices = {"method": METHODS, "svd": SVD_METHODS, "split": SPLITS, "allocation": ALLOCATIONS}
         for name, allowed in choices.items():
             value = getattr(self, name)
             if value not in allowed:
@@ -74,7 +82,7 @@ class CompressConfig:
             raise InputError(f"--ridge must be in [0, 1); got {self.ridge!r}")
         if not (isinstance(self.recover_lr, (int, float)) and 0 < self.recover_lr < 1):
             raise InputError(f"--recover-lr must be in (0, 1); got {self.recover_lr!r}")
-        minimum = {"recover": 0, "sequential_groups": 1, "rank_step": 1, "min_rank": 1, "batch_size": 1, "oversampling": 0,
+        minimum = {"recover": 0, "effect_samples": 1, "sequential_groups": 1, "rank_step": 1, "min_rank": 1, "batch_size": 1, "oversampling": 0,
                    "power_iterations": 0, "error_samples": 0, "seed": 0, "latency_batch": 1,
                    "latency_threads": 1, "latency_warmup": 0, "latency_repeats": 0}
         for name, low in minimum.items():
@@ -101,6 +109,12 @@ class CompressConfig:
 
     def resolved_sequential(self, method: str) -> bool:
         return (method == "whitened") if self.sequential is None else bool(self.sequential)
+
+    def resolved_allocation(self, calibrated: bool, backend_format: str) -> str:
+        """``auto`` becomes ``output`` with calibration data on a PyTorch model, else ``energy-product``."""
+        if self.allocation == "auto":
+            return "output" if calibrated and backend_format == "torch" else "energy-product"
+        return self.allocation
 
     def resolved_method(self, calibrated: bool) -> str:
         """``auto`` becomes ``whitened`` with calibration data and ``svd`` without."""

@@ -206,6 +206,27 @@ class Columns:
         return ColumnDecomposition(column_spectrum(name, matrix, top), matrix.astype(_store_dtype(dtype)))
 
 
+def row_weighted(method, name: str, matrix: np.ndarray, scale, *, dtype: str = "float32", moments=None,
+                 scaled_by: str | None = None):
+    """Decompose ``diag(d) W`` and map it back, ``A = diag(1/d) U_k ...``: the truncation then minimises
+    the error after a per-row scale ``d`` (an eval-mode BatchNorm's ``|gamma|/sqrt(var+eps)`` that
+    reads the layer's output), with the same factor shapes and no extra cost. Rows that BatchNorm
+    scales to nothing get a floor of 1e-6 of the largest scale, so the map back stays finite.
+    ``scale=None`` (or a method that keeps actual columns) decomposes ``W`` itself."""
+    if scale is None or not isinstance(method, (PlainSvd, Whitened)):
+        return method.decompose(name, matrix, dtype=dtype, moments=moments)
+    d = np.asarray(scale, dtype=np.float64)
+    d = np.maximum(d, 1e-6 * float(d.max()) if d.size and d.max() > 0 else 1.0)
+    dec = method.decompose(name, checked_matrix(name, matrix) * d[:, None], dtype=dtype, moments=moments)
+    return unscale_rows(dec, d, scaled_by)
+
+
+def unscale_rows(dec: Decomposition, d: np.ndarray, scaled_by: str | None) -> Decomposition:
+    dec.left = np.ascontiguousarray(dec.left / d[:, None].astype(dec.left.dtype), dtype=dec.left.dtype)
+    dec.extra["row_weights"] = scaled_by or "given"
+    return dec
+
+
 METHODS = {"svd": PlainSvd, "whitened": Whitened, "columns": Columns}
 
 

@@ -15,6 +15,7 @@ from pathlib import Path
 import numpy as np
 
 from . import latency as latency_mod
+from . import effects as effects_mod
 from . import methods
 from . import report as report_mod
 from .allocate import Plan, allocate, check_feasible
@@ -75,7 +76,8 @@ def decompose(records: list[LayerRecord], method, config: CompressConfig, calibr
     for record in bar(selected(records), config, f"{method.name} decomposition"):
         moments = calibration.release(record.name) if calibration is not None else None
         try:
-            out[record.name] = method.decompose(record.name, _weight(record), dtype=record.dtype, moments=moments)
+            out[record.name] = methods.row_weighted(method, record.name, _weight(record), record.row_scale,
+                                                    dtype=record.dtype, moments=moments, scaled_by=record.scaled_by)
         except ValueError as exc:  # NaN/Inf in a weight is the user's model, not our bug
             raise InputError(str(exc)) from exc
     return out
@@ -200,6 +202,8 @@ class Prepared:
     timings: dict = field(default_factory=dict)
     batch_size: int = 256
     order: list = field(default_factory=list)  # selected layer names in forward order, in stages
+    effects: dict = field(default_factory=dict)  # {name: effects.Effect} when allocating by output effect
+    allocation: str = "error-sum"  # the resolved config.allocation
 
     @property
     def backend(self):
@@ -235,7 +239,8 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
     _check_overlap(heldout, calibration, config.allow_overlap)
     records = backend.discover(model, only=config.only, skip=config.skip)
     chosen = selected(records)
-    if not chosen:
+    checkable = heldout is not None or calibration is not None  # overridden forward()s are checked on data
+    if not chosen and not (checkable and any(r.skip_reason and "overrides forward()" in r.skip_reason for r in records)):
         found = f"{len(records)} layer(s) found, all skipped" if records else "no linear or convolution layers found"
         where = f"{model_source}: " if model_source else ""
         raise InputError(f"{where}nothing to factorize: {found}")
@@ -253,6 +258,16 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
     sample = heldout if heldout is not None else calibration
     if sample is not None:  # one sample tells each layer's output positions (FLOPs) and memory
         size = batch_size_for(config, backend.measure_positions(model, records, sample.inputs))
+        admitted = [r for r in selected(records) if r not in chosen]  # overridden forward()s that matched
+        for record in admitted:
+            try:
+                checked_matrix(record.name, backend.weight_matrix(record))
+            except ValueError as exc:
+                raise InputError(str(exc)) from exc
+        chosen = selected(records)
+        if not chosen:
+            where = f"{model_source}: " if model_source else ""
+            raise InputError(f"{where}nothing to factorize: {len(records)} layer(s) found, all skipped")
     for budget in parsed:
         check_feasible(chosen, budget, rank_step=config.rank_step, min_rank=config.min_rank)
     sequential = config.resolved_sequential(method)
@@ -267,19 +282,53 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
     decompositions = decompose(records, methods.make(method, config), config,
                                cal if method == "whitened" else None)
     timings["decompose"] = time.perf_counter() - t1
+    effects = {}
+    allocation = config.resolved_allocation(calibration is not None, backend.FORMAT)
+    if allocation == "output":
+        if calibration is None:
+            raise InputError("--allocation output needs --calibration data (the inputs its probes run on)")
+        if backend.FORMAT != "torch":
+            raise InputError("--allocation output probes PyTorch models only; use --allocation energy-product or error-sum for ONNX")
+        t1 = time.perf_counter()
+        effects = measure_effects(model, chosen, decompositions, calibration, config, size)
+        timings["effects"] = time.perf_counter() - t1
     reference = []
     if heldout is not None:
         for inputs, labels in heldout.batches(size):
             reference.append((backend.predict(model, inputs, output=config.output), labels))
     timings["prepare"] = time.perf_counter() - t0
     return Prepared(model, config, records, decompositions, method, sequential, heldout, cal, metric_name,
-                    reference, timings, size, order)
+                    reference, timings, size, order, effects, allocation)
+
+
+def measure_effects(model, chosen: list[LayerRecord], decompositions: dict, calibration: HeldOut,
+                    config: CompressConfig, batch_size: int) -> dict:
+    """Each layer's measured effect on the output at a few ranks (effects.py): len(LEVELS) passes
+    per layer over the first ``config.effect_samples`` calibration samples."""
+    backend = backend_for(model)
+    batches = [x for x, _ in calibration.batches(min(batch_size, config.effect_samples), limit=config.effect_samples)]
+    probes = []
+    for record in chosen:
+        dec = decompositions[record.name]
+        for rank in effects_mod.probe_ranks(dec.spectrum, *record.matrix_shape):
+            probes.append((record.name, rank, float(1.0 - dec.spectrum.energy_fraction(rank))))
+    trials = ((name, *decompositions[name].factors(rank, config.split)) for name, rank, _ in probes)
+    by_name = {r.name: r for r in chosen}
+    out = {r.name: effects_mod.Effect(r.name, [], [], []) for r in chosen}
+    measured = backend.replacement_errors(model, by_name, trials, batches, config.output)
+    for (name, rank, own), (err, energy) in zip(probes, bar(measured, config, "output effects", total=len(probes))):
+        out[name].ranks.append(rank)
+        out[name].errors.append(err / energy if energy > 0 else 0.0)
+        out[name].own.append(own)
+    return out
 
 
 def plan_budget(prep: Prepared, budget: str) -> Plan:
     chosen = prep.selected
     return allocate(chosen, [prep.decompositions[r.name].spectrum for r in chosen], parse_budget(budget),
-                    rank_step=prep.config.rank_step, min_rank=prep.config.min_rank)
+                    rank_step=prep.config.rank_step, min_rank=prep.config.min_rank,
+                    effects=[prep.effects.get(r.name) for r in chosen] if prep.effects else None,
+                    objective=prep.allocation)
 
 
 def plan_for(model, config: CompressConfig, heldout: HeldOut | None = None, calibration: HeldOut | None = None):
@@ -370,7 +419,7 @@ def realize(prep: Prepared, budget: str, *, sources: dict | None = None, latency
         model_params=(backend.count_params(model), backend.count_params(factorized)),
         timings=timings, latency=lat, error_samples=min(config.error_samples, len(heldout)) if heldout is not None else 0,
         method=prep.method, calibration=prep.calibration, fits=fits, recovery=recovery, sequential=prep.sequential,
-        decompositions=prep.decompositions,
+        decompositions=prep.decompositions, effects=prep.effects, allocation=prep.allocation,
     )
     return CompressResult(factorized, plan, prep.records, prep.spectra, metric, report, errors)
 

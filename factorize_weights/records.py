@@ -57,6 +57,10 @@ class LayerRecord:
     positions: int | None = None
     backend: str = "torch"
     calls: int | None = None
+    # per-output-row weights of the error (|gamma| / sqrt(var + eps) of an eval-mode BatchNorm that
+    # reads this layer's output directly), and that normalization's name; None: unweighted
+    row_scale: Any = field(default=None, repr=False, compare=False)
+    scaled_by: str | None = None
 
     @property
     def weight_params(self) -> int:

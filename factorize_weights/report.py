@@ -79,6 +79,8 @@ def build_report(
     recovery: dict | None = None,
     sequential: bool = False,
     decompositions: dict | None = None,
+    effects: dict | None = None,
+    allocation: str = "error-sum",
 ) -> dict:
     """The content of ``report.json``."""
     chosen = [r for r in records if r.skip_reason is None]
@@ -99,6 +101,10 @@ def build_report(
                 entry["sequential_fit"] = fits[record.name]
         if heldout is not None:
             entry["output_error"] = layer_errors.get(record.name, 0.0 if entry["rank"] is None else None)
+        if record.scaled_by is not None:  # the truncation minimised the error after this normalization
+            entry["error_weighted_by"] = record.scaled_by
+        if effects and record.name in effects:
+            entry["output_effect"] = effects[record.name].to_dict()
         layers.append(entry)
     params_before = sum(e["params_before"] for e in layers)
     params_after = sum(e["params_after"] for e in layers)
@@ -123,6 +129,8 @@ def build_report(
         "method": method,
         "sequential": bool(sequential),
         "recovery": recovery,
+        "allocation": _allocation(allocation, effects, timings, config),
+        "warnings": plan_warnings(layers, allocation),
         "calibration": None if calibration is None else calibration.summary(),
         "factor_split": config.split,
         "svd": {"requested": config.svd, "seed": config.seed, "oversampling": config.oversampling,
@@ -273,6 +281,35 @@ def layer_table(report: dict) -> list[str]:
     return rows
 
 
+# a factorized layer keeping less than this share of its own energy, in a plan made without any
+# data about the output, gets a warning: the rank that saves the most there may destroy the layer
+AGGRESSIVE_KEPT = 0.5
+
+
+def plan_warnings(layers: list[dict], allocation: str) -> list[str]:
+    """Warnings about the plan itself (the terminal prints them first)."""
+    if allocation == "output":
+        return []
+    low = [e for e in layers if e["rank"] is not None and e["energy_kept"] < AGGRESSIVE_KEPT]
+    if not low:
+        return []
+    worst = min(low, key=lambda e: e["energy_kept"])
+    return [f"{len(low)} layer(s) keep less than {AGGRESSIVE_KEPT:.0%} of their energy (lowest: {worst['name']} at "
+            f"rank {worst['rank']}, {worst['energy_kept']:.1%}); without data the plan cannot see what that does to "
+            "the output: give --calibration data (ranks then follow each layer's measured effect) or a milder --budget"]
+
+
+def _allocation(allocation: str, effects: dict | None, timings: dict, config) -> dict:
+    """How ranks were shared out: by measured effect on the output (and what that cost) or by the
+    layers' own errors (energy-product or error-sum)."""
+    if not effects:
+        return {"by": allocation}
+    passes = sum(len(e.ranks) for e in effects.values())
+    return {"by": "output", "probe_samples": config.effect_samples, "probe_passes": passes + 1,
+            "seconds": round(float(timings.get("effects", 0.0)), 3),
+            "reference": "Yuan et al. 2023, ASVD (arXiv 2311.05821), sensitivity measurement"}
+
+
 def render_markdown(report: dict) -> str:
     lines = ["# Factorization report", "", summary_line(report) + ".", ""]
     b = report["budget"]
@@ -283,6 +320,12 @@ def render_markdown(report: dict) -> str:
     if report.get("recovery"):
         rec = report["recovery"]
         what += f", then {rec['steps_run']} recovery steps ({rec['loss']})"
+        if rec.get("kept") == "before":
+            what += "; the fine-tuned factors did not beat the starting ones on the validation slice, so those were kept"
+    alloc = report.get("allocation") or {}
+    if alloc.get("by") == "output":
+        what += (f"; ranks shared by each layer's measured effect on the model output ({alloc['probe_passes']} probe "
+                 f"passes over {alloc['probe_samples']} calibration samples, {alloc['seconds']:.1f} s)")
     lines.append(
         f"Method `{report['method']}` ({what}; {report['factor_split']} split), ranks chosen globally "
         f"under `{b['given']}`; rank step {b['rank_step']}, minimum rank {b['min_rank']}. "

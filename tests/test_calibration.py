@@ -135,8 +135,10 @@ def test_onnx_gram_matches_torch_gram_on_the_demo():
 
 def test_demo_whitened_beats_plain_svd_at_a_tight_budget(capsys):
     reports = {}
+    # both under the same allocation rule (the earlier default), so only the factors differ
     for label, extra in (("svd", ["--method", "svd"]), ("whitened", ["--calibration", str(demo.CALIBRATION)])):
-        code = main(["compress", "--demo", "--budget", "params=0.05", "--json", "-q", "--latency-repeats", "0"] + extra)
+        code = main(["compress", "--demo", "--budget", "params=0.05", "--json", "-q", "--latency-repeats", "0",
+                     "--allocation", "error-sum"] + extra)
         out, err = capsys.readouterr()
         assert code == 0, err
         reports[label] = json.loads(out)

@@ -56,6 +56,10 @@ class Backend(Protocol):
         """A runner whose ``stream(records, sink)`` makes one group's paired passes; ``current``
         is patched in place between groups (a backend may cache block inputs across them)."""
 
+    def replacement_errors(self, model, records: dict, trials: Iterable, batches: list, output: str | None = None):
+        """For each ``(name, A, X)``: (squared output error, squared output norm) of ``model`` with only
+        that layer replaced by the factor pair, on ``batches`` (PyTorch only; ONNX raises)."""
+
     def stream_layer_outputs(self, original, factorized, names: list[str], batches: Iterable,
                              sink: OutputSink) -> None:
         """Each named layer's output and its factor pair's output on the original's inputs."""

@@ -568,6 +568,12 @@ def measure_positions(model: OnnxModel, records: list[LayerRecord], sample) -> i
     return int(sum(np.asarray(outputs[n]).nbytes for n in names if n in outputs))
 
 
+def replacement_errors(model: OnnxModel, records: dict, trials, batches: list, output: str | None = None):
+    """Not available for ONNX models (the pipeline refuses ``--allocation output`` for them before
+    calling this, and ``auto`` allocates by each layer's own error)."""
+    raise NotImplementedError("output-effect probes run on PyTorch models only")
+
+
 def stream_layer_outputs(original: OnnxModel, factorized: OnnxModel, names: list[str], batches, sink) -> None:
     """For each batch and each node in ``names``: ``sink(name, exact, approx)``, the original
     node's output and its factor pair's output on the same inputs (each pair run alone in a small

@@ -368,6 +368,12 @@ def _attention_projections(name: str, mha: nn.MultiheadAttention) -> list[LayerR
     return out
 
 
+OVERRIDE_REASON = ("class {cls} overrides forward(); two plain factors would not compute what it computes "
+                   "(give --heldout or --calibration data to check it on real inputs)")
+OVERRIDE_MISMATCH = ("class {cls} overrides forward() and its output differs from {base}'s on the sample "
+                     "inputs (largest relative difference {diff:.2g}), so two plain factors would change it")
+
+
 def _skip_reason(name, module, record, parent, owners, names, only, skip) -> str | None:
     if only and not _matches(name, only):
         return f"not matched by --only {' '.join(repr(p) for p in only)}"
@@ -375,10 +381,6 @@ def _skip_reason(name, module, record, parent, owners, names, only, skip) -> str
         return f"excluded by --skip {' '.join(repr(p) for p in skip if fnmatch.fnmatchcase(name, p))}"
     if isinstance(parent, nn.MultiheadAttention):
         return "read directly by its parent MultiheadAttention, so replacing it would have no effect"
-    base = next((cls for cls in _KINDS if isinstance(module, cls)), None)
-    if base is not None and type(module).forward is not base.forward:
-        return (f"class {type(module).__name__} overrides forward(); two plain factors would not compute "
-                "what it computes")
     if module._forward_hooks or module._forward_pre_hooks:
         return "has forward hooks, which a replacement would drop"
     if len(names) > 1:
@@ -398,6 +400,9 @@ def _skip_reason(name, module, record, parent, owners, names, only, skip) -> str
     m, n = record.matrix_shape
     if max_saving_rank(m, n) < 1:
         return f"matrix {m}x{n} has break-even rank {m * n // (m + n)}: no rank would save parameters"
+    base = next((cls for cls in _KINDS if isinstance(module, cls)), None)
+    if base is not None and type(module).forward is not base.forward:
+        return OVERRIDE_REASON.format(cls=type(module).__name__)
     return None
 
 
@@ -648,10 +653,52 @@ def measure_positions(model: nn.Module, records: list[LayerRecord], sample: np.n
         if isinstance(output, torch.Tensor):
             total[0] += output.numel() * output.element_size()
 
+    overridden = [r for r in records if r.skip_reason == OVERRIDE_REASON.format(cls=type(r.handle).__name__)]
+    differences = {r.name: [] for r in overridden}
+    for record in overridden:  # does the base class compute the same on these real inputs?
+        base = next(cls for cls in _KINDS if isinstance(record.handle, cls))
+
+        def compare(module, args, output, record=record, base=base):
+            if len(args) != 1 or not isinstance(output, torch.Tensor):
+                differences[record.name].append(float("inf"))
+                return
+            try:
+                plain = base.forward(module, args[0])
+            except Exception:
+                differences[record.name].append(float("inf"))
+                return
+            same_shape = plain.shape == output.shape
+            scale = float(output.abs().max()) if output.numel() else 0.0
+            diff = float((plain - output).abs().max()) / max(scale, 1e-30) if same_shape else float("inf")
+            differences[record.name].append(diff)
+
+        hooks.append(record.handle.register_forward_hook(compare))
+
+    last = [None, None]  # the latest output of a candidate layer, and its record
+
+    def scaled(module, args, name):  # an eval-mode BatchNorm reading that output directly
+        if last[0] is not None and args and args[0] is last[0] and not module.training \
+                and module.running_var is not None and last[1].row_scale is None \
+                and args[0].dim() >= 2 and args[0].shape[1] == last[1].matrix_shape[0]:
+            gamma = module.weight.detach().abs() if module.weight is not None else torch.ones_like(module.running_var)
+            scale = (gamma / torch.sqrt(module.running_var.detach() + module.eps)).double().numpy()
+            last[1].row_scale, last[1].scaled_by = scale, name
+        last[0] = last[1] = None
+
+    for bn_name, bn in model.named_modules():
+        if isinstance(bn, nn.modules.batchnorm._BatchNorm):
+            hooks.append(bn.register_forward_pre_hook(lambda m, a, name=bn_name: scaled(m, a, name)))
+
     for record in records:
-        if record.skip_reason is not None:
+        if record.skip_reason is not None and record not in overridden:
             continue
         record.positions = 0
+        record.row_scale = record.scaled_by = None
+
+        def remember(module, args, output, record=record):
+            last[0], last[1] = (output, record) if isinstance(output, torch.Tensor) else (None, None)
+
+        hooks.append(record.handle.register_forward_hook(remember))
 
         def hook(module, args, output, record=record):
             shape = output.shape
@@ -662,8 +709,52 @@ def measure_positions(model: nn.Module, records: list[LayerRecord], sample: np.n
 
         hooks.append(record.handle.register_forward_hook(hook))
     hooks += [m.register_forward_hook(count) for m in model.modules() if not list(m.children())]
-    _run_once(model, sample, hooks)
+    rows = min(8 if overridden else 1, len(next(iter(sample.values())) if isinstance(sample, dict) else sample))
+    _run_once(model, sample, hooks, rows=rows)
+    total[0] //= max(rows, 1)
+    for record in overridden:
+        seen = differences[record.name]
+        worst = max(seen) if seen else float("inf")
+        base = next(cls for cls in _KINDS if isinstance(record.handle, cls))
+        if seen and worst <= OVERRIDE_TOLERANCE:
+            record.skip_reason = None  # the rewrite computes what the layer computed, on real inputs
+            record.options["forward_checked"] = (f"{type(record.handle).__name__}.forward matched "
+                                                 f"{base.__name__}.forward on {rows} sample input(s)")
+        else:
+            record.skip_reason = OVERRIDE_MISMATCH.format(cls=type(record.handle).__name__, base=base.__name__,
+                                                          diff=worst) if seen else \
+                f"class {type(record.handle).__name__} overrides forward() and the sample never called it"
+            record.positions = None
+            record.row_scale = record.scaled_by = None
     return int(total[0])
+
+
+# largest relative difference at which an overridden forward() counts as the base class's: float32
+# round-off of the same arithmetic done in another order (common practice)
+OVERRIDE_TOLERANCE = 1e-5
+
+
+def replacement_errors(model: nn.Module, records: dict, trials, batches: list, output: str | None = None):
+    """For each ``(name, a, x)`` in ``trials``: the model's output with layer ``name`` alone replaced
+    by the factor pair (A, X), everything else exact, against the original output on ``batches``.
+    Yields ``(squared error, squared norm of the original output)`` per trial. The layer is not
+    copied or rewritten: a forward hook on it returns the pair's output instead of its own."""
+    with inference(model):
+        reference = [select_output(call(model, b), output).double() for b in batches]
+        energy = float(sum(float((r * r).sum()) for r in reference))
+        for name, a, x in trials:
+            record = records[name]
+            pair = _factor_pair(record.handle, record, a.astype(np.float32), x.astype(np.float32))
+            pair.eval()
+            handle = record.handle.register_forward_hook(lambda m, args, out, pair=pair: pair(args[0]))
+            try:
+                err = 0.0
+                for b, ref in zip(batches, reference):
+                    diff = select_output(call(model, b), output).double() - ref
+                    err += float((diff * diff).sum())
+            finally:
+                handle.remove()
+            yield err, energy
 
 
 def stream_layer_outputs(original: nn.Module, factorized: nn.Module, names: list[str], batches, sink) -> None:
@@ -1079,11 +1170,11 @@ def call_stages(model: nn.Module, records: list[LayerRecord], sample: np.ndarray
     return stages + [[r.name] for r in records if r.name not in keys]
 
 
-def _run_once(model: nn.Module, sample: np.ndarray, hooks: list) -> None:
-    """One forward pass on the first sample, then remove ``hooks`` whatever happens."""
+def _run_once(model: nn.Module, sample: np.ndarray, hooks: list, rows: int = 1) -> None:
+    """One forward pass on the first ``rows`` samples, then remove ``hooks`` whatever happens."""
     try:
         with inference(model):
-            call(model, first_rows(sample))
+            call(model, first_rows(sample, rows))
     finally:
         for h in hooks:
             h.remove()

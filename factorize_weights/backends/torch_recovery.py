@@ -3,7 +3,11 @@
 Knowledge distillation on the calibration inputs (never the held-out set): KL divergence between
 the original's and the factorized model's softmax outputs for classifiers, mean squared error of
 the outputs otherwise. Adam, a fixed seed, a slice of the calibration set held back for early
-stopping, and the best state (by that slice's loss) restored at the end.
+stopping, and the best state (by that slice's loss) restored at the end: the start counts as a
+state, so recovery keeps the better of before and after and never returns a worse model on that
+slice. The model stays in eval mode while only the factors learn: BatchNorm keeps the running
+statistics it was trained with (train mode would move them on a few calibration batches, and
+restoring the factors would not restore them) and dropout stays off.
 """
 
 from __future__ import annotations
@@ -74,7 +78,7 @@ def recover(
     best_state = [p.detach().clone() for p in params]
     best_step, since, step = 0, 0, 0
     was_training = factorized.training
-    factorized.train()
+    factorized.eval()  # BatchNorm statistics frozen, dropout off; gradients still reach the factors
     bar = tqdm(range(steps), desc="recover", leave=False, unit="step", disable=quiet or not sys.stderr.isatty())
     try:
         for step in bar:
@@ -84,9 +88,7 @@ def recover(
             loss_value.backward()
             opt.step()
             if (step + 1) % eval_every == 0 or step + 1 == steps:
-                factorized.eval()
                 current = val_loss()
-                factorized.train()
                 bar.set_postfix(val=f"{current:.4g}")
                 if current < best:
                     best, best_step, since = current, step + 1, 0
@@ -105,4 +107,5 @@ def recover(
     return {"steps": steps, "steps_run": step + 1 if steps else 0, "best_step": best_step, "loss": loss,
             "lr": lr, "batch_size": batch_size, "seed": seed, "validation_samples": int(n_val),
             "train_samples": int(len(train_idx)), "validation_loss_before": start_loss,
-            "validation_loss_after": best, "early_stopped": since >= patience}
+            "validation_loss_after": best, "early_stopped": since >= patience,
+            "kept": "after" if best_step > 0 else "before"}
