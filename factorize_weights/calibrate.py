@@ -191,7 +191,7 @@ def sequential_refit(model, records: list[LayerRecord], ranks: dict, cal: Calibr
             product = regression_product(w, ridge(st.cross, config.ridge, st.gram), wh_new)  # M S'
             del st
             record = by_name[name]
-            if record.row_scale is None:
+            if record.row_scale is None or not config.bn_weights:
                 dec = Whitened.decompose_product(name, product, wh_new, dtype=record.dtype)
             else:  # the error after the BatchNorm that reads this layer (methods.row_weighted)
                 d = np.maximum(record.row_scale, 1e-6 * float(np.max(record.row_scale)))

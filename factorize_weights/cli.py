@@ -103,6 +103,9 @@ def _plan_options(p: argparse.ArgumentParser, *, sweep: bool = False) -> None:
                         "else energy-product")
     g.add_argument("--effect-samples", type=int, default=_DEFAULTS.effect_samples, metavar="N",
                    help=f"calibration samples the output-effect probes run on (default {_DEFAULTS.effect_samples})")
+    g.add_argument("--bn-weights", action="store_true",
+                   help="truncate each layer for its error after the eval-mode BatchNorm that reads it "
+                        "(rows weighted by |gamma|/sqrt(var+eps); PyTorch, needs --heldout or --calibration)")
     g.add_argument("--recover", type=int, default=_DEFAULTS.recover, metavar="STEPS",
                    help="PyTorch: fine-tune only the factors for up to STEPS steps on the calibration inputs")
     g.add_argument("--recover-lr", type=float, default=_DEFAULTS.recover_lr, metavar="LR", help=f"recovery learning rate (default {_DEFAULTS.recover_lr:g})")
@@ -292,7 +295,7 @@ def _plan_config(args, budget: str) -> CompressConfig:
                    export_onnx=getattr(args, "export_onnx", False), int8=getattr(args, "int8", False),
                    sequential=args.sequential, sequential_groups=args.sequential_groups, recover=args.recover, recover_lr=args.recover_lr,
                    allow_overlap=args.allow_overlap, ridge=args.ridge, allocation=args.allocation,
-                   effect_samples=args.effect_samples)
+                   effect_samples=args.effect_samples, bn_weights=args.bn_weights)
 
 
 def _calibration(args):

@@ -53,6 +53,10 @@ class CompressConfig:
     # "output" with calibration data and a PyTorch model, else "energy-product"
     allocation: str = "auto"
     effect_samples: int = 32  # calibration samples the output-effect probes run on
+    # weight each output row's error by the |gamma|/sqrt(var+eps) of an eval-mode BatchNorm that reads
+    # the layer's output; off by default: on EfficientNet-Lite0 it lowered agreement (measured,
+    # reports/accuracy_pretrained.md)
+    bn_weights: bool = False
     recover: int = 0  # fine-tuning steps of the factors after factorization (needs calibration); 0: off
     recover_lr: float = 1e-4  # 1e-3 overshot on whitened factors (validation loss rose at once; measured)
     # ridge on the calibration moments, relative to their mean diagonal: 1% (common practice) kept

@@ -76,7 +76,8 @@ def decompose(records: list[LayerRecord], method, config: CompressConfig, calibr
     for record in bar(selected(records), config, f"{method.name} decomposition"):
         moments = calibration.release(record.name) if calibration is not None else None
         try:
-            out[record.name] = methods.row_weighted(method, record.name, _weight(record), record.row_scale,
+            scale = record.row_scale if config.bn_weights else None
+            out[record.name] = methods.row_weighted(method, record.name, _weight(record), scale,
                                                     dtype=record.dtype, moments=moments, scaled_by=record.scaled_by)
         except ValueError as exc:  # NaN/Inf in a weight is the user's model, not our bug
             raise InputError(str(exc)) from exc

@@ -101,7 +101,7 @@ def build_report(
                 entry["sequential_fit"] = fits[record.name]
         if heldout is not None:
             entry["output_error"] = layer_errors.get(record.name, 0.0 if entry["rank"] is None else None)
-        if record.scaled_by is not None:  # the truncation minimised the error after this normalization
+        if record.scaled_by is not None and config.bn_weights:  # the error after this normalization was minimised
             entry["error_weighted_by"] = record.scaled_by
         if effects and record.name in effects:
             entry["output_effect"] = effects[record.name].to_dict()

@@ -241,6 +241,29 @@ def test_chain_cached_passes_equal_whole_model_passes():
     assert runs.at == 1  # the cache moved through the chain instead of rerunning the model
 
 
+class RateChain(Chain):
+    """Each block gets a plain number of its own (like a per-block drop rate)."""
+
+    def forward(self, x):
+        h = self.embed(x)
+        for i, block in enumerate(self.blocks):
+            h = block(h, scale=0.25 * (i + 1))
+        return self.head(h)
+
+
+def test_chain_with_per_block_plain_values_replays_each_blocks_own():
+    # whole-model passes as the oracle: a replay with block 0's value everywhere would differ
+    torch.manual_seed(5)
+    model = RateChain().eval()
+    records = tb.discover(model)
+    x = torch.randn(24, 5)
+    batches = [x[:12].numpy(), x[12:].numpy()]
+    chain = tb.find_chain(model, records, batches[0])
+    assert chain is not None and chain[2] == {1: ({}, {"scale": 0.5}), 2: ({}, {"scale": 0.75})}
+    runs = _cached_against_whole_model(model, records, batches, (["blocks.0.up"], ["blocks.2.down"], ["head"]))
+    assert runs.at == 2
+
+
 def _cached_against_whole_model(model, records, batches, groups):
     """Paired moments of each group from the chain cache equal those of whole-model passes; each
     group is then patched in place with random rank-2 factors, as a refit does."""

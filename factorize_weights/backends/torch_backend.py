@@ -1007,8 +1007,9 @@ def find_chain(model: nn.Module, records: list[LayerRecord], sample) -> tuple[li
     """The chain of blocks holding most of the records, if the model has one: the children of one
     ``nn.Sequential`` or ``nn.ModuleList``, each called once per forward pass, each fed the hidden
     state the one before returned (the same tensor object) and the same other arguments (masks
-    and the like, the same objects). Returns (block names, {record name: block index}) or None.
-    One forward pass on one sample."""
+    and the like, the same objects; plain values such as a per-block drop rate may differ, and are
+    replayed per block). Returns (block names, {record name: block index}, {block index: (positional,
+    keyword) plain values of its own}) or None. One forward pass on one sample."""
     inside = {}
     for cname, container in model.named_modules():
         if not isinstance(container, (nn.Sequential, nn.ModuleList)) or len(container) < 2:
@@ -1044,15 +1045,33 @@ def find_chain(model: nn.Module, records: list[LayerRecord], sample) -> tuple[li
     first_args, first_kwargs, _ = seen[0][0]
     if not first_args or not isinstance(first_args[0], torch.Tensor):
         return None
-    for i in range(1, len(blocks)):
+    own: dict[int, tuple[dict, dict]] = {}  # per block: plain values it gets instead of the first block's
+    for i in range(len(blocks)):
         args, kwargs, _ = seen[i][0]
-        prev_out = seen[i - 1][0][2]
-        same_extra = len(args) == len(first_args) and all(x is y for x, y in zip(args[1:], first_args[1:])) \
-            and kwargs.keys() == first_kwargs.keys() and all(kwargs[k] is first_kwargs[k] for k in kwargs) \
-            and all(_stateless(x) for x in list(args[1:]) + list(kwargs.values()))
-        if not args or args[0] is not prev_out or not same_extra:
+        if i and (not args or args[0] is not seen[i - 1][0][2]):
             return None
-    return blocks, inside["owned"]
+        if len(args) != len(first_args) or kwargs.keys() != first_kwargs.keys() \
+                or not all(_stateless(x) for x in list(args[1:]) + list(kwargs.values())):
+            return None
+        pos, kw = {}, {}
+        for j, (x, y) in enumerate(zip(args[1:], first_args[1:]), start=1):
+            if x is not y:
+                if not (_plain(x) and _plain(y)):
+                    return None
+                pos[j] = x
+        for k in kwargs:
+            if kwargs[k] is not first_kwargs[k]:
+                if not (_plain(kwargs[k]) and _plain(first_kwargs[k])):
+                    return None
+                kw[k] = kwargs[k]
+        if pos or kw:
+            own[i] = (pos, kw)
+    return blocks, inside["owned"], own
+
+
+def _plain(value) -> bool:
+    """A value a block may get per block (a drop rate, a layer index): replayed as recorded."""
+    return value is None or isinstance(value, (bool, int, float, str))
 
 
 class PairedRuns:
@@ -1069,7 +1088,7 @@ class PairedRuns:
                  cache_bytes: int = 1 << 30):
         self.original, self.current, self.batches = original, current, batches
         found = find_chain(original, records, batches[0]) if batches else None
-        self.blocks, self.block_of = found if found else ([], {})
+        self.blocks, self.block_of, self.own = found if found else ([], {}, {})
         self.cache = None  # [(orig hidden, current hidden, (args, kwargs) orig, (args, kwargs) current)] per batch
         self.at = 0
         self.cache_bytes = cache_bytes
@@ -1084,8 +1103,8 @@ class PairedRuns:
             self.blocks = []
             return stream_paired_inputs(self.original, self.current, records, self.batches, sink)
         self._advance(min(idx))
-        span = [(self.original.get_submodule(b), self.current.get_submodule(b))
-                for b in self.blocks[min(idx):max(idx) + 1]]
+        span = [(self.original.get_submodule(b), self.current.get_submodule(b), self.own.get(i))
+                for i, b in enumerate(self.blocks) if min(idx) <= i <= max(idx)]
         runner_orig = lambda h, a, k: self._run(span, 0, h, a, k)  # noqa: E731
         runner_cur = lambda h, a, k: self._run(span, 1, h, a, k)  # noqa: E731
         return stream_paired_inputs(runner_orig, runner_cur, records, self._replay(), sink,
@@ -1094,8 +1113,12 @@ class PairedRuns:
     @staticmethod
     def _run(span, which, h, args, kwargs):
         h = h.clone()  # a block may change its input in place; the cached copy must stay as it was
-        for pair in span:
-            h = _hidden(pair[which](h, *args, **kwargs))
+        for orig, cur, own in span:
+            a, k = args, kwargs
+            if own:  # this block's own plain values (find_chain)
+                a = tuple(own[0].get(j, v) for j, v in enumerate(args, start=1))
+                k = {**kwargs, **own[1]}
+            h = _hidden((orig, cur)[which](h, *a, **k))
         return h
 
     def _replay(self):
@@ -1135,7 +1158,8 @@ class PairedRuns:
         """Run blocks ``at`` .. ``to - 1`` on both cached hidden states (refits included)."""
         if to <= self.at:
             return
-        span = [(self.original.get_submodule(b), self.current.get_submodule(b)) for b in self.blocks[self.at:to]]
+        span = [(self.original.get_submodule(b), self.current.get_submodule(b), self.own.get(i))
+                for i, b in enumerate(self.blocks) if self.at <= i < to]
         with inference(self.original), inference(self.current):
             self.cache = [(self._run(span, 0, o, *oe), self._run(span, 1, c, *ce), oe, ce)
                           for o, c, oe, ce in self.cache]

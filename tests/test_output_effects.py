@@ -1,0 +1,258 @@
+"""Allocation by effect on the output, the data-free energy-product rule, BatchNorm row weighting,
+overridden forward()s checked on real inputs, and recovery that never returns a worse model."""
+
+from __future__ import annotations
+
+import itertools
+
+import numpy as np
+import pytest
+import torch
+from torch import nn
+
+import factorize_weights as fw
+from factorize_weights import pipeline
+from factorize_weights.allocate import allocate
+from factorize_weights.backends import torch_backend as tb
+from factorize_weights.budget import parse_budget
+from factorize_weights.data import HeldOut
+from factorize_weights.effects import Effect, probe_ranks
+from factorize_weights.methods import PlainSvd, row_weighted
+from factorize_weights.records import LayerRecord
+from factorize_weights.spectra import Spectrum
+
+
+def _data(x: np.ndarray, source: str) -> HeldOut:
+    return HeldOut(inputs=x.astype(np.float32), labels=None, source=source)
+
+
+class Uneven(nn.Module):
+    """Two parallel branches of the same shape; the second reaches the output scaled by 0.02, so
+    its errors barely matter there."""
+
+    def __init__(self):
+        super().__init__()
+        self.a, self.b = nn.Linear(24, 24), nn.Linear(24, 24)
+
+    def forward(self, x):
+        return self.a(x) + 0.02 * self.b(x)
+
+
+def test_probe_measurements_equal_a_direct_rewrite():
+    # oracle: torch itself, the model rewritten (a copy) with that one layer at that rank, against
+    # the original's outputs
+    torch.manual_seed(0)
+    model = nn.Sequential(nn.Linear(16, 32), nn.ReLU(), nn.Linear(32, 12), nn.Tanh(), nn.Linear(12, 5)).eval()
+    x = np.random.default_rng(0).standard_normal((40, 16)).astype(np.float32)
+    cal = _data(x, "cal")
+    prep = pipeline.prepare(model, fw.CompressConfig(quiet=True, allocation="output", method="svd",
+                                                     effect_samples=40), None, cal)
+    with torch.no_grad():
+        ref = model(torch.from_numpy(x)).double().numpy()
+    for name, effect in prep.effects.items():
+        record = next(r for r in prep.records if r.name == name)
+        assert effect.ranks == probe_ranks(prep.decompositions[name].spectrum, *record.matrix_shape)
+        for rank, measured in zip(effect.ranks, effect.errors):
+            a, xf = prep.decompositions[name].factors(rank)
+            small = tb.rewrite(model, prep.records, {name: (a, xf)})
+            with torch.no_grad():
+                out = small(torch.from_numpy(x)).double().numpy()
+            direct = float(np.sum((out - ref) ** 2) / np.sum(ref ** 2))
+            assert measured == pytest.approx(direct, rel=1e-4, abs=1e-9)
+    # the hook left nothing behind: the model computes what it computed
+    with torch.no_grad():
+        np.testing.assert_array_equal(model(torch.from_numpy(x)).double().numpy(), ref)
+
+
+def test_effect_curve_passes_through_its_measured_points_and_scales_between():
+    e = Effect("l", [2, 8], [0.4, 0.01], [0.2, 0.02])  # gains 2 and 0.5
+    ranks = np.array([1, 2, 4, 8, 16])
+    own = np.array([0.3, 0.2, 0.1, 0.02, 0.01])
+    got = e.curve(ranks, own)
+    assert got[1] == pytest.approx(0.4) and got[3] == pytest.approx(0.01)
+    assert got[0] == pytest.approx(2 * 0.3) and got[4] == pytest.approx(0.5 * 0.01)  # held beyond the ends
+    assert got[2] == pytest.approx(1.0 * 0.1)  # log-linear in rank: gain sqrt(2 * 0.5) at rank 4
+
+
+def test_output_allocation_gives_the_rank_to_the_layer_that_reaches_the_output():
+    # oracle: the model's actual output error (torch), measured for both plans on fresh inputs
+    torch.manual_seed(1)
+    model = Uneven().eval()
+    rng = np.random.default_rng(1)
+    cal, fresh = rng.standard_normal((64, 24)), rng.standard_normal((64, 24))
+    errors = {}
+    for allocation in ("error-sum", "output"):
+        config = fw.CompressConfig(budget="params=0.5", quiet=True, method="svd", allocation=allocation,
+                                   latency_repeats=0, effect_samples=64)
+        result = fw.compress(model, config, calibration=_data(cal, "cal"))
+        with torch.no_grad():
+            ref = model(torch.from_numpy(fresh).float())
+            out = result.model(torch.from_numpy(fresh).float())
+        errors[allocation] = float(((out - ref) ** 2).sum() / (ref ** 2).sum())
+        if allocation == "output":
+            assert result.plan.ranks["a"] is None or result.plan.ranks["a"] > (result.plan.ranks["b"] or 0)
+            assert result.report["allocation"]["by"] == "output"
+            assert result.report["allocation"]["probe_passes"] > 1
+    assert errors["output"] < 0.5 * errors["error-sum"]
+
+
+def _layer(name, s, m=20, n=20):
+    s = np.sort(np.asarray(s, dtype=float))[::-1]
+    return LayerRecord(name, "linear", (m, n), (m, n), False, "float32"), Spectrum(name, (m, n), s, float(np.sum(s ** 2)))
+
+
+def _kept_product(specs, ranks):
+    return float(np.prod([1.0 if r is None else s.energy_fraction(r) for s, r in zip(specs, ranks)]))
+
+
+def test_energy_product_plan_is_the_brute_force_optimum_of_its_objective():
+    # oracle: exhaustive enumeration of every combination of ranks (and dense)
+    rng = np.random.default_rng(3)
+    for case in range(40):
+        layers = [_layer(f"l{i}", rng.gamma(0.5 + rng.random(), size=20) + 1e-3) for i in range(3)]
+        recs, specs = [r for r, _ in layers], [s for _, s in layers]
+        budget = parse_budget(f"params={rng.uniform(0.2, 0.8):.2f}")
+        plan = allocate(recs, specs, budget, objective="energy-product")
+        limit = plan.limit
+        best = 0.0
+        menus = [list(range(1, 10)) + [None]] * 3
+        for combo in itertools.product(*menus):
+            cost = sum(400 if r is None else 40 * r for r in combo)
+            if cost <= limit:
+                best = max(best, _kept_product(specs, combo))
+        got = _kept_product(specs, [plan.ranks[r.name] for r in recs])
+        assert got >= best * (1 - 0.02), case  # within 2% of the optimum product (greedy on a hull)
+
+
+def test_energy_product_does_not_crush_a_flat_layer_that_error_sum_crushes():
+    # a flat spectrum (every direction equally important, like a classifier) next to steep ones:
+    # the summed error rule trades the flat layer away almost entirely; the product rule cannot
+    flat = _layer("flat", np.ones(20))
+    steep = [_layer(f"s{i}", 0.5 ** np.arange(20)) for i in range(3)]
+    recs, specs = zip(*([flat] + steep))
+    budget = parse_budget("params=0.25")
+    old = allocate(list(recs), list(specs), budget, objective="error-sum")
+    new = allocate(list(recs), list(specs), budget, objective="energy-product")
+    kept = lambda plan: specs[0].energy_fraction(plan.ranks["flat"]) if plan.ranks["flat"] else 1.0  # noqa: E731
+    assert kept(old) <= 0.2 and kept(new) > kept(old)
+    assert _kept_product(specs, [new.ranks[r.name] for r in recs]) >= _kept_product(specs, [old.ranks[r.name] for r in recs])
+
+
+def test_row_weighted_truncation_is_the_best_error_after_the_scale():
+    # Eckart & Young 1936 on diag(d) W (numpy's SVD as the reference): the weighted factors reach the
+    # optimum of ||diag(d)(W - W_k)||_F, which the unweighted factors do not
+    rng = np.random.default_rng(4)
+    w = rng.standard_normal((30, 40))
+    d = np.exp(rng.standard_normal(30))
+    dec = row_weighted(PlainSvd("exact"), "l", w, d, dtype="float64", scaled_by="bn")
+    plain = PlainSvd("exact").decompose("l", w, dtype="float64")
+    u, s, vt = np.linalg.svd(d[:, None] * w, full_matrices=False)
+    for k in (3, 8, 15):
+        a, x = dec.factors(k)
+        optimum = float(np.sqrt(np.sum(s[k:] ** 2)))
+        assert np.linalg.norm(d[:, None] * (w - a @ x)) == pytest.approx(optimum, rel=1e-9)
+        a0, x0 = plain.factors(k)
+        assert np.linalg.norm(d[:, None] * (w - a0 @ x0)) > optimum * (1 + 1e-6)
+    assert dec.extra["row_weights"] == "bn"
+
+
+class ConvBn(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.conv, self.bn = nn.Conv2d(8, 24, 1, bias=False), nn.BatchNorm2d(24)
+        self.head = nn.Conv2d(24, 4, 1)
+
+    def forward(self, x):
+        return self.head(torch.relu(self.bn(self.conv(x))))
+
+
+def test_batchnorm_after_a_layer_is_found_and_its_scale_taken_from_the_module():
+    # the direct computation: |gamma| / sqrt(running_var + eps) read off the module
+    torch.manual_seed(5)
+    model = ConvBn()
+    with torch.no_grad():
+        model.bn.weight.uniform_(-2, 2)
+        model.bn.running_var.uniform_(0.1, 3)
+    model.eval()
+    records = tb.discover(model)
+    x = np.random.default_rng(5).standard_normal((4, 8, 6, 6)).astype(np.float32)
+    tb.measure_positions(model, records, x)
+    conv = next(r for r in records if r.name == "conv")
+    head = next(r for r in records if r.name == "head")
+    expected = (model.bn.weight.abs() / torch.sqrt(model.bn.running_var + model.bn.eps)).detach().double().numpy()
+    np.testing.assert_allclose(conv.row_scale, expected, rtol=1e-12)
+    assert conv.scaled_by == "bn" and head.row_scale is None
+
+
+class Scaled(nn.Linear):
+    def forward(self, x):
+        return 2.0 * super().forward(x)
+
+
+class Same(nn.Linear):
+    def forward(self, x):  # the base computation, written out
+        return nn.functional.linear(x, self.weight, self.bias)
+
+
+def test_overridden_forward_is_admitted_only_when_it_computes_what_the_base_class_does():
+    # oracle: the base class's own forward on the same inputs; full rank must reproduce outputs
+    torch.manual_seed(6)
+    model = nn.Sequential(Same(20, 20), nn.ReLU(), Scaled(20, 20)).eval()
+    x = np.random.default_rng(6).standard_normal((16, 20)).astype(np.float32)
+    assert all(r.skip_reason for r in tb.discover(model))  # no data: nothing can be checked
+    prep = pipeline.prepare(model, fw.CompressConfig(quiet=True), _data(x, "held"))
+    by = {r.name: r for r in prep.records}
+    assert by["0"].skip_reason is None and "matched Linear.forward" in by["0"].options["forward_checked"]
+    assert "differs from Linear's" in by["2"].skip_reason
+    w = model[0].weight.detach().double().numpy()
+    small = tb.rewrite(model, prep.records, {"0": (w, np.eye(20))})  # a full-rank split: W = W I
+    with torch.no_grad():
+        np.testing.assert_allclose(small(torch.from_numpy(x)).numpy(), model(torch.from_numpy(x)).numpy(),
+                                   rtol=1e-4, atol=1e-4)
+
+
+class BnNet(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.conv1, self.bn1 = nn.Conv2d(3, 16, 3, padding=1), nn.BatchNorm2d(16)
+        self.conv2, self.bn2 = nn.Conv2d(16, 16, 3, padding=1), nn.BatchNorm2d(16)
+        self.fc = nn.Linear(16, 5)
+
+    def forward(self, x):
+        x = torch.relu(self.bn1(self.conv1(x)))
+        x = torch.relu(self.bn2(self.conv2(x)))
+        return self.fc(x.mean((2, 3)))
+
+
+def test_recovery_that_only_hurts_returns_the_starting_model_untouched():
+    # a learning rate far too large makes every step worse on the validation slice: the rule must
+    # keep the factors it started from, and BatchNorm's running statistics must not move
+    torch.manual_seed(7)
+    model = BnNet().eval()
+    with torch.no_grad():
+        for bn in (model.bn1, model.bn2):
+            bn.running_mean.uniform_(-0.5, 0.5)
+            bn.running_var.uniform_(0.5, 2)
+    x = np.random.default_rng(7).standard_normal((48, 3, 8, 8)).astype(np.float32)
+    config = fw.CompressConfig(budget="params=0.4", quiet=True, latency_repeats=0, recover=0)
+    prep = pipeline.prepare(model, config, None, _data(x, "cal"))
+    start = pipeline.realize(prep, "params=0.4", latency=False, layer_errors=False).model
+    prep.config.recover, prep.config.recover_lr = 30, 0.9
+    result = pipeline.realize(prep, "params=0.4", latency=False, layer_errors=False)
+    rec = result.report["recovery"]
+    assert rec["kept"] == "before" and rec["validation_loss_after"] == rec["validation_loss_before"]
+    for (n1, p1), (n2, p2) in zip(start.state_dict().items(), result.model.state_dict().items()):
+        assert n1 == n2 and torch.equal(p1, p2), n1  # factors and BatchNorm buffers alike
+
+
+def test_recovery_that_helps_keeps_the_fine_tuned_factors():
+    torch.manual_seed(8)
+    model = BnNet().eval()
+    x = np.random.default_rng(8).standard_normal((64, 3, 8, 8)).astype(np.float32)
+    config = fw.CompressConfig(budget="params=0.3", quiet=True, latency_repeats=0, recover=60, recover_lr=1e-3,
+                               method="svd", allocation="error-sum")
+    result = fw.compress(model, config, calibration=_data(x, "cal"))
+    rec = result.report["recovery"]
+    assert rec["kept"] == "after" and rec["validation_loss_after"] < rec["validation_loss_before"]
+    bn = dict(result.model.named_buffers())
+    assert torch.equal(bn["bn1.running_mean"], model.bn1.running_mean)  # statistics untouched
