@@ -8,8 +8,9 @@ light weight decay, so less redundant). Data: the demo's UCI digits splits: cali
 images) for everything data-aware, held-out (540 images) only for measuring.
 Rows per budget: uniform rank (what a user writes by hand: the same fraction of min(out, in) as
 rank in every layer, plain SVD; and the same with the first and last layers left dense, a common
-hand-written refinement), allocated plain SVD, whitened, whitened + sequential, columns (pivoted QR),
-and whitened + recovery.
+hand-written refinement), allocated plain SVD under the old (error-sum) and new (energy-product)
+data-free rule, whitened, whitened + sequential under the old rule and the new default (allocation
+by measured output effect), columns (pivoted QR), and whitened + recovery.
 """
 
 from __future__ import annotations
@@ -35,12 +36,16 @@ BUDGETS = (0.8, 0.6, 0.5, 0.3, 0.2, 0.1)
 
 def variants(recover_steps: int):
     return [
-        ("allocated plain SVD", {"method": "svd"}, False),
-        ("whitened", {"method": "whitened", "sequential": False}, True),
-        ("whitened + sequential", {"method": "whitened", "sequential": True}, True),
-        ("columns (pivoted QR)", {"method": "columns"}, False),
+        ("allocated plain SVD, error-sum (old default without data)", {"method": "svd", "allocation": "error-sum"}, False),
+        ("allocated plain SVD, energy-product (new default without data)", {"method": "svd"}, False),
+        ("whitened", {"method": "whitened", "sequential": False, "allocation": "error-sum"}, True),
+        ("whitened + sequential, error-sum (old default with data)", {"method": "whitened", "sequential": True,
+                                                                      "allocation": "error-sum"}, True),
+        ("whitened + sequential, output effect (new default with data)", {"method": "whitened", "sequential": True},
+         True),
+        ("columns (pivoted QR)", {"method": "columns", "allocation": "error-sum"}, False),
         (f"whitened + recovery ({recover_steps} steps)", {"method": "whitened", "sequential": False,
-                                                         "recover": recover_steps}, True),
+                                                         "allocation": "error-sum", "recover": recover_steps}, True),
     ]
 
 
