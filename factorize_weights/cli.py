@@ -99,8 +99,7 @@ def _plan_options(p: argparse.ArgumentParser, *, sweep: bool = False) -> None:
     g.add_argument("--allocation", choices=ALLOCATIONS, default=_DEFAULTS.allocation,
                    help="output: share ranks by each layer's measured effect on the model's output (PyTorch, needs "
                         "--calibration); energy-product: keep the most of the product of the layers' kept energy; "
-                        "error-sum: least summed layer error (the earlier default); auto: output when it can, "
-                        "else energy-product")
+                        "error-sum: least summed layer error; auto: output when it can, else error-sum")
     g.add_argument("--effect-samples", type=int, default=_DEFAULTS.effect_samples, metavar="N",
                    help=f"calibration samples the output-effect probes run on (default {_DEFAULTS.effect_samples})")
     g.add_argument("--bn-weights", action="store_true",

@@ -8,8 +8,8 @@ light weight decay, so less redundant). Data: the demo's UCI digits splits: cali
 images) for everything data-aware, held-out (540 images) only for measuring.
 Rows per budget: uniform rank (what a user writes by hand: the same fraction of min(out, in) as
 rank in every layer, plain SVD; and the same with the first and last layers left dense, a common
-hand-written refinement), allocated plain SVD under the old (error-sum) and new (energy-product)
-data-free rule, whitened, whitened + sequential under the old rule and the new default (allocation
+hand-written refinement), allocated plain SVD under the error-sum (default) and energy-product
+data-free rules, whitened, whitened + sequential under the old rule and the new default (allocation
 by measured output effect), columns (pivoted QR), and whitened + recovery.
 """
 
@@ -36,8 +36,8 @@ BUDGETS = (0.8, 0.6, 0.5, 0.3, 0.2, 0.1)
 
 def variants(recover_steps: int):
     return [
-        ("allocated plain SVD, error-sum (old default without data)", {"method": "svd", "allocation": "error-sum"}, False),
-        ("allocated plain SVD, energy-product (new default without data)", {"method": "svd"}, False),
+        ("allocated plain SVD, error-sum (default without data)", {"method": "svd", "allocation": "error-sum"}, False),
+        ("allocated plain SVD, energy-product", {"method": "svd", "allocation": "energy-product"}, False),
         ("whitened", {"method": "whitened", "sequential": False, "allocation": "error-sum"}, True),
         ("whitened + sequential, error-sum (old default with data)", {"method": "whitened", "sequential": True,
                                                                       "allocation": "error-sum"}, True),

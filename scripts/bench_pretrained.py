@@ -11,8 +11,8 @@ downloaded from a model hub):
   calibration = 512 others; metric = mean cosine of the sentence embedding (masked mean of the token
   outputs) to the original's.
 
-Rows per budget: the old and the new default without data (plain SVD; allocation error-sum, the
-earlier default, against energy-product, the new one), and with calibration data (whitened +
+Rows per budget: without data, plain SVD allocated by error-sum (the default) and by
+energy-product (with and without BatchNorm row weights); with calibration data (whitened +
 sequential; allocation error-sum against output, the new default), plus the new calibrated default
 followed by recovery where --recover is given. One preparation per configuration is shared by all
 budgets; held-out data is never used to fit or choose anything.
@@ -84,8 +84,8 @@ def run_model(key: str, recover: int) -> tuple[str, list, dict]:
     base = dict(quiet=True, latency_repeats=0, error_samples=0, metric=tool_metric)
     rows, costs = [], {}
     configs = [
-        ("plain SVD, error-sum (old default without data)", dict(method="svd", allocation="error-sum"), None),
-        ("plain SVD, energy-product (new default without data)", dict(method="svd", allocation="energy-product"), None),
+        ("plain SVD, error-sum (default without data)", dict(method="svd", allocation="error-sum"), None),
+        ("plain SVD, energy-product", dict(method="svd", allocation="energy-product"), None),
         ("plain SVD, energy-product, BatchNorm row weights", dict(method="svd", allocation="energy-product",
                                                                   bn_weights=True), None),
         ("whitened + sequential, output effect (new default with data)", dict(method="whitened", sequential=True,
