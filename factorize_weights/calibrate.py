@@ -27,7 +27,7 @@ from .errors import InputError
 from .methods import Whitened, unscale_rows
 from .progress import bar
 from .records import LayerRecord
-from .stats import CrossMoments, Moments, ridge, weight_error
+from .stats import CrossMoments, Moments, ridge, shrinkage_ridge, weight_error
 from .whiten import regression_product, whitening
 
 #: Memory for the paired moments of one group of sequential refits (two n x n float64 per layer).
@@ -69,14 +69,26 @@ class Calibration:
             "peak_rss_bytes": peak_rss(),
             "warnings": list(self.warnings),
             "ridge": self.ridge,
+            "shrunk": {name: round(r, 6) for name, r in self.ridges.items() if r > self.ridge},
             "passes": self.passes,
             "batch_size": self.batch_size,
         }
 
-    def release(self, name: str) -> np.ndarray:
-        """The Gram matrix of ``name``, dropped from this object (it is used once)."""
-        g = self.moments[name].gram
-        self.moments[name].gram = None
+    ridges: dict[str, float] = field(default_factory=dict)  # the relative ridge each layer got
+
+    def ridge_for(self, name: str) -> float:
+        """The relative ridge of layer ``name``: ``ridge`` or, with shrinkage on, at least the
+        Ledoit-Wolf shrinkage of its moments (set by :meth:`release`)."""
+        return self.ridges.get(name, self.ridge)
+
+    def release(self, name: str, shrink: bool = False) -> np.ndarray:
+        """The Gram matrix of ``name``, dropped from this object (it is used once); with ``shrink``,
+        the layer's ridge becomes at least its Ledoit-Wolf shrinkage first."""
+        st = self.moments[name]
+        if shrink:
+            self.ridges[name] = shrinkage_ridge(st.shrinkage(), self.ridge)
+        g = st.gram
+        st.gram = None
         return g
 
 
@@ -186,9 +198,10 @@ def sequential_refit(model, records: list[LayerRecord], ranks: dict, cal: Calibr
         for name in group:
             st = acc.pop(name)
             # the same ridge on both moments: where the calibration data says nothing, M stays W
-            wh_new = whitening(ridge(st.gram, config.ridge))
+            alpha = cal.ridge_for(name)
+            wh_new = whitening(ridge(st.gram, alpha))
             w = backend.weight_matrix(by_name[name])
-            product = regression_product(w, ridge(st.cross, config.ridge, st.gram), wh_new)  # M S'
+            product = regression_product(w, ridge(st.cross, alpha, st.gram), wh_new)  # M S'
             del st
             record = by_name[name]
             if record.row_scale is None or not config.bn_weights:

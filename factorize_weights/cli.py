@@ -90,6 +90,9 @@ def _plan_options(p: argparse.ArgumentParser, *, sweep: bool = False) -> None:
     g.add_argument("--allow-overlap", action="store_true", help="allow the same data for --calibration and --heldout")
     g.add_argument("--ridge", type=float, default=_DEFAULTS.ridge, metavar="A",
                    help=f"ridge added to the calibration moments, as a fraction of their mean diagonal (default {_DEFAULTS.ridge})")
+    g.add_argument("--shrinkage", action=argparse.BooleanOptionalAction, default=_DEFAULTS.shrinkage,
+                   help="raise each layer's ridge to the Ledoit-Wolf shrinkage of its calibration moments "
+                        "(large when a layer has few calibration rows per input feature; on by default)")
     g.add_argument("--sequential", action=argparse.BooleanOptionalAction, default=_DEFAULTS.sequential,
                    help="refit layers in forward order to the original outputs (reduced-rank regression); "
                         "on by default with whitened factors")
@@ -294,7 +297,8 @@ def _plan_config(args, budget: str) -> CompressConfig:
                    export_onnx=getattr(args, "export_onnx", False), int8=getattr(args, "int8", False),
                    sequential=args.sequential, sequential_groups=args.sequential_groups, recover=args.recover, recover_lr=args.recover_lr,
                    allow_overlap=args.allow_overlap, ridge=args.ridge, allocation=args.allocation,
-                   effect_samples=args.effect_samples, bn_weights=args.bn_weights)
+                   effect_samples=args.effect_samples, bn_weights=args.bn_weights,
+                   shrinkage=args.shrinkage)
 
 
 def _calibration(args):

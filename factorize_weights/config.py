@@ -64,6 +64,10 @@ class CompressConfig:
     # sequential refits from zeroing directions 180 calibration images never visit (measured:
     # demo logit error at params=0.3 0.022 -> 0.004)
     ridge: float = 0.01
+    # per layer, raise the ridge to the Ledoit-Wolf shrinkage of its calibration moments (stats.py):
+    # large where a layer has few calibration rows per input feature (a classifier fed 256 pooled
+    # vectors of 1280 features), negligible where it has many
+    shrinkage: bool = True
     allow_overlap: bool = False  # refuse the same file as calibration and held-out set unless set
     export_onnx: bool = False  # also write the factorized PyTorch model as model.onnx (checked)
     int8: bool = False  # also compare dynamic int8 quantization on top (ONNX, onnxruntime)

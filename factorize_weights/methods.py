@@ -136,18 +136,18 @@ class Whitened:
     def __init__(self, ridge: float = 0.01):
         self.ridge = ridge
 
-    def whitening(self, gram: np.ndarray) -> Whitening:
-        return whitening(ridge(gram, self.ridge))
-
-    def decompose(self, name: str, matrix: np.ndarray, *, dtype: str = "float32", moments=None) -> Decomposition:
+    def decompose(self, name: str, matrix: np.ndarray, *, dtype: str = "float32", moments=None,
+                  ridge_value: float | None = None) -> Decomposition:
+        """``ridge_value`` overrides the method's relative ridge for this layer (shrinkage)."""
         if moments is None:
             raise ValueError(f"layer {name!r}: whitened factors need the calibration moments of its inputs")
+        alpha = self.ridge if ridge_value is None else ridge_value
         matrix = checked_matrix(name, matrix)
         if matrix.shape[0] <= matrix.shape[1]:
-            dec = self.decompose_left(name, matrix, ridge(moments, self.ridge), dtype=dtype)
+            dec = self.decompose_left(name, matrix, ridge(moments, alpha), dtype=dtype)
         else:
-            dec = self.decompose_whitened(name, matrix, self.whitening(moments), dtype=dtype)
-        dec.extra["whitening"]["ridge"] = self.ridge
+            dec = self.decompose_whitened(name, matrix, whitening(ridge(moments, alpha)), dtype=dtype)
+        dec.extra["whitening"]["ridge"] = alpha
         return dec
 
     @staticmethod
@@ -207,17 +207,18 @@ class Columns:
 
 
 def row_weighted(method, name: str, matrix: np.ndarray, scale, *, dtype: str = "float32", moments=None,
-                 scaled_by: str | None = None):
+                 scaled_by: str | None = None, ridge_value: float | None = None):
     """Decompose ``diag(d) W`` and map it back, ``A = diag(1/d) U_k ...``: the truncation then minimises
     the error after a per-row scale ``d`` (an eval-mode BatchNorm's ``|gamma|/sqrt(var+eps)`` that
     reads the layer's output), with the same factor shapes and no extra cost. Rows that BatchNorm
     scales to nothing get a floor of 1e-6 of the largest scale, so the map back stays finite.
     ``scale=None`` (or a method that keeps actual columns) decomposes ``W`` itself."""
+    extra = {"ridge_value": ridge_value} if isinstance(method, Whitened) else {}
     if scale is None or not isinstance(method, (PlainSvd, Whitened)):
-        return method.decompose(name, matrix, dtype=dtype, moments=moments)
+        return method.decompose(name, matrix, dtype=dtype, moments=moments, **extra)
     d = np.asarray(scale, dtype=np.float64)
     d = np.maximum(d, 1e-6 * float(d.max()) if d.size and d.max() > 0 else 1.0)
-    dec = method.decompose(name, checked_matrix(name, matrix) * d[:, None], dtype=dtype, moments=moments)
+    dec = method.decompose(name, checked_matrix(name, matrix) * d[:, None], dtype=dtype, moments=moments, **extra)
     return unscale_rows(dec, d, scaled_by)
 
 

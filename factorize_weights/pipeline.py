@@ -74,11 +74,12 @@ def decompose(records: list[LayerRecord], method, config: CompressConfig, calibr
     layer's Gram matrix is released as soon as that layer is done."""
     out = {}
     for record in bar(selected(records), config, f"{method.name} decomposition"):
-        moments = calibration.release(record.name) if calibration is not None else None
+        moments = calibration.release(record.name, shrink=config.shrinkage) if calibration is not None else None
         try:
             scale = record.row_scale if config.bn_weights else None
-            out[record.name] = methods.row_weighted(method, record.name, _weight(record), scale,
-                                                    dtype=record.dtype, moments=moments, scaled_by=record.scaled_by)
+            out[record.name] = methods.row_weighted(
+                method, record.name, _weight(record), scale, dtype=record.dtype, moments=moments,
+                scaled_by=record.scaled_by, ridge_value=calibration.ridge_for(record.name) if calibration else None)
         except ValueError as exc:  # NaN/Inf in a weight is the user's model, not our bug
             raise InputError(str(exc)) from exc
     return out

@@ -29,6 +29,7 @@ class Moments:
         self.n = int(n)
         self.gram: np.ndarray | None = None
         self.rows = 0
+        self.fourth = 0.0  # sum of ||x||^4 over the rows (Ledoit-Wolf shrinkage needs it)
 
     def add(self, rows: np.ndarray) -> None:
         """Add a block of rows (r, n); any float dtype, summed in float64."""
@@ -41,6 +42,25 @@ class Moments:
         else:
             self.gram += g
         self.rows += r.shape[0]
+        self.fourth += float(np.sum(np.einsum("ij,ij->i", r, r) ** 2))
+
+    def shrinkage(self) -> float:
+        """Ledoit & Wolf's shrinkage intensity rho in [0, 1] for the second moment S = G / N
+        (Ledoit & Wolf, "A well-conditioned estimator for large-dimensional covariance matrices",
+        J. Multivariate Analysis 88, 2004; uncentred, as scikit-learn's ``assume_centered=True``):
+        (1 - rho) S + rho mu I, mu = tr(S) / n, is their estimate of the true second moment. It is
+        near 0 with many rows per input feature and grows when there are few."""
+        if self.gram is None or self.rows == 0:
+            return 0.0
+        n, rows = self.n, self.rows
+        s = self.gram / rows
+        mu = float(np.trace(s)) / n
+        s_norm2 = float(np.sum(s * s))
+        d2 = s_norm2 - n * mu * mu  # ||S - mu I||_F^2
+        if d2 <= 0:
+            return 0.0
+        b2 = max((self.fourth / rows - s_norm2) / rows, 0.0)  # (1/N^2) sum_i ||x_i x_i^T - S||_F^2
+        return float(min(b2, d2) / d2)
 
     @property
     def nbytes(self) -> int:
@@ -69,6 +89,14 @@ class CrossMoments:
             self.cross += c
             self.gram += g
         self.rows += x.shape[0]
+
+
+def shrinkage_ridge(rho: float, floor: float) -> float:
+    """The relative ridge equal to Ledoit-Wolf shrinkage ``rho``: (1 - rho) S + rho mu I is
+    proportional to S + rho / (1 - rho) mu I (scale does not change whitened factors); at least
+    ``floor``, at most 1e6 (rho -> 1: the factors tend to the plain SVD's)."""
+    alpha = rho / (1.0 - rho) if rho < 1.0 else 1e6
+    return float(min(max(alpha, floor), 1e6))
 
 
 def ridge(matrix: np.ndarray, alpha: float, reference: np.ndarray | None = None) -> np.ndarray:

@@ -357,3 +357,24 @@ def test_blocks_fed_a_changing_cache_object_are_not_replayed():
     result = compress(model, CompressConfig(budget="params=0.5", quiet=True, latency_repeats=0, sequential_groups=2),
                       heldout=HeldOut(held, None, "held"), calibration=HeldOut(data, None, "cal"))
     assert result.report["sequential"] and result.metric.after > 0.5
+
+
+def test_streamed_shrinkage_equals_scikit_learns_ledoit_wolf():
+    # oracle: scikit-learn's ledoit_wolf_shrinkage on the same rows (uncentred: assume_centered=True),
+    # the estimator of Ledoit & Wolf (J. Multivariate Analysis 88, 2004)
+    from sklearn.covariance import ledoit_wolf_shrinkage
+
+    rng = np.random.default_rng(11)
+    for rows, n in ((40, 30), (300, 20), (25, 80)):
+        x = rng.standard_normal((rows, n)) @ rng.standard_normal((n, n)) * 0.3 + 0.1
+        acc = Moments(n)
+        for block in np.array_split(x, 3):
+            acc.add(block)
+        expected = ledoit_wolf_shrinkage(x, assume_centered=True, block_size=1000)
+        assert acc.shrinkage() == pytest.approx(expected, rel=1e-9, abs=1e-12)
+    # few rows per feature shrink hard; many rows hardly at all
+    scales = np.exp(np.linspace(-2, 2, 50))  # an anisotropic truth (for isotropic data mu I is exact)
+    few, many = Moments(50), Moments(50)
+    few.add(rng.standard_normal((20, 50)) * scales)
+    many.add(rng.standard_normal((20000, 50)) * scales)
+    assert few.shrinkage() > 0.3 > 0.01 > many.shrinkage()
