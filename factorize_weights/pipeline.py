@@ -228,6 +228,7 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
     timings = {"prepare": 0.0}  # the whole preparation; calibrate and decompose are parts of it
     t0 = time.perf_counter()
     backend = backend_for(model)
+    model = backend.normalize(model)  # e.g. attention modules whose projections no Linear computes
     method = config.resolved_method(calibration is not None)
     parsed = [parse_budget(b) for b in (budgets or [config.budget])]
     if method == "whitened" and calibration is None:
@@ -557,6 +558,7 @@ def inspect_model(model, config: CompressConfig | None = None) -> dict:
     """Spectra and break-even ranks of every layer, no rewrite (the ``inspect`` command)."""
     config = config or CompressConfig()
     backend = backend_for(model)
+    model = backend.normalize(model)
     records = backend.discover(model, only=config.only, skip=config.skip)
     spectra = compute_spectra(records, config)
     return report_mod.inspect_report(records, spectra, backend.count_params(model))

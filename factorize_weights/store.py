@@ -205,6 +205,7 @@ def load_factorized(model, folder: str | Path):
         raise InputError(f"{folder}: no model.safetensors")
     from .backends import torch_backend as backend
 
+    model = backend.normalize(model)  # the same conversion compress made (attention projections)
     records = {r.name: r for r in backend.discover(model)}
     ranks = {}
     for entry in layers:

@@ -196,17 +196,22 @@ def test_stock_transformer_encoder_layers_compress_save_and_reload(tmp_path):
 
     torch.manual_seed(5)
     model = _Encoder().eval()
-    records = tb.discover(model)
+    reasons = {r.name: r.skip_reason for r in tb.discover(model)}  # the module as PyTorch ships it
+    assert "convert the module into four linear projections" in reasons["enc.layers.0.self_attn.in_proj"]
+    converted = tb.normalize(model)  # what compress works on: q/k/v/out as nn.Linear, same function
+    records = tb.discover(converted)
     reasons = {r.name: r.skip_reason for r in records}
-    assert "splitting it is not supported yet" in reasons["enc.layers.0.self_attn.in_proj"]  # listed, not lost
+    for name in ("q_proj", "k_proj", "v_proj", "out_proj"):
+        assert reasons[f"enc.layers.0.self_attn.{name}"] is None
     assert reasons["enc.layers.0.linear1"] is None and reasons["head"] is None
     x = torch.randn(8, 6, 32)
     full = {r.name: svd_factors(tb.weight_matrix(r), min(r.matrix_shape)) for r in records if r.skip_reason is None}
     with torch.no_grad():
-        np.testing.assert_allclose(tb.rewrite(model, records, full)(x), model(x), atol=1e-5)
+        np.testing.assert_allclose(tb.rewrite(converted, records, full)(x), model(x), atol=1e-5)
     result = compress(model, CompressConfig(budget="params=0.5", quiet=True, latency_repeats=2),
                       heldout=HeldOut(x.numpy(), None, "x"), out=tmp_path / "run")
     assert result.report["totals"]["layers_factorized"] >= 1
+    assert any(e["name"].endswith("self_attn.q_proj") for e in result.report["layers"])
     rebuilt = store.load_factorized(_Encoder().eval(), tmp_path / "run")
     with torch.no_grad():
         assert torch.equal(rebuilt(x), result.model(x))
@@ -219,6 +224,33 @@ class _Scaled(nn.Linear):
 
 class _Plain(nn.Linear):
     pass
+
+
+def test_split_attention_computes_what_multihead_attention_computes():
+    # oracle: torch's own nn.MultiheadAttention on the same inputs, masks and options
+    from factorize_weights.backends.torch_attention import SplitAttention
+
+    torch.manual_seed(9)
+    for batch_first, kdim in ((True, None), (False, 12)):
+        mha = nn.MultiheadAttention(16, 4, batch_first=batch_first, kdim=kdim, vdim=kdim).eval()
+        split = SplitAttention(mha).eval()
+        q, k = torch.randn(3, 5, 16), torch.randn(3, 7, kdim or 16)
+        if not batch_first:
+            q, k = q.transpose(0, 1), k.transpose(0, 1)
+        pad = torch.zeros(3, 7, dtype=torch.bool)
+        pad[0, -2:] = True
+        mask = torch.randn(5, 7)
+        for kwargs in ({}, {"key_padding_mask": pad}, {"attn_mask": mask}, {"average_attn_weights": False},
+                       {"attn_mask": mask > 1, "key_padding_mask": pad, "need_weights": False}):
+            with torch.no_grad():
+                want, got = mha(q, k, k, **kwargs), split(q, k, k, **kwargs)
+            torch.testing.assert_close(got[0], want[0], rtol=1e-5, atol=1e-6)
+            assert (got[1] is None) == (want[1] is None)
+            if want[1] is not None:
+                torch.testing.assert_close(got[1], want[1], rtol=1e-5, atol=1e-6)
+    odd = nn.MultiheadAttention(16, 4, add_bias_kv=True)
+    reasons = {r.name: r.skip_reason for r in tb.discover(tb.normalize(nn.Sequential(odd)))}
+    assert "bias_k/bias_v is not converted" in reasons["0.in_proj"]
 
 
 def test_layers_whose_behaviour_a_rewrite_would_change_are_skipped_with_a_reason():

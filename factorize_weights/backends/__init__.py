@@ -56,6 +56,11 @@ class Backend(Protocol):
         """A runner whose ``stream(records, sink)`` makes one group's paired passes; ``current``
         is patched in place between groups (a backend may cache block inputs across them)."""
 
+    def normalize(self, model):
+        """``model`` in the form the tool works on, computing the same function: PyTorch converts
+        ``nn.MultiheadAttention`` into four splittable linear projections (a copy; the user's model
+        is not modified); ONNX returns the model itself."""
+
     def replacement_errors(self, model, records: dict, trials: Iterable, batches: list, output: str | None = None):
         """For each ``(name, A, X)``: (squared output error, squared output norm) of ``model`` with only
         that layer replaced by the factor pair, on ``batches`` (PyTorch only; ONNX raises)."""

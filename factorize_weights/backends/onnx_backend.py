@@ -568,6 +568,11 @@ def measure_positions(model: OnnxModel, records: list[LayerRecord], sample) -> i
     return int(sum(np.asarray(outputs[n]).nbytes for n in names if n in outputs))
 
 
+def normalize(model: OnnxModel) -> OnnxModel:
+    """Nothing to convert: in an ONNX graph every projection is already its own MatMul or Gemm."""
+    return model
+
+
 def replacement_errors(model: OnnxModel, records: dict, trials, batches: list, output: str | None = None):
     """Not available for ONNX models (the pipeline refuses ``--allocation output`` for them before
     calling this, and ``auto`` allocates by each layer's own error)."""

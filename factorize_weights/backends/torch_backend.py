@@ -355,7 +355,10 @@ def _attention_projections(name: str, mha: nn.MultiheadAttention) -> list[LayerR
     """The q/k/v projection weights of ``nn.MultiheadAttention``, listed as skipped: the module reads
     them directly (packed ``in_proj_weight``, or ``q/k/v_proj_weight`` when kdim/vdim differ), so
     there is no Linear to replace."""
-    reason = "q/k/v projection read directly by nn.MultiheadAttention; splitting it is not supported yet"
+    from .torch_attention import why_not
+
+    reason = why_not(mha) or ("q/k/v projection read directly by nn.MultiheadAttention (compress and inspect "
+                              "convert the module into four linear projections first)")
     weights = ([("in_proj", mha.in_proj_weight)] if mha.in_proj_weight is not None else
                [(p, getattr(mha, f"{p}_weight")) for p in ("q_proj", "k_proj", "v_proj")])
     out = []
@@ -732,6 +735,14 @@ def measure_positions(model: nn.Module, records: list[LayerRecord], sample: np.n
 # largest relative difference at which an overridden forward() counts as the base class's: float32
 # round-off of the same arithmetic done in another order (common practice)
 OVERRIDE_TOLERANCE = 1e-5
+
+
+def normalize(model: nn.Module) -> nn.Module:
+    """``nn.MultiheadAttention`` modules become :class:`~.torch_attention.SplitAttention` (same
+    function, four ``nn.Linear`` projections) in a copy; a model without any is returned as is."""
+    from .torch_attention import split_attention
+
+    return split_attention(model)
 
 
 def replacement_errors(model: nn.Module, records: dict, trials, batches: list, output: str | None = None):
