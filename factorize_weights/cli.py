@@ -224,7 +224,8 @@ def _load_model(args):
             raise InputError(f"--weights is for a factory; the model folder {spec} holds its own weights")
         weights = next((str(p) for p in sorted(Path(spec).glob("*.safetensors"))), None)
         sources = {"model": spec, "format": "torch", "model_sha256": file_sha256(Path(spec) / "config.json"),
-                   "weights": weights, "weights_sha256": file_sha256(weights) if weights else None}
+                   "weights": weights, "weights_sha256": file_sha256(weights) if weights else None,
+                   "layout": "model-folder"}
         return torch_backend.load_pretrained(spec), _run_sources(args, sources)
     if ":" not in spec:
         raise InputError(f"--model {spec!r}: not an ONNX file, a model folder (config.json), or "

@@ -473,6 +473,9 @@ def save_result(result: CompressResult, prep: Prepared, out, force: bool) -> Non
                 prep.model, result.model, prep.heldout, prep.metric_name, config, extra.get("model.onnx"), work)
             report["wall_seconds"]["int8"] = round(time.perf_counter() - t0, 3)
         if out is not None:
+            sources = report.get("sources") or {}
+            if sources.get("layout") == "model-folder":  # config, tokenizer...: the folder stays a model folder
+                extra.update(store.folder_companions(Path(sources["model"]), work, taken=set(extra)))
             store.write_run(out, result.model, result.records, result.plan, report, config, force=force,
                             extra=extra, spectra=result.spectra)
 

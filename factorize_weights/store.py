@@ -122,6 +122,28 @@ def atomic_folder(out: Path, force: bool = True):
         raise
 
 
+# files of a model folder that hold weights (the run writes its own model.safetensors instead)
+WEIGHT_SUFFIXES = (".safetensors", ".bin", ".pt", ".pth", ".ckpt", ".h5", ".msgpack", ".onnx")
+# names the run itself writes
+RUN_FILES = ("model.safetensors", "plan.json", "report.json", "report.md", "report.html", "model.onnx",
+             "model.int8.onnx")
+
+
+def folder_companions(source: Path, work: Path, taken: set) -> dict[str, Path]:
+    """Copies (in ``work``) of a model folder's top-level files other than weights: ``config.json``,
+    tokenizer files and the like, so the output folder is a model folder too (rebuilt by
+    :func:`rebuild_folder`)."""
+    out = {}
+    for path in sorted(source.iterdir()):
+        name = path.name
+        if not path.is_file() or name in taken or name in RUN_FILES or name.endswith(WEIGHT_SUFFIXES) \
+                or name.endswith(".index.json"):
+            continue
+        shutil.copy2(path, work / name)
+        out[name] = work / name
+    return out
+
+
 def write_run_files(folder: Path, model, records, plan: Plan, report: dict, config: CompressConfig, *,
                     extra: dict[str, Path] | None = None, spectra: dict | None = None) -> None:
     """The model, plan.json, report.json, report.md and report.html into an existing folder."""

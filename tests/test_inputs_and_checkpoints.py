@@ -314,3 +314,11 @@ def test_a_hugging_face_model_folder_compresses_end_to_end(tmp_path, capsys):
     x = {k: torch.from_numpy(data[k]) for k in ("input_ids", "attention_mask")}
     with torch.no_grad():
         assert small(**x).last_hidden_state.shape == (24, 10, 64)
+    # the output is a model folder too: its config (and tokenizer files, had there been any) beside
+    # the factorized weights, loadable with --model OUT alone (no original weights needed)
+    assert (tmp_path / "out" / "config.json").read_text() == (tmp_path / "bert" / "config.json").read_text()
+    from factorize_weights.backends import torch_backend
+
+    again = torch_backend.load_pretrained(tmp_path / "out")
+    with torch.no_grad():
+        assert torch.equal(again(**x).last_hidden_state, small(**x).last_hidden_state)

@@ -104,7 +104,9 @@ def build_model(spec: str, weights: str | Path | None = None, *, weights_key: st
 def load_pretrained(folder: str | Path) -> nn.Module:
     """A Hugging Face-style model folder (``config.json`` plus weights saved by ``save_pretrained``)
     loaded through ``transformers`` from local files only: the class named in the config's
-    ``architectures`` (so a classifier keeps its head), else ``AutoModel``. Never any network."""
+    ``architectures`` (so a classifier keeps its head), else ``AutoModel``. Never any network.
+    A folder ``compress`` wrote from such a folder (``plan.json`` next to ``config.json``) is
+    rebuilt from its config and loaded with :func:`~factorize_weights.store.load_factorized`."""
     import os
 
     folder = Path(folder)
@@ -118,9 +120,16 @@ def load_pretrained(folder: str | Path) -> nn.Module:
         config = transformers.AutoConfig.from_pretrained(str(folder), local_files_only=True)
         names = getattr(config, "architectures", None) or []
         cls = getattr(transformers, names[0], None) if names else None
-        model = (cls or transformers.AutoModel).from_pretrained(str(folder), local_files_only=True)
+        if (folder / "plan.json").is_file():  # a folder this tool wrote: the architecture from the config,
+            model = cls(config) if cls is not None else transformers.AutoModel.from_config(config)
+        else:
+            model = (cls or transformers.AutoModel).from_pretrained(str(folder), local_files_only=True)
     except Exception as exc:
         raise InputError(f"--model {folder}: not a loadable model folder ({_describe(exc)})") from exc
+    if (folder / "plan.json").is_file():  # then its factor pairs and every weight from model.safetensors
+        from ..store import load_factorized
+
+        return load_factorized(model.eval(), folder)
     return model.eval()
 
 
