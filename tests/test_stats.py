@@ -225,22 +225,6 @@ class Chain(nn.Module):
         return self.head(h)
 
 
-def test_chain_cached_passes_equal_whole_model_passes():
-    # the whole-model paired passes (checked against numpy above) as the oracle for the cached ones
-    torch.manual_seed(4)
-    model = Chain().eval()
-    records = tb.discover(model)
-    x = torch.randn(40, 5)
-    batches = [x[:16].numpy(), x[16:].numpy()]
-    chain = tb.find_chain(model, records, batches[0])
-    assert chain is not None and chain[0] == ["blocks.0", "blocks.1", "blocks.2"]
-    assert chain[1] == {"blocks.0.up": 0, "blocks.0.down": 0, "blocks.1.up": 1, "blocks.1.down": 1,
-                        "blocks.2.up": 2, "blocks.2.down": 2}
-    runs = _cached_against_whole_model(
-        model, records, batches, (["embed"], ["blocks.0.up"], ["blocks.1.up"], ["blocks.1.down", "blocks.2.up"], ["head"]))
-    assert runs.at == 1  # the cache moved through the chain instead of rerunning the model
-
-
 class RateChain(Chain):
     """Each block gets a plain number of its own (like a per-block drop rate)."""
 
@@ -251,17 +235,26 @@ class RateChain(Chain):
         return self.head(h)
 
 
-def test_chain_with_per_block_plain_values_replays_each_blocks_own():
-    # whole-model passes as the oracle: a replay with block 0's value everywhere would differ
-    torch.manual_seed(5)
-    model = RateChain().eval()
+@pytest.mark.parametrize("chain_cls, own, groups, at", [
+    # the same mask object for every block
+    (Chain, {}, (["embed"], ["blocks.0.up"], ["blocks.1.up"], ["blocks.1.down", "blocks.2.up"], ["head"]), 1),
+    # a plain value per block: a replay with block 0's value everywhere would differ
+    (RateChain, {1: ({}, {"scale": 0.5}), 2: ({}, {"scale": 0.75})}, (["blocks.0.up"], ["blocks.2.down"], ["head"]), 2),
+])
+def test_chain_cached_passes_equal_whole_model_passes(chain_cls, own, groups, at):
+    # the whole-model paired passes (checked against numpy above) as the oracle for the cached ones
+    torch.manual_seed(4)
+    model = chain_cls().eval()
     records = tb.discover(model)
-    x = torch.randn(24, 5)
-    batches = [x[:12].numpy(), x[12:].numpy()]
+    x = torch.randn(40, 5)
+    batches = [x[:16].numpy(), x[16:].numpy()]
     chain = tb.find_chain(model, records, batches[0])
-    assert chain is not None and chain[2] == {1: ({}, {"scale": 0.5}), 2: ({}, {"scale": 0.75})}
-    runs = _cached_against_whole_model(model, records, batches, (["blocks.0.up"], ["blocks.2.down"], ["head"]))
-    assert runs.at == 2
+    assert chain is not None and chain[0] == ["blocks.0", "blocks.1", "blocks.2"]
+    assert chain[1] == {"blocks.0.up": 0, "blocks.0.down": 0, "blocks.1.up": 1, "blocks.1.down": 1,
+                        "blocks.2.up": 2, "blocks.2.down": 2}
+    assert chain[2] == own
+    runs = _cached_against_whole_model(model, records, batches, groups)
+    assert runs.at == at  # the cache moved through the chain instead of rerunning the model
 
 
 def _cached_against_whole_model(model, records, batches, groups):
