@@ -24,7 +24,7 @@ from .backends import backend_for
 from .config import CompressConfig
 from .data import HeldOut
 from .errors import InputError
-from .methods import Whitened, unscale_rows
+from .methods import Whitened, floored_scale, unscale_rows
 from .progress import bar
 from .records import LayerRecord
 from .stats import CrossMoments, Moments, ridge, shrinkage_ridge, weight_error
@@ -207,12 +207,12 @@ def sequential_refit(model, records: list[LayerRecord], ranks: dict, cal: Calibr
             if record.row_scale is None or not config.bn_weights:
                 dec = Whitened.decompose_product(name, product, wh_new, dtype=record.dtype)
             else:  # the error after the BatchNorm that reads this layer (methods.row_weighted)
-                d = np.maximum(record.row_scale, 1e-6 * float(np.max(record.row_scale)))
+                d = floored_scale(record.row_scale)
                 dec = unscale_rows(Whitened.decompose_product(name, product * d[:, None], wh_new, dtype=record.dtype),
                                    d, record.scaled_by)
             a, x = done[name] = dec.factors(ranks[name], config.split)
             errors[name] = weight_error(w, a, x)
-            fits[name] = {"method": wh_new.method, "ridge": config.ridge, "floor": wh_new.floor}
+            fits[name] = {"method": wh_new.method, "ridge": alpha, "floor": wh_new.floor}
         working = backend.rewrite(working, records, done, in_place=True)
     cal.passes = (1 if cal.moments else 0) + len(groups)  # this budget's: the moments pass, then one per group
     return working, fits, errors

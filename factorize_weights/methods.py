@@ -216,10 +216,15 @@ def row_weighted(method, name: str, matrix: np.ndarray, scale, *, dtype: str = "
     extra = {"ridge_value": ridge_value} if isinstance(method, Whitened) else {}
     if scale is None or not isinstance(method, (PlainSvd, Whitened)):
         return method.decompose(name, matrix, dtype=dtype, moments=moments, **extra)
-    d = np.asarray(scale, dtype=np.float64)
-    d = np.maximum(d, 1e-6 * float(d.max()) if d.size and d.max() > 0 else 1.0)
+    d = floored_scale(scale)
     dec = method.decompose(name, checked_matrix(name, matrix) * d[:, None], dtype=dtype, moments=moments, **extra)
     return unscale_rows(dec, d, scaled_by)
+
+
+def floored_scale(scale) -> np.ndarray:
+    """Row scales with a floor of 1e-6 of the largest, so dividing by them stays finite."""
+    d = np.asarray(scale, dtype=np.float64)
+    return np.maximum(d, 1e-6 * float(d.max()) if d.size and d.max() > 0 else 1.0)
 
 
 def unscale_rows(dec: Decomposition, d: np.ndarray, scaled_by: str | None) -> Decomposition:

@@ -243,15 +243,11 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
     records = backend.discover(model, only=config.only, skip=config.skip)
     chosen = selected(records)
     checkable = heldout is not None or calibration is not None  # overridden forward()s are checked on data
-    if not chosen and not (checkable and any(r.skip_reason and "overrides forward()" in r.skip_reason for r in records)):
+    if not chosen and not (checkable and any(r.options.get("check_forward") for r in records)):
         found = f"{len(records)} layer(s) found, all skipped" if records else "no linear or convolution layers found"
         where = f"{model_source}: " if model_source else ""
         raise InputError(f"{where}nothing to factorize: {found}")
-    for record in chosen:  # the weights before any data: a NaN weight is named as such, not as bad data
-        try:
-            checked_matrix(record.name, backend.weight_matrix(record))
-        except ValueError as exc:
-            raise InputError(str(exc)) from exc
+    _check_weights(backend, chosen)  # the weights before any data: a NaN weight is named as such, not as bad data
     metric_name = check_heldout(model, heldout, config.metric, config.output) if heldout is not None else None
     if any(b.kind == "flops" for b in parsed) and heldout is None:
         raise InputError("a flops budget needs --heldout (to measure layer output sizes)")
@@ -261,12 +257,8 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
     sample = heldout if heldout is not None else calibration
     if sample is not None:  # one sample tells each layer's output positions (FLOPs) and memory
         size = batch_size_for(config, backend.measure_positions(model, records, sample.inputs))
-        admitted = [r for r in selected(records) if r not in chosen]  # overridden forward()s that matched
-        for record in admitted:
-            try:
-                checked_matrix(record.name, backend.weight_matrix(record))
-            except ValueError as exc:
-                raise InputError(str(exc)) from exc
+        before = {r.name for r in chosen}
+        _check_weights(backend, [r for r in selected(records) if r.name not in before])  # forward()s that matched
         chosen = selected(records)
         if not chosen:
             where = f"{model_source}: " if model_source else ""
@@ -324,6 +316,14 @@ def measure_effects(model, chosen: list[LayerRecord], decompositions: dict, cali
         out[name].errors.append(err / energy if energy > 0 else 0.0)
         out[name].own.append(own)
     return out
+
+
+def _check_weights(backend, records: list[LayerRecord]) -> None:
+    for record in records:
+        try:
+            checked_matrix(record.name, backend.weight_matrix(record))
+        except ValueError as exc:
+            raise InputError(str(exc)) from exc
 
 
 def plan_budget(prep: Prepared, budget: str) -> Plan:

@@ -348,6 +348,8 @@ def discover(
                              str(weight.dtype).removeprefix("torch."), options, handle=module)
         record.skip_reason = _skip_reason(name, module, record, parents.get(id(module)), owners,
                                           aliases.get(id(module), [name]), only, skip)
+        if record.skip_reason == OVERRIDE_REASON.format(cls=type(module).__name__):
+            record.options["check_forward"] = True  # measure_positions compares it on real inputs
         records.append(record)
     return records
 
@@ -665,10 +667,11 @@ def measure_positions(model: nn.Module, records: list[LayerRecord], sample: np.n
         if isinstance(output, torch.Tensor):
             total[0] += output.numel() * output.element_size()
 
-    overridden = [r for r in records if r.skip_reason == OVERRIDE_REASON.format(cls=type(r.handle).__name__)]
+    overridden = [r for r in records if r.skip_reason is not None and r.options.get("check_forward")]
     differences = {r.name: [] for r in overridden}
+    bases = {r.name: next(cls for cls in _KINDS if isinstance(r.handle, cls)) for r in overridden}
     for record in overridden:  # does the base class compute the same on these real inputs?
-        base = next(cls for cls in _KINDS if isinstance(record.handle, cls))
+        base = bases[record.name]
 
         def compare(module, args, output, record=record, base=base):
             if len(args) != 1 or not isinstance(output, torch.Tensor):
@@ -702,17 +705,13 @@ def measure_positions(model: nn.Module, records: list[LayerRecord], sample: np.n
             hooks.append(bn.register_forward_pre_hook(lambda m, a, name=bn_name: scaled(m, a, name)))
 
     for record in records:
-        if record.skip_reason is not None and record not in overridden:
+        if record.skip_reason is not None and record.name not in differences:
             continue
         record.positions = 0
         record.row_scale = record.scaled_by = None
 
-        def remember(module, args, output, record=record):
-            last[0], last[1] = (output, record) if isinstance(output, torch.Tensor) else (None, None)
-
-        hooks.append(record.handle.register_forward_hook(remember))
-
         def hook(module, args, output, record=record):
+            last[0], last[1] = (output, record) if isinstance(output, torch.Tensor) else (None, None)
             shape = output.shape
             if record.kind == "linear":
                 record.positions += int(np.prod(shape[1:-1]))  # empty product: 1
@@ -727,7 +726,7 @@ def measure_positions(model: nn.Module, records: list[LayerRecord], sample: np.n
     for record in overridden:
         seen = differences[record.name]
         worst = max(seen) if seen else float("inf")
-        base = next(cls for cls in _KINDS if isinstance(record.handle, cls))
+        base = bases[record.name]
         if seen and worst <= OVERRIDE_TOLERANCE:
             record.skip_reason = None  # the rewrite computes what the layer computed, on real inputs
             record.options["forward_checked"] = (f"{type(record.handle).__name__}.forward matched "
