@@ -226,11 +226,10 @@ def recover(original, factorized, records, cal: Calibration, config: CompressCon
         raise InputError("--recover fine-tunes PyTorch factor pairs; an ONNX model has no trainable factors")
     if not torch_backend.factor_parameters(factorized):
         raise InputError("--recover: the plan factorized no layer, so there are no factors to fine-tune")
-    if isinstance(cal.data.inputs, dict):
-        raise InputError(f"--calibration {cal.data.source}: recovery needs one 'inputs' array")
-    sample = torch_backend.predict(original, cal.data.inputs[:2])
+    sample = torch_backend.predict(original, torch_backend.first_rows(cal.data.inputs, 2), source="--calibration",
+                                   output=config.output)
     # KL on logits for classifiers (2-D outputs, a classification metric or none); MSE otherwise
     classifier = sample.ndim == 2 and sample.shape[1] > 1 and metric in (None, "top1", "top5", "agreement")
     loss = "kl" if classifier else "mse"
     return torch_recovery.recover(original, factorized, cal.data.inputs, steps=config.recover, loss=loss,
-                                  lr=config.recover_lr, seed=config.seed, quiet=config.quiet)
+                                  output=config.output, lr=config.recover_lr, seed=config.seed, quiet=config.quiet)

@@ -59,7 +59,7 @@ class CompressConfig:
     # reports/accuracy_pretrained.md)
     bn_weights: bool = False
     recover: int = 0  # fine-tuning steps of the factors after factorization (needs calibration); 0: off
-    recover_lr: float = 1e-4  # 1e-3 overshot on whitened factors (validation loss rose at once; measured)
+    recover_lr: float | None = None  # None: chosen by short trials on the validation slice (torch_recovery.py)
     # ridge on the calibration moments, relative to their mean diagonal: 1% (common practice) kept
     # sequential refits from zeroing directions 180 calibration images never visit (measured:
     # demo logit error at params=0.3 0.022 -> 0.004)
@@ -89,7 +89,7 @@ class CompressConfig:
             raise InputError(f"--metric must be one of {', '.join(METRICS)}; got {self.metric!r}")
         if not (isinstance(self.ridge, (int, float)) and 0 <= self.ridge < 1):
             raise InputError(f"--ridge must be in [0, 1); got {self.ridge!r}")
-        if not (isinstance(self.recover_lr, (int, float)) and 0 < self.recover_lr < 1):
+        if self.recover_lr is not None and not (isinstance(self.recover_lr, (int, float)) and 0 < self.recover_lr < 1):
             raise InputError(f"--recover-lr must be in (0, 1); got {self.recover_lr!r}")
         minimum = {"recover": 0, "effect_samples": 1, "sequential_groups": 1, "rank_step": 1, "min_rank": 1, "batch_size": 1, "oversampling": 0,
                    "power_iterations": 0, "error_samples": 0, "seed": 0, "latency_batch": 1,

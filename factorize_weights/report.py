@@ -319,7 +319,8 @@ def render_markdown(report: dict) -> str:
         what += ", refitted sequentially to the original outputs"
     if report.get("recovery"):
         rec = report["recovery"]
-        what += f", then {rec['steps_run']} recovery steps ({rec['loss']})"
+        what += f", then {rec['steps_run']} recovery steps ({rec['loss']}, learning rate {rec['lr']:g}"
+        what += " chosen by short trials)" if rec.get("lr_trials") else ")"
         if rec.get("kept") == "before":
             what += "; the fine-tuned factors did not beat the starting ones on the validation slice, so those were kept"
     alloc = report.get("allocation") or {}

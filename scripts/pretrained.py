@@ -58,9 +58,11 @@ def _photo(name: str) -> np.ndarray:
     return skimage.io.imread(os.path.join(skimage.data.data_dir, name))
 
 
-def photo_crops(names, count: int, seed: int, size: int = 224) -> np.ndarray:
+def photo_crops(names, count: int, seed: int, size: int = 224, half: str | None = None) -> np.ndarray:
     """``count`` random square crops (10-60% of the shorter side's square, random flips), resized
-    to ``size`` and normalized with the ImageNet mean and deviation: float32 (count, 3, size, size)."""
+    to ``size`` and normalized with the ImageNet mean and deviation: float32 (count, 3, size, size).
+    ``half`` ("left" or "right") takes the crops from that half of each photograph only, so that two
+    sets cut from opposite halves share the scenes but not a pixel."""
     import torch
     import torch.nn.functional as F
 
@@ -71,6 +73,9 @@ def photo_crops(names, count: int, seed: int, size: int = 224) -> np.ndarray:
     out = np.empty((count, 3, size, size), np.float32)
     for i in range(count):
         img = photos[i % len(photos)]
+        if half is not None:
+            mid = img.shape[1] // 2
+            img = img[:, :mid] if half == "left" else img[:, mid:]
         h, w = img.shape[:2]
         side = int(min(h, w) * np.sqrt(rng.uniform(0.1, 0.6)))
         y, x = rng.integers(0, h - side + 1), rng.integers(0, w - side + 1)
