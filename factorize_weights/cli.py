@@ -111,7 +111,8 @@ def _plan_options(p: argparse.ArgumentParser, *, sweep: bool = False) -> None:
     g.add_argument("--recover", type=int, default=_DEFAULTS.recover, metavar="STEPS",
                    help="PyTorch: fine-tune only the factors for up to STEPS steps on the calibration inputs")
     g.add_argument("--recover-lr", type=float, default=_DEFAULTS.recover_lr, metavar="LR",
-                   help="recovery learning rate (default: the best of 1e-3, 1e-4, 1e-5 and 1e-6 after 10 steps each)")
+                   help="recovery learning rate (default: the largest of 1e-3, 1e-4, 1e-5 and 1e-6 that stays stable "
+                        "over a 10-step trial)")
     g = p.add_argument_group("evaluation and output")
     g.add_argument("--heldout", metavar="DATA", help="held-out .npz (inputs[, labels]) or FILE.py:FUNCTION")
     g.add_argument("--output", metavar="NAME",

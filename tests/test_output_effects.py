@@ -291,9 +291,11 @@ def test_recovery_on_named_inputs_lowers_the_output_error_torch_measures():
     prep.config.recover = 80
     result = pipeline.realize(prep, "params=0.35", latency=False, layer_errors=False)
     rec = result.report["recovery"]
-    # the learning rate was chosen by the trials, and is the one with the lowest trial loss
+    # the learning rate was chosen by the trials: the largest one that stayed stable
     assert set(rec["lr_trials"]) == {"0.001", "0.0001", "1e-05", "1e-06"}
-    assert f"{rec['lr']:g}" == min(rec["lr_trials"], key=rec["lr_trials"].get)
+    start = rec["validation_loss_before"]
+    stable = [float(r) for r, v in rec["lr_trials"].items() if v <= 1.05 * start]
+    assert stable and rec["lr"] == max(stable)
     assert rec["kept"] == "after" and rec["validation_loss_after"] < rec["validation_loss_before"]
     ref = tb.predict(model, held)
 
