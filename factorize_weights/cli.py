@@ -108,6 +108,10 @@ def _plan_options(p: argparse.ArgumentParser, *, sweep: bool = False) -> None:
     g.add_argument("--bn-weights", action="store_true",
                    help="truncate each layer for its error after the eval-mode BatchNorm that reads it "
                         "(rows weighted by |gamma|/sqrt(var+eps); PyTorch, needs --heldout or --calibration)")
+    g.add_argument("--bn-inputs", action="store_true",
+                   help="without calibration: truncate each layer fed by an eval-mode BatchNorm (and an elementwise "
+                        "activation, average pooling) for its output error on the input statistics that BatchNorm "
+                        "was trained to produce (PyTorch, needs --heldout)")
     g.add_argument("--recover", type=int, default=_DEFAULTS.recover, metavar="STEPS",
                    help="PyTorch: fine-tune only the factors for up to STEPS steps on the calibration inputs")
     g.add_argument("--recover-lr", type=float, default=_DEFAULTS.recover_lr, metavar="LR",
@@ -300,7 +304,7 @@ def _plan_config(args, budget: str) -> CompressConfig:
                    export_onnx=getattr(args, "export_onnx", False), int8=getattr(args, "int8", False),
                    sequential=args.sequential, sequential_groups=args.sequential_groups, recover=args.recover, recover_lr=args.recover_lr,
                    allow_overlap=args.allow_overlap, ridge=args.ridge, allocation=args.allocation,
-                   effect_samples=args.effect_samples, bn_weights=args.bn_weights,
+                   effect_samples=args.effect_samples, bn_weights=args.bn_weights, bn_inputs=args.bn_inputs,
                    shrinkage=args.shrinkage)
 
 

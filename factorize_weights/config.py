@@ -58,6 +58,7 @@ class CompressConfig:
     # the layer's output; off by default: on EfficientNet-Lite0 it lowered agreement (measured,
     # reports/accuracy_pretrained.md)
     bn_weights: bool = False
+    bn_inputs: bool = False  # without calibration: weight layers fed by a BatchNorm by its input statistics
     recover: int = 0  # fine-tuning steps of the factors after factorization (needs calibration); 0: off
     recover_lr: float | None = None  # None: chosen by short trials on the validation slice (torch_recovery.py)
     # ridge on the calibration moments, relative to their mean diagonal: 1% (common practice) kept

@@ -75,10 +75,14 @@ def decompose(records: list[LayerRecord], method, config: CompressConfig, calibr
     out = {}
     for record in bar(selected(records), config, f"{method.name} decomposition"):
         moments = calibration.release(record.name, shrink=config.shrinkage) if calibration is not None else None
+        use = method
+        if config.bn_inputs and moments is None and record.input_stats is not None \
+                and isinstance(method, methods.PlainSvd):  # no data: the BatchNorm's promised input statistics
+            moments, use = methods.input_moment(record.input_stats), methods.Whitened(config.ridge)
         try:
             scale = record.row_scale if config.bn_weights else None
             out[record.name] = methods.row_weighted(
-                method, record.name, _weight(record), scale, dtype=record.dtype, moments=moments,
+                use, record.name, _weight(record), scale, dtype=record.dtype, moments=moments,
                 scaled_by=record.scaled_by, ridge_value=calibration.ridge_for(record.name) if calibration else None)
         except ValueError as exc:  # NaN/Inf in a weight is the user's model, not our bug
             raise InputError(str(exc)) from exc
@@ -239,6 +243,11 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
         raise InputError(f"--sequential refits whitened factors; it cannot be combined with --method {method}")
     if config.recover and backend.FORMAT != "torch":
         raise InputError("--recover fine-tunes PyTorch factor pairs; an ONNX model has no trainable factors")
+    for flag, on in (("--bn-weights", config.bn_weights), ("--bn-inputs", config.bn_inputs)):
+        if on and backend.FORMAT != "torch":
+            raise InputError(f"{flag} reads PyTorch BatchNorm modules; an ONNX model has none to read")
+        if on and heldout is None and calibration is None:
+            raise InputError(f"{flag} needs --heldout or --calibration (one forward pass finds the BatchNorms)")
     _check_overlap(heldout, calibration, config.allow_overlap)
     records = backend.discover(model, only=config.only, skip=config.skip)
     chosen = selected(records)

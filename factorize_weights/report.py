@@ -103,6 +103,8 @@ def build_report(
             entry["output_error"] = layer_errors.get(record.name, 0.0 if entry["rank"] is None else None)
         if record.scaled_by is not None and config.bn_weights:  # the error after this normalization was minimised
             entry["error_weighted_by"] = record.scaled_by
+        if record.input_from is not None and config.bn_inputs and method == "svd":  # inputs weighted by a prior
+            entry["input_statistics_from"] = record.input_from
         if effects and record.name in effects:
             entry["output_effect"] = effects[record.name].to_dict()
         layers.append(entry)

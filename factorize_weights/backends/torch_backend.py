@@ -704,11 +704,13 @@ def measure_positions(model: nn.Module, records: list[LayerRecord], sample: np.n
         if isinstance(bn, nn.modules.batchnorm._BatchNorm):
             hooks.append(bn.register_forward_pre_hook(lambda m, a, name=bn_name: scaled(m, a, name)))
 
+    produced = _trace_normalized_inputs(model, records, hooks)
     for record in records:
         if record.skip_reason is not None and record.name not in differences:
             continue
         record.positions = 0
         record.row_scale = record.scaled_by = None
+        record.input_stats = record.input_from = None
 
         def hook(module, args, output, record=record):
             last[0], last[1] = (output, record) if isinstance(output, torch.Tensor) else (None, None)
@@ -723,6 +725,9 @@ def measure_positions(model: nn.Module, records: list[LayerRecord], sample: np.n
     rows = min(8 if overridden else 1, len(next(iter(sample.values())) if isinstance(sample, dict) else sample))
     _run_once(model, sample, hooks, rows=rows)
     total[0] //= max(rows, 1)
+    for record in records:
+        if record.name in produced and record.positions is not None:
+            record.input_stats, record.input_from = produced[record.name]
     for record in overridden:
         seen = differences[record.name]
         worst = max(seen) if seen else float("inf")
@@ -738,6 +743,108 @@ def measure_positions(model: nn.Module, records: list[LayerRecord], sample: np.n
             record.positions = None
             record.row_scale = record.scaled_by = None
     return int(total[0])
+
+
+# elementwise activations an input prior passes through (applied to quadrature points as they are)
+_ELEMENTWISE = (nn.ReLU, nn.ReLU6, nn.LeakyReLU, nn.ELU, nn.SELU, nn.CELU, nn.GELU, nn.SiLU, nn.Hardswish,
+                nn.Hardsigmoid, nn.Hardtanh, nn.Sigmoid, nn.Tanh, nn.Mish, nn.Softplus)
+_PASS = (nn.Identity, nn.Dropout, nn.Flatten)  # eval mode: the values pass unchanged
+_POOL = (nn.AdaptiveAvgPool1d, nn.AdaptiveAvgPool2d, nn.AdaptiveAvgPool3d, nn.AvgPool1d, nn.AvgPool2d, nn.AvgPool3d)
+# E over N(0, 1) by the trapezoid rule on a fine grid: activations have kinks (ReLU, ReLU6), where
+# Gauss-Hermite nodes converge slowly (64 of them were 0.6% off a ReLU's mean; measured)
+_NODES = np.linspace(-10.0, 10.0, 4001)
+_WEIGHTS = np.exp(-0.5 * _NODES ** 2)
+_WEIGHTS = _WEIGHTS / _WEIGHTS.sum()
+
+
+def activation_moments(beta: np.ndarray, gamma: np.ndarray, act: nn.Module | None) -> tuple[np.ndarray, np.ndarray]:
+    """Mean and variance of ``act(z)`` per channel for ``z ~ N(beta, gamma^2)``, by quadrature on
+    4001 points (the activation module itself is evaluated at them)."""
+    z = torch.from_numpy(beta[None, :] + np.abs(gamma)[None, :] * _NODES[:, None])  # (points, C) float64
+    with torch.no_grad():
+        f = (act(z.clone()) if act is not None else z).double().numpy()
+    mean = _WEIGHTS @ f
+    return mean, np.maximum(_WEIGHTS @ (f * f) - mean * mean, 0.0)
+
+
+def _key(t: torch.Tensor) -> tuple:
+    return (t.data_ptr(), t.numel(), t.dtype)
+
+
+def _trace_normalized_inputs(model: nn.Module, records: list[LayerRecord], hooks: list) -> dict:
+    """Hooks that, during the next forward pass, find the layers whose input is an eval-mode
+    BatchNorm's output, possibly through one elementwise activation module, average pooling and
+    pass-through modules (dropout, flatten; a view of the same storage counts as the same tensor).
+    The returned dict fills after the pass: ``{layer name: ((mean, variance) per input channel,
+    kernel taps), "bn -> act -> pool")}``, the statistics an eval-mode BatchNorm promises on the data it was trained
+    on: its output is N(beta, gamma^2) per channel under the usual Gaussian reading, which the
+    activation maps as :func:`activation_moments` computes (independent channels assumed).
+    Average pooling keeps the mean; the variance is kept as an upper bound (the spatial correlation
+    is unknown)."""
+    chains: dict[tuple, tuple] = {}  # tensor key -> (bn module, bn name, activation, path)
+    alive: list[torch.Tensor] = []  # keeps tracked tensors alive, so their storage is not reused
+    found: dict[str, tuple] = {}
+
+    def on_bn(module, args, output, name):
+        if not module.training and module.running_var is not None and isinstance(output, torch.Tensor):
+            chains[_key(output)] = (module, name, None, name)
+            alive.append(output)
+
+    def on_step(module, args, output, name):
+        if not args or not isinstance(args[0], torch.Tensor) or not isinstance(output, torch.Tensor):
+            return
+        src = chains.get(_key(args[0]))
+        if src is None:
+            return
+        bn, bn_name, act, path = src
+        if isinstance(module, _ELEMENTWISE):
+            if act is not None or "pool" in path:  # one activation, before any pooling
+                return
+            chains[_key(output)] = (bn, bn_name, module, f"{path} -> {name}")
+        elif isinstance(module, _POOL):
+            chains[_key(output)] = (bn, bn_name, act, f"{path} -> {name} (pool)")
+        else:
+            chains[_key(output)] = src
+        alive.append(output)
+
+    def on_layer(module, args, record):
+        if record.name in found or not args or not isinstance(args[0], torch.Tensor):
+            return
+        src = chains.get(_key(args[0]))
+        x = args[0]
+        if src is None:
+            return
+        bn, _, act, path = src
+        channels = int(bn.running_var.numel())
+        wanted = record.handle.in_channels if record.kind != "linear" else record.handle.in_features
+        if channels != wanted or getattr(record.handle, "groups", 1) != 1 or \
+                (record.kind == "linear" and x.dim() != 2):
+            return
+        gamma = bn.weight.detach().double().numpy() if bn.weight is not None else np.ones(channels)
+        beta = bn.bias.detach().double().numpy() if bn.bias is not None else np.zeros(channels)
+        taps = 1 if record.kind == "linear" else int(np.prod(record.handle.kernel_size))
+        found[record.name] = ((*activation_moments(beta, gamma, act), taps), path)
+
+    for name, module in model.named_modules():
+        if isinstance(module, nn.modules.batchnorm._BatchNorm):
+            hooks.append(module.register_forward_hook(lambda m, a, o, name=name: on_bn(m, a, o, name)))
+        elif isinstance(module, _ELEMENTWISE + _PASS + _POOL):
+            hooks.append(module.register_forward_hook(lambda m, a, o, name=name: on_step(m, a, o, name)))
+    for record in records:
+        hooks.append(record.handle.register_forward_pre_hook(lambda m, a, record=record: on_layer(m, a, record)))
+    hooks.append(_Release(alive, chains))
+    return found
+
+
+class _Release:
+    """Drops the traced tensors when the hooks are removed (after the pass)."""
+
+    def __init__(self, alive: list, chains: dict):
+        self.alive, self.chains = alive, chains
+
+    def remove(self) -> None:
+        self.alive.clear()
+        self.chains.clear()
 
 
 # largest relative difference at which an overridden forward() counts as the base class's: float32
