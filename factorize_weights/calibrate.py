@@ -58,6 +58,7 @@ class Calibration:
     gram_bytes: int = 0
     batch_size: int = 256
     passes: int = 1  # passes over the calibration set for the latest budget (moments + refit groups)
+    rows_ridge: float = 0.0  # with shrinkage: each layer's ridge is at least this x (input width) / rows
 
     def summary(self) -> dict:
         return {
@@ -83,10 +84,12 @@ class Calibration:
 
     def release(self, name: str, shrink: bool = False) -> np.ndarray:
         """The Gram matrix of ``name``, dropped from this object (it is used once); with ``shrink``,
-        the layer's ridge becomes at least its Ledoit-Wolf shrinkage first."""
+        the layer's ridge becomes at least its Ledoit-Wolf shrinkage and ``rows_ridge`` x its input
+        width / its calibration rows first."""
         st = self.moments[name]
         if shrink:
-            self.ridges[name] = shrinkage_ridge(st.shrinkage(), self.ridge)
+            floor = max(self.ridge, self.rows_ridge * st.n / st.rows if st.rows else 0.0)
+            self.ridges[name] = shrinkage_ridge(st.shrinkage(), floor)
         g = st.gram
         st.gram = None
         return g
@@ -145,7 +148,7 @@ def calibrate(model, records: list[LayerRecord], data: HeldOut, config: Compress
                    if config.ridge > 0 else "second moment is rank-deficient and was only floored (--ridge 0)")
             )
     gram_bytes = int(sum(st.nbytes for st in moments.values()))
-    return Calibration(data, moments, warnings, config.ridge, gram_bytes, batch_size)
+    return Calibration(data, moments, warnings, config.ridge, gram_bytes, batch_size, rows_ridge=config.rows_ridge)
 
 
 def groups_in_order(stages: list[list[str]], records: dict[str, LayerRecord], groups: int,

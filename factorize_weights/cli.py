@@ -93,6 +93,9 @@ def _plan_options(p: argparse.ArgumentParser, *, sweep: bool = False) -> None:
     g.add_argument("--shrinkage", action=argparse.BooleanOptionalAction, default=_DEFAULTS.shrinkage,
                    help="raise each layer's ridge to the Ledoit-Wolf shrinkage of its calibration moments "
                         "(large when a layer has few calibration rows per input feature; on by default)")
+    g.add_argument("--rows-ridge", type=float, default=_DEFAULTS.rows_ridge, metavar="C",
+                   help="with --shrinkage: each layer's ridge is at least C x its input width / its calibration rows "
+                        f"(default {_DEFAULTS.rows_ridge:g}; binds where a layer sees few rows per feature)")
     g.add_argument("--sequential", action=argparse.BooleanOptionalAction, default=_DEFAULTS.sequential,
                    help="refit layers in forward order to the original outputs (reduced-rank regression); "
                         "on by default with whitened factors")
@@ -305,7 +308,7 @@ def _plan_config(args, budget: str) -> CompressConfig:
                    sequential=args.sequential, sequential_groups=args.sequential_groups, recover=args.recover, recover_lr=args.recover_lr,
                    allow_overlap=args.allow_overlap, ridge=args.ridge, allocation=args.allocation,
                    effect_samples=args.effect_samples, bn_weights=args.bn_weights, bn_inputs=args.bn_inputs,
-                   shrinkage=args.shrinkage)
+                   shrinkage=args.shrinkage, rows_ridge=args.rows_ridge)
 
 
 def _calibration(args):

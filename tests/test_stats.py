@@ -371,3 +371,28 @@ def test_streamed_shrinkage_equals_scikit_learns_ledoit_wolf():
     few.add(rng.standard_normal((20, 50)) * scales)
     many.add(rng.standard_normal((20000, 50)) * scales)
     assert few.shrinkage() > 0.3 > 0.01 > many.shrinkage()
+
+
+def test_rows_ridge_floors_the_ridge_of_layers_with_few_rows_per_feature():
+    # the floor is rows_ridge x width / rows (config.py says why); where a layer has many rows per
+    # feature the ridge is the Ledoit-Wolf one (scikit-learn's ledoit_wolf_shrinkage as oracle)
+    from sklearn.covariance import ledoit_wolf_shrinkage
+
+    from factorize_weights.calibrate import Calibration
+    from factorize_weights.data import HeldOut
+    from factorize_weights.stats import shrinkage_ridge
+
+    rng = np.random.default_rng(12)
+    scales = np.exp(np.linspace(-2, 2, 60))
+    data = {"few": rng.standard_normal((30, 60)) * scales, "many": rng.standard_normal((3000, 60)) * scales}
+    moments = {}
+    for name, x in data.items():
+        moments[name] = Moments(60)
+        moments[name].add(x)
+    cal = Calibration(HeldOut(np.zeros((1, 1), np.float32), None, "cal"), moments, ridge=0.01, rows_ridge=0.5)
+    for name in data:
+        cal.release(name, shrink=True)
+    lw = {name: shrinkage_ridge(ledoit_wolf_shrinkage(x, assume_centered=True), 0.01) for name, x in data.items()}
+    assert cal.ridge_for("few") == pytest.approx(max(lw["few"], 0.5 * 60 / 30))  # the floor binds: 1.0
+    assert cal.ridge_for("few") == pytest.approx(1.0)
+    assert cal.ridge_for("many") == pytest.approx(lw["many"])  # 0.5 x 60 / 3000 = 0.01 does not bind
