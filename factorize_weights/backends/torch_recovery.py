@@ -88,6 +88,7 @@ def recover(
     order = rng.permutation(n)
     n_val = max(1, int(round(validation_fraction * n))) if n > 1 else 0
     val_idx, train_idx = order[:n_val], order[n_val:] if n > n_val else order
+
     def run(model, idx):
         return select_output(call(model, _take(inputs, idx)), output)
 
@@ -120,7 +121,7 @@ def recover(
     trials = {}
     best_step, since, step = 0, 0, 0
     try:
-        if lr is None:  # a few steps at each rate from the same start; the lowest validation loss wins
+        if lr is None:  # a few steps at each rate from the same start; the largest stable rate wins
             for candidate in LR_TRIALS if steps and n_val else ():
                 gen = torch.Generator().manual_seed(seed)
                 opt = torch.optim.Adam(params, lr=candidate)
