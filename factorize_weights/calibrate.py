@@ -71,6 +71,7 @@ class Calibration:
             "warnings": list(self.warnings),
             "ridge": self.ridge,
             "shrunk": {name: round(r, 6) for name, r in self.ridges.items() if r > self.ridge},
+            "rows_ridge": self.rows_ridge,
             "passes": self.passes,
             "batch_size": self.batch_size,
         }
