@@ -14,9 +14,11 @@ downloaded from a model hub):
 
 Rows per budget: without data, plain SVD allocated by error-sum (the default) and by
 energy-product (with and without BatchNorm row weights); with calibration data (whitened +
-sequential; allocation error-sum against output, the new default), plus the new calibrated default
-followed by recovery (at --recover-budgets) where --recover is given. One preparation per configuration is shared by all
-budgets; held-out data is never used to fit or choose anything.
+sequential): the old default (allocation error-sum, no --rows-ridge floor) and the new one
+(allocation by output effect, --rows-ridge 0.1), each from its own preparation, plus the new
+calibrated default followed by recovery (at --recover-budgets) where --recover is given. One
+preparation per configuration is shared by all budgets; held-out data is never used to fit or
+choose anything.
 """
 
 from __future__ import annotations
@@ -90,20 +92,20 @@ def run_model(key: str, recover: int, recover_budgets=(0.9, 0.8), only_calibrate
         ("plain SVD, energy-product", dict(method="svd", allocation="energy-product"), None),
         ("plain SVD, energy-product, BatchNorm row weights", dict(method="svd", allocation="energy-product",
                                                                   bn_weights=True), None),
+        ("whitened + sequential, error-sum (old default with data)", dict(method="whitened", sequential=True,
+                                                                          allocation="error-sum", rows_ridge=0.0),
+         calibration),
         ("whitened + sequential, output effect (new default with data)", dict(method="whitened", sequential=True,
                                                                               allocation="output"), calibration),
     ]
     if only_calibrated:
-        configs = configs[-1:]
+        configs = configs[-2:]
     for name, options, cal in configs:
         config = fw.CompressConfig(**base, **options)
         t0 = time.perf_counter()
         prep = pipeline.prepare(model, config, heldout, cal, budgets=[f"params={b}" for b in budgets])
         costs[name] = dict(prep.timings)
         variants = [(name, prep, {})]
-        if options["allocation"] == "output":  # the same preparation, planned by the earlier rule
-            variants.insert(0, ("whitened + sequential, error-sum (old default with data)", prep,
-                                {"allocation": "error-sum", "effects": {}}))
         for vname, p, override in variants:
             saved = (p.allocation, p.effects)
             p.allocation, p.effects = override.get("allocation", saved[0]), override.get("effects", saved[1])
@@ -168,7 +170,7 @@ def write(args, sections, elapsed: float) -> None:
             shown = f"{value:.2f}%" if "(%)" in info["metric"] else f"{value:.4f}"
             lines.append(f"| params={b} | {name} | {100 * kept:.1f}% | {shown} | {secs:.1f} |")
         lines += ["", "Preparation (once per configuration, shared by all budgets), seconds; *with every budget* is the "
-                      "whole configuration (for the calibrated one: both allocation rules and any recovery):", ""]
+                      "whole configuration (with any recovery):", ""]
         for name, t in info["costs"].items():
             parts = ", ".join(f"{k} {v:.1f}" for k, v in t.items() if k != "prepare")
             lines.append(f"- {name}: {parts}")
