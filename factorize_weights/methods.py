@@ -235,7 +235,7 @@ def unscale_rows(dec: Decomposition, d: np.ndarray, scaled_by: str | None) -> De
 
 def input_moment(stats) -> np.ndarray:
     """The input covariance a layer's truncation is weighted by, from per-channel input statistics
-    ``(mean, variance, taps)``: ``diag(variance)``, each of a convolution's ``taps`` kernel positions
+    ``(variance, taps)``: ``diag(variance)``, each of a convolution's ``taps`` kernel positions
     with its channel's variance (channel-major, as the weight's (out, in * kh * kw) view).
 
     Centred on purpose: with the means in (``mu mu^T + diag(var)``), a positive activation's mean
@@ -243,7 +243,7 @@ def input_moment(stats) -> np.ndarray:
     low rank looks almost free to the allocator and the variation that carries the information is
     cut (EfficientNet-Lite0 without data at params=0.9: 21.2% top-class agreement against 80.0%
     centred and 77.0% plain; measured)."""
-    _, var, taps = stats
+    var, taps = stats
     return np.diag(np.kron(var, np.ones(int(taps))))
 
 

@@ -78,7 +78,7 @@ def decompose(records: list[LayerRecord], method, config: CompressConfig, calibr
         use = method
         if config.bn_inputs and moments is None and record.input_stats is not None \
                 and isinstance(method, methods.PlainSvd):  # no data: the BatchNorm's promised input statistics
-            moments, use = methods.input_moment(record.input_stats), methods.Whitened(config.ridge)
+            moments, use = methods.input_moment(record.input_stats()), methods.Whitened(config.ridge)
         try:
             scale = record.row_scale if config.bn_weights else None
             out[record.name] = methods.row_weighted(

@@ -9,6 +9,7 @@ from __future__ import annotations
 import contextlib
 import copy
 import fnmatch
+import functools
 import importlib
 import importlib.util
 import sys
@@ -756,6 +757,9 @@ def measure_positions(model: nn.Module, records: list[LayerRecord], sample: np.n
 # output, a skip connection, the scores and probabilities of attention; common practice, with margin)
 LIVE_OUTPUTS = 6
 
+# traced tensors kept alive at once while finding BatchNorm -> activation -> layer chains
+TRACE_WINDOW = 6
+
 # elementwise activations an input prior passes through (applied to quadrature points as they are)
 _ELEMENTWISE = (nn.ReLU, nn.ReLU6, nn.LeakyReLU, nn.ELU, nn.SELU, nn.CELU, nn.GELU, nn.SiLU, nn.Hardswish,
                 nn.Hardsigmoid, nn.Hardtanh, nn.Sigmoid, nn.Tanh, nn.Mish, nn.Softplus)
@@ -778,6 +782,15 @@ def activation_moments(beta: np.ndarray, gamma: np.ndarray, act: nn.Module | Non
     return mean, np.maximum(_WEIGHTS @ (f * f) - mean * mean, 0.0)
 
 
+def _input_variance(bn, act, taps: int) -> tuple[np.ndarray, int]:
+    """(variance per channel of ``act`` over the BatchNorm's N(beta, gamma^2), kernel taps); computed
+    only when asked for (--bn-inputs), not on every discovery."""
+    channels = int(bn.running_var.numel())
+    gamma = bn.weight.detach().double().numpy() if bn.weight is not None else np.ones(channels)
+    beta = bn.bias.detach().double().numpy() if bn.bias is not None else np.zeros(channels)
+    return activation_moments(beta, gamma, act)[1], taps
+
+
 def _key(t: torch.Tensor) -> tuple:
     return (t.data_ptr(), t.numel(), t.dtype)
 
@@ -786,20 +799,30 @@ def _trace_normalized_inputs(model: nn.Module, records: list[LayerRecord], hooks
     """Hooks that, during the next forward pass, find the layers whose input is an eval-mode
     BatchNorm's output, possibly through one elementwise activation module, average pooling and
     pass-through modules (dropout, flatten; a view of the same storage counts as the same tensor).
-    The returned dict fills after the pass: ``{layer name: ((mean, variance) per input channel,
-    kernel taps), "bn -> act -> pool")}``, the statistics an eval-mode BatchNorm promises on the data it was trained
+    The returned dict fills after the pass: ``{layer name: (a call giving (variance per input
+    channel, kernel taps), "bn -> act -> pool")}``, the statistics an eval-mode BatchNorm promises on the data it was trained
     on: its output is N(beta, gamma^2) per channel under the usual Gaussian reading, which the
     activation maps as :func:`activation_moments` computes (independent channels assumed).
     Average pooling keeps the mean; the variance is kept as an upper bound (the spatial correlation
     is unknown)."""
     chains: dict[tuple, tuple] = {}  # tensor key -> (bn module, bn name, activation, path)
-    alive: list[torch.Tensor] = []  # keeps tracked tensors alive, so their storage is not reused
+    # the latest TRACE_WINDOW traced tensors, kept alive so that their storage is not reused while
+    # their keys are in ``chains``; an older one leaves with its key (a chain is read by the next
+    # few modules), so the trace holds a few outputs, never every one of a deep model
+    alive: dict[tuple, torch.Tensor] = {}
     found: dict[str, tuple] = {}
+
+    def track(output: torch.Tensor, chain: tuple) -> None:
+        key = _key(output)
+        alive.pop(key, None)  # an in-place step keeps the key: it moves to the newest place
+        chains[key], alive[key] = chain, output
+        if len(alive) > TRACE_WINDOW:
+            oldest = next(iter(alive))
+            del alive[oldest], chains[oldest]
 
     def on_bn(module, args, output, name):
         if not module.training and module.running_var is not None and isinstance(output, torch.Tensor):
-            chains[_key(output)] = (module, name, None, name)
-            alive.append(output)
+            track(output, (module, name, None, name))
 
     def on_step(module, args, output, name):
         if not args or not isinstance(args[0], torch.Tensor) or not isinstance(output, torch.Tensor):
@@ -811,18 +834,17 @@ def _trace_normalized_inputs(model: nn.Module, records: list[LayerRecord], hooks
         if isinstance(module, _ELEMENTWISE):
             if act is not None or "pool" in path:  # one activation, before any pooling
                 return
-            chains[_key(output)] = (bn, bn_name, module, f"{path} -> {name}")
+            track(output, (bn, bn_name, module, f"{path} -> {name}"))
         elif isinstance(module, _POOL):
-            chains[_key(output)] = (bn, bn_name, act, f"{path} -> {name} (pool)")
+            track(output, (bn, bn_name, act, f"{path} -> {name} (pool)"))
         else:
-            chains[_key(output)] = src
-        alive.append(output)
+            track(output, src)
 
     def on_layer(module, args, record):
         if record.name in found or not args or not isinstance(args[0], torch.Tensor):
             return
-        src = chains.get(_key(args[0]))
         x = args[0]
+        src = chains.get(_key(x))
         if src is None:
             return
         bn, _, act, path = src
@@ -831,10 +853,8 @@ def _trace_normalized_inputs(model: nn.Module, records: list[LayerRecord], hooks
         if channels != wanted or getattr(record.handle, "groups", 1) != 1 or \
                 (record.kind == "linear" and x.dim() != 2):
             return
-        gamma = bn.weight.detach().double().numpy() if bn.weight is not None else np.ones(channels)
-        beta = bn.bias.detach().double().numpy() if bn.bias is not None else np.zeros(channels)
         taps = 1 if record.kind == "linear" else int(np.prod(record.handle.kernel_size))
-        found[record.name] = ((*activation_moments(beta, gamma, act), taps), path)
+        found[record.name] = (functools.partial(_input_variance, bn, act, taps), path)
 
     for name, module in model.named_modules():
         if isinstance(module, nn.modules.batchnorm._BatchNorm):
@@ -850,7 +870,7 @@ def _trace_normalized_inputs(model: nn.Module, records: list[LayerRecord], hooks
 class _Release:
     """Drops the traced tensors when the hooks are removed (after the pass)."""
 
-    def __init__(self, alive: list, chains: dict):
+    def __init__(self, alive: dict, chains: dict):
         self.alive, self.chains = alive, chains
 
     def remove(self) -> None:
