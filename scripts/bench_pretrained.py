@@ -13,7 +13,8 @@ downloaded from a model hub):
   outputs) to the original's.
 
 Rows per budget: without data, plain SVD allocated by error-sum (the default) and by
-energy-product (with and without BatchNorm row weights); with calibration data (whitened +
+energy-product (with and without BatchNorm row weights), and error-sum with BatchNorm input
+statistics (--bn-inputs); with calibration data (whitened +
 sequential): the old default (allocation error-sum, no --rows-ridge floor) and the new one
 (allocation by output effect, --rows-ridge 0.1), each from its own preparation, plus the new
 calibrated default followed by recovery (at --recover-budgets) where --recover is given. One
@@ -92,6 +93,8 @@ def run_model(key: str, recover: int, recover_budgets=(0.9, 0.8), only_calibrate
         ("plain SVD, energy-product", dict(method="svd", allocation="energy-product"), None),
         ("plain SVD, energy-product, BatchNorm row weights", dict(method="svd", allocation="energy-product",
                                                                   bn_weights=True), None),
+        ("plain SVD, error-sum, BatchNorm input statistics (--bn-inputs)", dict(method="svd", allocation="error-sum",
+                                                                               bn_inputs=True), None),
         ("whitened + sequential, error-sum (old default with data)", dict(method="whitened", sequential=True,
                                                                           allocation="error-sum", rows_ridge=0.0),
          calibration),
