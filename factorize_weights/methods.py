@@ -241,7 +241,7 @@ def input_moment(stats) -> np.ndarray:
     Centred on purpose: with the means in (``mu mu^T + diag(var)``), a positive activation's mean
     dominates the second moment, one direction ``W mu`` carries most of a layer's output energy, a
     low rank looks almost free to the allocator and the variation that carries the information is
-    cut (EfficientNet-Lite0 without data at params=0.9: 21.2% top-class agreement against 80.0%
+    cut (EfficientNet-Lite0 without data at params=0.9: 21.2% top-class agreement against 80.2%
     centred and 77.0% plain; measured)."""
     var, taps = stats
     return np.diag(np.kron(var, np.ones(int(taps))))
