@@ -69,21 +69,26 @@ def _weight(record: LayerRecord) -> np.ndarray:
     return backend_of(record).weight_matrix(record)
 
 
-def decompose(records: list[LayerRecord], method, config: CompressConfig, calibration=None) -> dict:
+def decompose(records: list[LayerRecord], method, config: CompressConfig, calibration=None,
+              bn_inputs: bool = False) -> dict:
     """One decomposition per selected layer (``{name: Decomposition}``); with calibration, each
-    layer's Gram matrix is released as soon as that layer is done."""
+    layer's Gram matrix is released as soon as that layer is done. With ``bn_inputs`` (plain SVD,
+    no calibration), a layer fed by an eval-mode BatchNorm is truncated for its output error on
+    the statistics that BatchNorm promises, at the ranks its weights' own spectrum plans."""
     out = {}
     for record in bar(selected(records), config, f"{method.name} decomposition"):
         moments = calibration.release(record.name, shrink=config.shrinkage) if calibration is not None else None
-        use = method
-        if config.bn_inputs and moments is None and record.input_stats is not None \
-                and isinstance(method, methods.PlainSvd):  # no data: the BatchNorm's promised input statistics
-            moments, use = methods.input_moment(record.input_stats()), methods.Whitened(config.ridge)
+        prior = bn_inputs and moments is None and record.input_stats is not None and isinstance(method, methods.PlainSvd)
         try:
             scale = record.row_scale if config.bn_weights else None
             out[record.name] = methods.row_weighted(
-                use, record.name, _weight(record), scale, dtype=record.dtype, moments=moments,
+                method, record.name, _weight(record), scale, dtype=record.dtype, moments=moments,
                 scaled_by=record.scaled_by, ridge_value=calibration.ridge_for(record.name) if calibration else None)
+            if prior:  # no data: the BatchNorm's promised input statistics
+                weighted = methods.row_weighted(
+                    methods.Whitened(config.ridge), record.name, _weight(record), scale, dtype=record.dtype,
+                    moments=methods.input_moment(record.input_stats()), scaled_by=record.scaled_by)
+                out[record.name] = methods.with_plan_spectrum(weighted, out[record.name])
         except ValueError as exc:  # NaN/Inf in a weight is the user's model, not our bug
             raise InputError(str(exc)) from exc
     return out
@@ -210,6 +215,7 @@ class Prepared:
     order: list = field(default_factory=list)  # selected layer names in forward order, in stages
     effects: dict = field(default_factory=dict)  # {name: effects.Effect} when allocating by output effect
     allocation: str = "error-sum"  # the resolved config.allocation
+    bn_inputs: bool = False  # the resolved config.bn_inputs: BatchNorm input statistics weight plain factors
 
     @property
     def backend(self):
@@ -243,7 +249,7 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
         raise InputError(f"--sequential refits whitened factors; it cannot be combined with --method {method}")
     if config.recover and backend.FORMAT != "torch":
         raise InputError("--recover fine-tunes PyTorch factor pairs; an ONNX model has no trainable factors")
-    for flag, on in (("--bn-weights", config.bn_weights), ("--bn-inputs", config.bn_inputs)):
+    for flag, on in (("--bn-weights", config.bn_weights), ("--bn-inputs", config.bn_inputs is True)):
         if on and backend.FORMAT != "torch":
             raise InputError(f"{flag} reads PyTorch BatchNorm modules; an ONNX model has none to read")
         if on and heldout is None and calibration is None:
@@ -283,8 +289,9 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
         cal = calibrate(model, records, calibration, config, size, moments=method == "whitened")
         timings["calibrate"] = time.perf_counter() - t1
     t1 = time.perf_counter()
+    bn_inputs = config.resolved_bn_inputs(calibration is not None, backend.FORMAT)
     decompositions = decompose(records, methods.make(method, config), config,
-                               cal if method == "whitened" else None)
+                               cal if method == "whitened" else None, bn_inputs=bn_inputs)
     timings["decompose"] = time.perf_counter() - t1
     effects = {}
     allocation = config.resolved_allocation(calibration is not None, backend.FORMAT)
@@ -302,7 +309,7 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
             reference.append((backend.predict(model, inputs, output=config.output), labels))
     timings["prepare"] = time.perf_counter() - t0
     return Prepared(model, config, records, decompositions, method, sequential, heldout, cal, metric_name,
-                    reference, timings, size, order, effects, allocation)
+                    reference, timings, size, order, effects, allocation, bn_inputs)
 
 
 def measure_effects(model, chosen: list[LayerRecord], decompositions: dict, calibration: HeldOut,
@@ -432,6 +439,7 @@ def realize(prep: Prepared, budget: str, *, sources: dict | None = None, latency
         timings=timings, latency=lat, error_samples=min(config.error_samples, len(heldout)) if heldout is not None else 0,
         method=prep.method, calibration=prep.calibration, fits=fits, recovery=recovery, sequential=prep.sequential,
         decompositions=prep.decompositions, effects=prep.effects, allocation=prep.allocation,
+        bn_inputs=prep.bn_inputs,
     )
     return CompressResult(factorized, plan, prep.records, prep.spectra, metric, report, errors)
 

@@ -81,6 +81,7 @@ def build_report(
     decompositions: dict | None = None,
     effects: dict | None = None,
     allocation: str = "error-sum",
+    bn_inputs: bool = False,
 ) -> dict:
     """The content of ``report.json``."""
     chosen = [r for r in records if r.skip_reason is None]
@@ -103,7 +104,7 @@ def build_report(
             entry["output_error"] = layer_errors.get(record.name, 0.0 if entry["rank"] is None else None)
         if record.scaled_by is not None and config.bn_weights:  # the error after this normalization was minimised
             entry["error_weighted_by"] = record.scaled_by
-        if record.input_from is not None and config.bn_inputs and method == "svd":  # inputs weighted by a prior
+        if record.input_from is not None and bn_inputs and method == "svd":  # inputs weighted by a prior
             entry["input_statistics_from"] = record.input_from
         if effects and record.name in effects:
             entry["output_effect"] = effects[record.name].to_dict()
@@ -130,6 +131,7 @@ def build_report(
         "budget": budget,
         "method": method,
         "sequential": bool(sequential),
+        "bn_inputs": bool(bn_inputs),
         "recovery": recovery,
         "allocation": _allocation(allocation, effects, timings, config),
         "warnings": plan_warnings(layers, allocation),

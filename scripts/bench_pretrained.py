@@ -12,9 +12,9 @@ downloaded from a model hub):
   calibration = 512 others; metric = mean cosine of the sentence embedding (masked mean of the token
   outputs) to the original's.
 
-Rows per budget: without data, plain SVD allocated by error-sum (the default) and by
-energy-product (with and without BatchNorm row weights), and error-sum with BatchNorm input
-statistics (--bn-inputs); with calibration data (whitened +
+Rows per budget: without data, plain SVD allocated by error-sum and by energy-product, each with
+and without BatchNorm input statistics (--bn-inputs, the new default; the old default is error-sum
+without them), and energy-product with BatchNorm row weights; with calibration data (whitened +
 sequential): the old default (allocation error-sum, no --rows-ridge floor) and the new one
 (allocation by output effect, --rows-ridge 0.1), each from its own preparation, plus the new
 calibrated default followed by recovery (at --recover-budgets) where --recover is given. One
@@ -89,12 +89,15 @@ def run_model(key: str, recover: int, recover_budgets=(0.9, 0.8), only_calibrate
     base = dict(quiet=True, latency_repeats=0, error_samples=0, metric=tool_metric)
     rows, costs = [], {}
     configs = [
-        ("plain SVD, error-sum (default without data)", dict(method="svd", allocation="error-sum"), None),
-        ("plain SVD, energy-product", dict(method="svd", allocation="energy-product"), None),
+        ("plain SVD, error-sum (old default without data)", dict(method="svd", allocation="error-sum",
+                                                                bn_inputs=False), None),
+        ("plain SVD, error-sum, BatchNorm input statistics (new default without data)",
+         dict(method="svd", allocation="error-sum"), None),
+        ("plain SVD, energy-product", dict(method="svd", allocation="energy-product", bn_inputs=False), None),
+        ("plain SVD, energy-product, BatchNorm input statistics", dict(method="svd", allocation="energy-product"),
+         None),
         ("plain SVD, energy-product, BatchNorm row weights", dict(method="svd", allocation="energy-product",
-                                                                  bn_weights=True), None),
-        ("plain SVD, error-sum, BatchNorm input statistics (--bn-inputs)", dict(method="svd", allocation="error-sum",
-                                                                               bn_inputs=True), None),
+                                                                  bn_weights=True, bn_inputs=False), None),
         ("whitened + sequential, error-sum (old default with data)", dict(method="whitened", sequential=True,
                                                                           allocation="error-sum", rows_ridge=0.0),
          calibration),

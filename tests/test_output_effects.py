@@ -3,6 +3,7 @@ overridden forward()s checked on real inputs, and recovery that never returns a 
 
 from __future__ import annotations
 
+import dataclasses
 import itertools
 
 import numpy as np
@@ -344,9 +345,10 @@ class NormedHead(nn.Module):
         return self.fc(torch.flatten(self.drop(self.pool(x)), 1))
 
 
-def test_bn_inputs_truncates_for_the_variance_the_batchnorm_promises():
-    # oracle: Eckart-Young with numpy's SVD on W diag(v)^(1/2), v the variance of ReLU(N(beta, gamma^2))
-    # in closed form (scipy.stats.norm); the tool must find both chains and give those factors
+def test_bn_inputs_truncates_for_the_moments_the_batchnorm_promises_at_the_planned_ranks():
+    # oracle: Eckart-Young with numpy's SVD on W M^(1/2), M = diag(v) + mu mu^T (plus the ridge),
+    # mu and v the mean and variance of ReLU(N(beta, gamma^2)) in closed form (scipy.stats.norm);
+    # the tool must find both chains, give those factors, and plan the same ranks as without them
     from scipy.stats import norm
 
     torch.manual_seed(11)
@@ -357,26 +359,40 @@ def test_bn_inputs_truncates_for_the_variance_the_batchnorm_promises():
             bn.bias.uniform_(-1, 1)
     x = np.random.default_rng(11).standard_normal((8, 3, 6, 6)).astype(np.float32)
     config = fw.CompressConfig(budget="params=0.5", quiet=True, latency_repeats=0, method="svd",
-                               allocation="error-sum", bn_inputs=True)
+                               allocation="error-sum")  # on by default for a PyTorch model without calibration
     prep = pipeline.prepare(model, config, _data(x, "held"), None)
+    assert prep.bn_inputs
     by = {r.name: r for r in prep.records}
     assert by["c2"].input_from == "b1 -> act" and by["fc"].input_from == "b2 -> act -> pool (pool)"
     assert by["c1"].input_from is None  # fed by the raw input
 
-    def relu_var(bn):
+    def relu_moments(bn):
         m, s = bn.bias.detach().double().numpy(), bn.weight.detach().double().abs().numpy()
         a = m / s
         first = m * norm.cdf(a) + s * norm.pdf(a)
-        return (m * m + s * s) * norm.cdf(a) + m * s * norm.pdf(a) - first ** 2
+        return first, (m * m + s * s) * norm.cdf(a) + m * s * norm.pdf(a) - first ** 2
 
     for name, bn, taps in (("fc", model.b2, 1), ("c2", model.b1, 9)):
         w = by[name].handle.weight.detach().double().numpy().reshape(by[name].handle.weight.shape[0], -1)
-        d = np.sqrt(np.repeat(relu_var(bn), taps) + 0.01 * np.mean(np.repeat(relu_var(bn), taps)))  # + the ridge
-        u, s, vt = np.linalg.svd(w * d[None, :], full_matrices=False)
+        mean, var = relu_moments(bn)
+        mu = np.repeat(mean, taps)
+        moment = np.diag(np.repeat(var, taps)) + np.outer(mu, mu)
+        moment += 0.01 * np.mean(np.diag(moment)) * np.eye(len(mu))  # the default ridge
+        vals, vecs = np.linalg.eigh(moment)
+        root = (vecs * np.sqrt(vals)) @ vecs.T
+        u, s, vt = np.linalg.svd(w @ root, full_matrices=False)
         for k in (3, 9):
             a, xf = prep.decompositions[name].factors(k)
-            want = (u[:, :k] * s[:k]) @ vt[:k] / d[None, :]
-            assert np.allclose(a @ xf, want, rtol=1e-5, atol=1e-6 * np.abs(want).max()), (name, k)
+            want = (u[:, :k] * s[:k]) @ vt[:k] @ np.linalg.inv(root)
+            assert np.allclose(a @ xf, want, rtol=1e-5, atol=1e-5 * np.abs(want).max()), (name, k)
+    # the plan reads the weights' own spectra: the same ranks as with the option off
+    off = pipeline.prepare(model, dataclasses.replace(config, bn_inputs=False), _data(x, "held"), None)
+    assert not off.bn_inputs
+    for budget in ("params=0.5", "params=0.3"):
+        assert pipeline.plan_budget(prep, budget).ranks == pipeline.plan_budget(off, budget).ranks
     result = pipeline.realize(prep, "params=0.5", latency=False, layer_errors=False)
     entries = {e["name"]: e for e in result.report["layers"]}
-    assert entries["fc"]["input_statistics_from"] == "b2 -> act -> pool (pool)"
+    assert entries["fc"]["input_statistics_from"] == "b2 -> act -> pool (pool)" and result.report["bn_inputs"]
+    off_result = pipeline.realize(off, "params=0.5", latency=False, layer_errors=False)
+    assert not off_result.report["bn_inputs"] and "input_statistics_from" not in {
+        k for e in off_result.report["layers"] for k in e}

@@ -782,13 +782,14 @@ def activation_moments(beta: np.ndarray, gamma: np.ndarray, act: nn.Module | Non
     return mean, np.maximum(_WEIGHTS @ (f * f) - mean * mean, 0.0)
 
 
-def _input_variance(bn, act, taps: int) -> tuple[np.ndarray, int]:
-    """(variance per channel of ``act`` over the BatchNorm's N(beta, gamma^2), kernel taps); computed
-    only when asked for (--bn-inputs), not on every discovery."""
+def _input_statistics(bn, act, taps: int) -> tuple[np.ndarray, np.ndarray, int]:
+    """(mean and variance per channel of ``act`` over the BatchNorm's N(beta, gamma^2), kernel
+    taps); computed only when a layer's truncation uses them (--bn-inputs), not on every discovery."""
     channels = int(bn.running_var.numel())
     gamma = bn.weight.detach().double().numpy() if bn.weight is not None else np.ones(channels)
     beta = bn.bias.detach().double().numpy() if bn.bias is not None else np.zeros(channels)
-    return activation_moments(beta, gamma, act)[1], taps
+    mean, var = activation_moments(beta, gamma, act)
+    return mean, var, taps
 
 
 def _key(t: torch.Tensor) -> tuple:
@@ -799,9 +800,9 @@ def _trace_normalized_inputs(model: nn.Module, records: list[LayerRecord], hooks
     """Hooks that, during the next forward pass, find the layers whose input is an eval-mode
     BatchNorm's output, possibly through one elementwise activation module, average pooling and
     pass-through modules (dropout, flatten; a view of the same storage counts as the same tensor).
-    The returned dict fills after the pass: ``{layer name: (a call giving (variance per input
-    channel, kernel taps), "bn -> act -> pool")}``, the statistics an eval-mode BatchNorm promises on the data it was trained
-    on: its output is N(beta, gamma^2) per channel under the usual Gaussian reading, which the
+    The returned dict fills after the pass: ``{layer name: (a call giving (mean and variance
+    per input channel, kernel taps), "bn -> act -> pool")}``, the statistics an eval-mode BatchNorm
+    promises on the data it was trained on: its output is N(beta, gamma^2) per channel under the usual Gaussian reading, which the
     activation maps as :func:`activation_moments` computes (independent channels assumed).
     Average pooling keeps the mean; the variance is kept as an upper bound (the spatial correlation
     is unknown)."""
@@ -854,7 +855,7 @@ def _trace_normalized_inputs(model: nn.Module, records: list[LayerRecord], hooks
                 (record.kind == "linear" and x.dim() != 2):
             return
         taps = 1 if record.kind == "linear" else int(np.prod(record.handle.kernel_size))
-        found[record.name] = (functools.partial(_input_variance, bn, act, taps), path)
+        found[record.name] = (functools.partial(_input_statistics, bn, act, taps), path)
 
     for name, module in model.named_modules():
         if isinstance(module, nn.modules.batchnorm._BatchNorm):
