@@ -27,7 +27,7 @@ from .errors import InputError
 from .methods import Whitened, floored_scale, unscale_rows
 from .progress import bar
 from .records import LayerRecord
-from .stats import CrossMoments, Moments, ridge, shrinkage_ridge, weight_error
+from .stats import CrossMoments, Moments, Prior, ridge, shrinkage_ridge, weight_error
 from .whiten import regression_product, whitening
 
 #: Memory for the paired moments of one group of sequential refits (two n x n float64 per layer).
@@ -72,6 +72,7 @@ class Calibration:
             "ridge": self.ridge,
             "shrunk": {name: round(r, 6) for name, r in self.ridges.items() if r > self.ridge},
             "rows_ridge": self.rows_ridge,
+            "ridge_toward_input_statistics": sorted(self.priors),
             "passes": self.passes,
             "batch_size": self.batch_size,
         }
@@ -83,14 +84,23 @@ class Calibration:
         Ledoit-Wolf shrinkage of its moments (set by :meth:`release`)."""
         return self.ridges.get(name, self.ridge)
 
-    def release(self, name: str, shrink: bool = False) -> np.ndarray:
+    priors: dict[str, Prior] = field(default_factory=dict)  # the target each layer's ridge adds, where known
+
+    def prior_for(self, name: str) -> Prior | None:
+        """What the ridge of layer ``name`` adds instead of a multiple of the identity (or None)."""
+        return self.priors.get(name)
+
+    def release(self, name: str, shrink: bool = False, prior: Prior | None = None) -> np.ndarray:
         """The Gram matrix of ``name``, dropped from this object (it is used once); with ``shrink``,
-        the layer's ridge becomes at least its Ledoit-Wolf shrinkage and ``rows_ridge`` x its input
-        width / its calibration rows first."""
+        the layer's ridge becomes at least its Ledoit-Wolf shrinkage (toward ``prior`` when given)
+        and ``rows_ridge`` x its input width / its calibration rows first. A ``prior`` is kept for
+        the sequential refits, which add the same ridge."""
         st = self.moments[name]
+        if prior is not None:
+            self.priors[name] = prior
         if shrink:
             floor = max(self.ridge, self.rows_ridge * st.n / st.rows if st.rows else 0.0)
-            self.ridges[name] = shrinkage_ridge(st.shrinkage(), floor)
+            self.ridges[name] = shrinkage_ridge(st.shrinkage(prior), floor)
         g = st.gram
         st.gram = None
         return g
@@ -202,10 +212,10 @@ def sequential_refit(model, records: list[LayerRecord], ranks: dict, cal: Calibr
         for name in group:
             st = acc.pop(name)
             # the same ridge on both moments: where the calibration data says nothing, M stays W
-            alpha = cal.ridge_for(name)
-            wh_new = whitening(ridge(st.gram, alpha))
+            alpha, prior = cal.ridge_for(name), cal.prior_for(name)
+            wh_new = whitening(ridge(st.gram, alpha, prior=prior, base=cal.ridge))
             w = backend.weight_matrix(by_name[name])
-            product = regression_product(w, ridge(st.cross, alpha, st.gram), wh_new)  # M S'
+            product = regression_product(w, ridge(st.cross, alpha, st.gram, prior=prior, base=cal.ridge), wh_new)  # M S'
             del st
             record = by_name[name]
             if record.row_scale is None or not config.bn_weights:

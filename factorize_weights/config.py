@@ -58,11 +58,12 @@ class CompressConfig:
     # the layer's output; off by default: on EfficientNet-Lite0 it lowered agreement (measured,
     # reports/accuracy_pretrained.md)
     bn_weights: bool = False
-    # without calibration: truncate each layer fed by an eval-mode BatchNorm for its output error on
-    # the input statistics that BatchNorm promises (the plan is unchanged). None: on for PyTorch
-    # models without calibration data (it needs one forward pass, so --heldout); measured on
-    # EfficientNet-Lite0 without data, 81.8/61.8/11.4% against 77.0/56.8/11.6% at params=0.9/0.8/0.7
-    # (reports/accuracy_pretrained.md); models without BatchNorm are unchanged
+    # layers fed by an eval-mode BatchNorm use the input statistics it promises: without calibration,
+    # each is truncated for its output error on them (the plan is unchanged); with calibration, its
+    # measured moments are shrunk toward them instead of toward the identity. None: on for PyTorch
+    # models (the chains are found by one forward pass, so it needs --heldout or --calibration).
+    # Measured on EfficientNet-Lite0 (reports/accuracy_pretrained.md); models without BatchNorm are
+    # unchanged
     bn_inputs: bool | None = None
     recover: int = 0  # fine-tuning steps of the factors after factorization (needs calibration); 0: off
     recover_lr: float | None = None  # None: chosen by short trials on the validation slice (torch_recovery.py)
@@ -141,10 +142,9 @@ class CompressConfig:
         return self.allocation
 
     def resolved_bn_inputs(self, calibrated: bool, backend_format: str) -> bool:
-        """``None`` becomes on for a PyTorch model without calibration data (with calibration the
-        layers' measured input moments are used instead)."""
+        """``None`` becomes on for a PyTorch model."""
         if self.bn_inputs is None:
-            return not calibrated and backend_format == "torch"
+            return backend_format == "torch"
         return bool(self.bn_inputs)
 
     def resolved_method(self, calibrated: bool) -> str:

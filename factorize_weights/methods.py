@@ -137,17 +137,20 @@ class Whitened:
         self.ridge = ridge
 
     def decompose(self, name: str, matrix: np.ndarray, *, dtype: str = "float32", moments=None,
-                  ridge_value: float | None = None) -> Decomposition:
-        """``ridge_value`` overrides the method's relative ridge for this layer (shrinkage)."""
+                  ridge_value: float | None = None, prior=None) -> Decomposition:
+        """``ridge_value`` overrides the method's relative ridge for this layer (shrinkage);
+        ``prior`` (stats.Prior) is what the ridge adds instead of a multiple of the identity."""
         if moments is None:
             raise ValueError(f"layer {name!r}: whitened factors need the calibration moments of its inputs")
         alpha = self.ridge if ridge_value is None else ridge_value
         matrix = checked_matrix(name, matrix)
         if matrix.shape[0] <= matrix.shape[1]:
-            dec = self.decompose_left(name, matrix, ridge(moments, alpha), dtype=dtype)
+            dec = self.decompose_left(name, matrix, ridge(moments, alpha, prior=prior, base=self.ridge), dtype=dtype)
         else:
-            dec = self.decompose_whitened(name, matrix, whitening(ridge(moments, alpha)), dtype=dtype)
+            dec = self.decompose_whitened(name, matrix, whitening(ridge(moments, alpha, prior=prior, base=self.ridge)), dtype=dtype)
         dec.extra["whitening"]["ridge"] = alpha
+        if prior is not None:
+            dec.extra["whitening"]["ridge_toward"] = "input statistics"
         return dec
 
     @staticmethod
@@ -207,13 +210,13 @@ class Columns:
 
 
 def row_weighted(method, name: str, matrix: np.ndarray, scale, *, dtype: str = "float32", moments=None,
-                 scaled_by: str | None = None, ridge_value: float | None = None):
+                 scaled_by: str | None = None, ridge_value: float | None = None, prior=None):
     """Decompose ``diag(d) W`` and map it back, ``A = diag(1/d) U_k ...``: the truncation then minimises
     the error after a per-row scale ``d`` (an eval-mode BatchNorm's ``|gamma|/sqrt(var+eps)`` that
     reads the layer's output), with the same factor shapes and no extra cost. Rows that BatchNorm
     scales to nothing get a floor of 1e-6 of the largest scale, so the map back stays finite.
     ``scale=None`` (or a method that keeps actual columns) decomposes ``W`` itself."""
-    extra = {"ridge_value": ridge_value} if isinstance(method, Whitened) else {}
+    extra = {"ridge_value": ridge_value, "prior": prior} if isinstance(method, Whitened) else {}
     if scale is None or not isinstance(method, (PlainSvd, Whitened)):
         return method.decompose(name, matrix, dtype=dtype, moments=moments, **extra)
     d = floored_scale(scale)

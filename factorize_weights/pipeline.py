@@ -29,7 +29,7 @@ from .metrics import MetricAccumulator, MetricResult, check_metric, default_metr
 from .progress import bar
 from .records import LayerRecord
 from .spectra import Spectrum, checked_matrix, compute_spectrum
-from .stats import relative_error, weight_error
+from .stats import Prior, relative_error, weight_error
 
 
 #: Memory for one batch's activations: evaluation and calibration batches are cut to fit it
@@ -72,18 +72,23 @@ def _weight(record: LayerRecord) -> np.ndarray:
 def decompose(records: list[LayerRecord], method, config: CompressConfig, calibration=None,
               bn_inputs: bool = False) -> dict:
     """One decomposition per selected layer (``{name: Decomposition}``); with calibration, each
-    layer's Gram matrix is released as soon as that layer is done. With ``bn_inputs`` (plain SVD,
-    no calibration), a layer fed by an eval-mode BatchNorm is truncated for its output error on
-    the statistics that BatchNorm promises, at the ranks its weights' own spectrum plans."""
+    layer's Gram matrix is released as soon as that layer is done. With ``bn_inputs``, a layer fed
+    by an eval-mode BatchNorm uses the input statistics that BatchNorm promises: with calibration,
+    as the target its measured moments are shrunk toward (instead of the identity); without (plain
+    SVD), it is truncated for its output error on them, at the ranks its weights' own spectrum
+    plans."""
     out = {}
     for record in bar(selected(records), config, f"{method.name} decomposition"):
-        moments = calibration.release(record.name, shrink=config.shrinkage) if calibration is not None else None
-        prior = bn_inputs and moments is None and record.input_stats is not None and isinstance(method, methods.PlainSvd)
+        known = bn_inputs and record.input_stats is not None
+        target = Prior.from_stats(record.input_stats()) if known and calibration is not None else None
+        moments = calibration.release(record.name, shrink=config.shrinkage, prior=target) if calibration is not None else None
+        prior = known and moments is None and isinstance(method, methods.PlainSvd)
         try:
             scale = record.row_scale if config.bn_weights else None
             out[record.name] = methods.row_weighted(
                 method, record.name, _weight(record), scale, dtype=record.dtype, moments=moments,
-                scaled_by=record.scaled_by, ridge_value=calibration.ridge_for(record.name) if calibration else None)
+                scaled_by=record.scaled_by, ridge_value=calibration.ridge_for(record.name) if calibration else None,
+                prior=target)
             if prior:  # no data: the BatchNorm's promised input statistics
                 weighted = methods.row_weighted(
                     methods.Whitened(config.ridge), record.name, _weight(record), scale, dtype=record.dtype,

@@ -44,19 +44,27 @@ class Moments:
         self.rows += r.shape[0]
         self.fourth += float(np.sum(np.einsum("ij,ij->i", r, r) ** 2))
 
-    def shrinkage(self) -> float:
+    def shrinkage(self, prior: "Prior | None" = None) -> float:
         """Ledoit & Wolf's shrinkage intensity rho in [0, 1] for the second moment S = G / N
         (Ledoit & Wolf, "A well-conditioned estimator for large-dimensional covariance matrices",
         J. Multivariate Analysis 88, 2004; uncentred, as scikit-learn's ``assume_centered=True``):
         (1 - rho) S + rho mu I, mu = tr(S) / n, is their estimate of the true second moment. It is
-        near 0 with many rows per input feature and grows when there are few."""
+        near 0 with many rows per input feature and grows when there are few.
+
+        With a ``prior`` (a target T of mean diagonal 1), the target is mu T instead of mu I: the
+        same estimator with another fixed target (Schaefer & Strimmer, "A shrinkage approach to
+        large-scale covariance matrix estimation", Stat. Appl. Genet. Mol. Biol. 4, 2005); the
+        sampling variance b^2 does not depend on the target, only the distance d^2 = ||S - mu T||^2."""
         if self.gram is None or self.rows == 0:
             return 0.0
         n, rows = self.n, self.rows
         s = self.gram / rows
         mu = float(np.trace(s)) / n
         s_norm2 = float(np.sum(s * s))
-        d2 = s_norm2 - n * mu * mu  # ||S - mu I||_F^2
+        if prior is None:
+            d2 = s_norm2 - n * mu * mu  # ||S - mu I||_F^2
+        else:
+            d2 = s_norm2 - 2.0 * mu * prior.inner(s) + mu * mu * prior.norm2()
         if d2 <= 0:
             return 0.0
         b2 = max((self.fourth / rows - s_norm2) / rows, 0.0)  # (1/N^2) sum_i ||x_i x_i^T - S||_F^2
@@ -91,6 +99,42 @@ class CrossMoments:
         self.rows += x.shape[0]
 
 
+class Prior:
+    """A layer's expected input second moment up to scale, ``T = diag(var) + mean mean^T`` with
+    mean diagonal 1, kept as two vectors (never n x n until it is added to a matrix): the target
+    the calibration moments shrink toward where the inputs' statistics are known without data
+    (an eval-mode BatchNorm's, methods.input_moment)."""
+
+    def __init__(self, mean: np.ndarray, var: np.ndarray):
+        mean, var = np.asarray(mean, dtype=np.float64), np.asarray(var, dtype=np.float64)
+        scale = float(np.mean(var + mean * mean))
+        if not scale > 0:
+            raise ValueError("a prior needs a positive mean diagonal")
+        self.mean, self.var = mean / np.sqrt(scale), var / scale
+
+    @classmethod
+    def from_stats(cls, stats) -> "Prior":
+        """From per-channel ``(mean, variance, taps)``, each channel repeated over its taps."""
+        mean, var, taps = stats
+        ones = np.ones(int(taps))
+        return cls(np.kron(mean, ones), np.kron(var, ones))
+
+    def add_to(self, matrix: np.ndarray, scale: float) -> np.ndarray:
+        """``matrix + scale * T`` (a new array)."""
+        out = matrix + scale * np.outer(self.mean, self.mean)
+        out[np.diag_indices_from(out)] += scale * self.var
+        return out
+
+    def inner(self, s: np.ndarray) -> float:
+        """``<S, T>_F``."""
+        return float(np.dot(self.var, np.diag(s)) + self.mean @ s @ self.mean)
+
+    def norm2(self) -> float:
+        """``||T||_F^2``."""
+        mm = self.mean * self.mean
+        return float(np.sum(self.var ** 2) + 2.0 * np.dot(self.var, mm) + np.sum(mm) ** 2)
+
+
 def shrinkage_ridge(rho: float, floor: float) -> float:
     """The relative ridge equal to Ledoit-Wolf shrinkage ``rho``: (1 - rho) S + rho mu I is
     proportional to S + rho / (1 - rho) mu I (scale does not change whitened factors); at least
@@ -99,14 +143,23 @@ def shrinkage_ridge(rho: float, floor: float) -> float:
     return float(min(max(alpha, floor), 1e6))
 
 
-def ridge(matrix: np.ndarray, alpha: float, reference: np.ndarray | None = None) -> np.ndarray:
+def ridge(matrix: np.ndarray, alpha: float, reference: np.ndarray | None = None,
+          prior: Prior | None = None, base: float = 0.0) -> np.ndarray:
     """``matrix + alpha * mean(diag(reference)) * I``: a relative ridge (common practice, e.g. 1%
-    of the mean input energy) that keeps directions the calibration set never visits."""
+    of the mean input energy) that keeps directions the calibration set never visits. With a
+    ``prior``, the first ``base`` of ``alpha`` stays on the identity (every direction keeps that
+    floor, whatever the prior says) and the rest of it adds ``T`` (the directions the prior
+    expects)."""
     if alpha <= 0:
         return matrix
     ref = matrix if reference is None else reference
-    lam = alpha * float(np.mean(np.diag(ref)))
-    return matrix + lam * np.eye(matrix.shape[0])
+    unit = float(np.mean(np.diag(ref)))
+    if prior is None:
+        return matrix + alpha * unit * np.eye(matrix.shape[0])
+    floor = min(alpha, max(base, 0.0))
+    out = prior.add_to(matrix, (alpha - floor) * unit) if alpha > floor else matrix.copy()
+    out[np.diag_indices_from(out)] += floor * unit
+    return out
 
 
 def relative_error(sum_sq_diff: float, sum_sq_ref: float) -> float:

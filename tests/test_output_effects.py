@@ -396,3 +396,81 @@ def test_bn_inputs_truncates_for_the_moments_the_batchnorm_promises_at_the_plann
     off_result = pipeline.realize(off, "params=0.5", latency=False, layer_errors=False)
     assert not off_result.report["bn_inputs"] and "input_statistics_from" not in {
         k for e in off_result.report["layers"] for k in e}
+
+
+def test_shrinkage_toward_input_statistics_equals_the_fixed_target_estimator():
+    # oracle: the shrinkage intensity toward a fixed target T written out densely with numpy,
+    # rho = min(b^2, d^2) / d^2, b^2 = (1/N^2) sum_k ||x_k x_k^T - S||_F^2, d^2 = ||S - mu T||_F^2
+    # (Ledoit & Wolf 2004; Schaefer & Strimmer 2005 for a general target); with T = I it is
+    # scikit-learn's ledoit_wolf_shrinkage (assume_centered=True)
+    from sklearn.covariance import ledoit_wolf_shrinkage
+
+    from factorize_weights.stats import Moments, Prior
+
+    rng = np.random.default_rng(21)
+    n = 12
+    mean, var = rng.uniform(0, 1, n), rng.uniform(0.1, 2, n)
+    for rows in (8, 40, 400):
+        x = rng.standard_normal((rows, n)) * np.sqrt(var) + mean
+        acc = Moments(n)
+        acc.add(x)
+        prior = Prior(mean, var)
+        t = np.diag(var) + np.outer(mean, mean)
+        t /= np.mean(np.diag(t))
+        assert np.allclose(prior.add_to(np.zeros((n, n)), 1.0), t)
+        s = x.T @ x / rows
+        mu = np.trace(s) / n
+        b2 = sum(np.sum((np.outer(r, r) - s) ** 2) for r in x) / rows ** 2
+        d2 = np.sum((s - mu * t) ** 2)
+        assert acc.shrinkage(prior) == pytest.approx(min(b2, d2) / d2, rel=1e-9)
+        identity = Prior(np.zeros(n), np.ones(n))
+        assert acc.shrinkage(identity) == pytest.approx(ledoit_wolf_shrinkage(x, assume_centered=True), rel=1e-9)
+
+
+def test_calibrated_factors_shrink_toward_the_batchnorm_statistics():
+    # oracle: numpy's eigendecomposition and SVD on W (G + lam T)^(1/2), G the classifier inputs'
+    # Gram matrix measured with a torch hook, T = diag(v) + mu mu^T of ReLU(N(beta, gamma^2)) in
+    # closed form (scipy.stats.norm), scaled to mean diagonal 1, lam the layer's ridge x mean diag(G)
+    # less the default 1% ridge, which stays on the identity
+    from scipy.stats import norm
+
+    torch.manual_seed(12)
+    model = NormedHead().eval()
+    with torch.no_grad():
+        for bn in (model.b1, model.b2):
+            bn.weight.uniform_(0.5, 1.5)  # every channel varies: the dense oracle's inverse root exists
+            bn.bias.uniform_(-0.5, 0.5)
+    rng = np.random.default_rng(12)
+    cal_x = rng.standard_normal((24, 3, 6, 6)).astype(np.float32)
+    held_x = rng.standard_normal((8, 3, 6, 6)).astype(np.float32)
+    config = fw.CompressConfig(budget="params=0.5", quiet=True, latency_repeats=0, method="whitened")
+    prep = pipeline.prepare(model, config, _data(held_x, "held"), _data(cal_x, "cal"))
+    assert prep.calibration.prior_for("fc") is not None and prep.calibration.prior_for("c1") is None
+    seen = []
+    handle = model.fc.register_forward_hook(lambda m, a, o: seen.append(a[0].detach().double().numpy()))
+    with torch.no_grad():
+        model(torch.from_numpy(cal_x))
+    handle.remove()
+    gram = seen[0].T @ seen[0]
+    m, s = model.b2.bias.detach().double().numpy(), model.b2.weight.detach().double().abs().numpy()
+    a = m / s
+    first = m * norm.cdf(a) + s * norm.pdf(a)
+    var = (m * m + s * s) * norm.cdf(a) + m * s * norm.pdf(a) - first ** 2
+    t = np.diag(var) + np.outer(first, first)
+    t /= np.mean(np.diag(t))
+    alpha, unit = prep.calibration.ridge_for("fc"), np.mean(np.diag(gram))
+    assert alpha > 0.1  # 24 rows for 40 features: shrunk well beyond the 1% identity floor
+    moment = gram + (alpha - 0.01) * unit * t + 0.01 * unit * np.eye(len(t))  # the default ridge stays on I
+    vals, vecs = np.linalg.eigh(moment)
+    root = (vecs * np.sqrt(vals)) @ vecs.T
+    w = model.fc.weight.detach().double().numpy()
+    u, sv, vt = np.linalg.svd(w @ root, full_matrices=False)
+    for k in (4, 12):
+        af, xf = prep.decompositions["fc"].factors(k)
+        want = (u[:, :k] * sv[:k]) @ vt[:k] @ np.linalg.inv(root)
+        assert np.allclose(af @ xf, want, rtol=1e-5, atol=1e-5 * np.abs(want).max()), k
+    result = pipeline.realize(prep, "params=0.5", latency=False, layer_errors=False)
+    assert "fc" in result.report["calibration"]["ridge_toward_input_statistics"]
+    # off: the ridge adds a multiple of the identity, as before
+    off = pipeline.prepare(model, dataclasses.replace(config, bn_inputs=False), _data(held_x, "held"), _data(cal_x, "cal"))
+    assert off.calibration.prior_for("fc") is None
