@@ -16,7 +16,8 @@ Rows per budget: without data, plain SVD allocated by error-sum and by energy-pr
 and without BatchNorm input statistics (--bn-inputs, the new default; the old default is error-sum
 without them), and energy-product with BatchNorm row weights; with calibration data (whitened +
 sequential): the old default (allocation error-sum, no --rows-ridge floor) and the new one
-(allocation by output effect, --rows-ridge 0.1), each from its own preparation, plus the new
+(allocation by output effect, --rows-ridge 0.1, moments shrunk toward BatchNorm input statistics)
+with and without the BatchNorm statistics, each from its own preparation, plus the new
 calibrated default followed by recovery (at --recover-budgets) where --recover is given. One
 preparation per configuration is shared by all budgets; held-out data is never used to fit or
 choose anything.
@@ -102,11 +103,13 @@ def run_model(key: str, recover: int, recover_budgets=(0.9, 0.8), only_calibrate
                                                                           allocation="error-sum", rows_ridge=0.0,
                                                                           bn_inputs=False),
          calibration),
+        ("whitened + sequential, output effect, no BatchNorm statistics (--no-bn-inputs)",
+         dict(method="whitened", sequential=True, allocation="output", bn_inputs=False), calibration),
         ("whitened + sequential, output effect (new default with data)", dict(method="whitened", sequential=True,
                                                                               allocation="output"), calibration),
     ]
     if only_calibrated:
-        configs = configs[-2:]
+        configs = configs[-3:]
     for name, options, cal in configs:
         config = fw.CompressConfig(**base, **options)
         t0 = time.perf_counter()
@@ -123,7 +126,7 @@ def run_model(key: str, recover: int, recover_budgets=(0.9, 0.8), only_calibrate
                 kept = result.report["totals"]["params_ratio"]
                 rows.append((b, vname, kept, value, time.perf_counter() - t1))
                 print(key, b, vname, f"{value:.4g}", flush=True)
-                if recover and p.allocation == "output" and b in recover_budgets:
+                if recover and "new default with data" in vname and b in recover_budgets:
                     p.config.recover = recover
                     t1 = time.perf_counter()
                     rec = pipeline.realize(p, f"params={b}", latency=False, layer_errors=False)
