@@ -112,10 +112,11 @@ def _plan_options(p: argparse.ArgumentParser, *, sweep: bool = False) -> None:
                    help="truncate each layer for its error after the eval-mode BatchNorm that reads it "
                         "(rows weighted by |gamma|/sqrt(var+eps); PyTorch, needs --heldout or --calibration)")
     g.add_argument("--bn-inputs", action=argparse.BooleanOptionalAction, default=None,
-                   help="without calibration: truncate each layer fed by an eval-mode BatchNorm (and an elementwise "
-                        "activation, average pooling) for its output error on the input statistics that BatchNorm "
-                        "was trained to produce; the ranks are unchanged (default: on for PyTorch models, which "
-                        "needs --heldout for one forward pass; --no-bn-inputs turns it off)")
+                   help="layers fed by an eval-mode BatchNorm (and an elementwise activation, average pooling) use the "
+                        "input statistics it was trained to produce: without calibration, each is truncated for its "
+                        "output error on them (the ranks are unchanged); with calibration, its moments are shrunk "
+                        "toward them instead of the identity (default: on for PyTorch models; the chains are found "
+                        "by one forward pass on --heldout or --calibration; --no-bn-inputs turns it off)")
     g.add_argument("--recover", type=int, default=_DEFAULTS.recover, metavar="STEPS",
                    help="PyTorch: fine-tune only the factors for up to STEPS steps on the calibration inputs")
     g.add_argument("--recover-lr", type=float, default=_DEFAULTS.recover_lr, metavar="LR",
