@@ -72,7 +72,7 @@ class Calibration:
             "ridge": self.ridge,
             "shrunk": {name: round(r, 6) for name, r in self.ridges.items() if r > self.ridge},
             "rows_ridge": self.rows_ridge,
-            "ridge_toward_input_statistics": sorted(self.priors),
+            "ridge_toward_input_statistics": sorted(n for n in self.priors if self.ridge_for(n) > self.ridge),
             "passes": self.passes,
             "batch_size": self.batch_size,
         }

@@ -149,7 +149,7 @@ class Whitened:
         else:
             dec = self.decompose_whitened(name, matrix, whitening(ridge(moments, alpha, prior=prior, base=self.ridge)), dtype=dtype)
         dec.extra["whitening"]["ridge"] = alpha
-        if prior is not None:
+        if prior is not None and alpha > self.ridge:
             dec.extra["whitening"]["ridge_toward"] = "input statistics"
         return dec
 
@@ -257,7 +257,7 @@ def with_plan_spectrum(factors: Decomposition, plan: Decomposition) -> Decomposi
     """``factors``' factors at every rank, ``plan``'s spectrum for the allocator and the report:
     a prior on a layer's inputs changes which rank-k factors it gets, never the ranks."""
     return Decomposition(plan.spectrum, factors.left, factors.values, factors.right,
-                         {**factors.extra, "plan_spectrum": "weights"})
+                         {**plan.extra, "input_statistics": True})
 
 
 METHODS = {"svd": PlainSvd, "whitened": Whitened, "columns": Columns}

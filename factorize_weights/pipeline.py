@@ -81,6 +81,7 @@ def decompose(records: list[LayerRecord], method, config: CompressConfig, calibr
     for record in bar(selected(records), config, f"{method.name} decomposition"):
         known = bn_inputs and record.input_stats is not None
         target = Prior.from_stats(record.input_stats()) if known and calibration is not None else None
+        known = known and (calibration is not None or Prior.from_stats(record.input_stats()) is not None)
         moments = calibration.release(record.name, shrink=config.shrinkage, prior=target) if calibration is not None else None
         prior = known and moments is None and isinstance(method, methods.PlainSvd)
         try:
@@ -295,6 +296,15 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
         timings["calibrate"] = time.perf_counter() - t1
     t1 = time.perf_counter()
     bn_inputs = config.resolved_bn_inputs(calibration is not None, backend.FORMAT)
+    if bn_inputs and method != "whitened" and any(not b.is_global for b in parsed):
+        # plain factors weighted by BatchNorm statistics have more weight error than the spectrum
+        # that plans them promises: an error= or energy= budget would be broken silently
+        if config.bn_inputs:
+            raise InputError("--bn-inputs: an error= or energy= budget bounds each layer's own weight error, which "
+                             "factors weighted by BatchNorm statistics do not keep; give --no-bn-inputs or a params= "
+                             "or flops= budget")
+        bn_inputs = False
+    bn_inputs = bn_inputs and method != "columns" and any(r.input_stats is not None for r in chosen)
     decompositions = decompose(records, methods.make(method, config), config,
                                cal if method == "whitened" else None, bn_inputs=bn_inputs)
     timings["decompose"] = time.perf_counter() - t1

@@ -113,11 +113,13 @@ class Prior:
         self.mean, self.var = mean / np.sqrt(scale), var / scale
 
     @classmethod
-    def from_stats(cls, stats) -> "Prior":
-        """From per-channel ``(mean, variance, taps)``, each channel repeated over its taps."""
+    def from_stats(cls, stats) -> "Prior | None":
+        """From per-channel ``(mean, variance, taps)``, each channel repeated over its taps; None
+        when the statistics promise an all-zero input (nothing to shrink toward)."""
         mean, var, taps = stats
         ones = np.ones(int(taps))
-        return cls(np.kron(mean, ones), np.kron(var, ones))
+        mean, var = np.kron(mean, ones), np.kron(var, ones)
+        return cls(mean, var) if float(np.mean(var + mean * mean)) > 0 else None
 
     def add_to(self, matrix: np.ndarray, scale: float) -> np.ndarray:
         """``matrix + scale * T`` (a new array)."""

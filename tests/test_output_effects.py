@@ -393,6 +393,12 @@ def test_bn_inputs_truncates_for_the_moments_the_batchnorm_promises_at_the_plann
     result = pipeline.realize(prep, "params=0.5", latency=False, layer_errors=False)
     entries = {e["name"]: e for e in result.report["layers"]}
     assert entries["fc"]["input_statistics_from"] == "b2 -> act -> pool (pool)" and result.report["bn_inputs"]
+    # an error= budget bounds the weights' own error, which weighted factors would exceed: off
+    per_layer = pipeline.prepare(model, dataclasses.replace(config, budget="error=0.6"), _data(x, "held"), None)
+    assert not per_layer.bn_inputs
+    result = pipeline.realize(per_layer, "error=0.6", latency=False, layer_errors=False)
+    assert result.report["budget"]["met"] and not result.report["bn_inputs"]
+    assert all(e["weight_error"] <= 0.6 + 1e-9 for e in result.report["layers"] if e.get("rank"))
     off_result = pipeline.realize(off, "params=0.5", latency=False, layer_errors=False)
     assert not off_result.report["bn_inputs"] and "input_statistics_from" not in {
         k for e in off_result.report["layers"] for k in e}
@@ -471,6 +477,15 @@ def test_calibrated_factors_shrink_toward_the_batchnorm_statistics():
         assert np.allclose(af @ xf, want, rtol=1e-5, atol=1e-5 * np.abs(want).max()), k
     result = pipeline.realize(prep, "params=0.5", latency=False, layer_errors=False)
     assert "fc" in result.report["calibration"]["ridge_toward_input_statistics"]
+    # the sequential refit adds the same ridge: with fc alone cut (upstream exact, C = G' = G) the
+    # refitted factors are the same truncation of W (G + lam T)^(1/2)
+    alone = pipeline.prepare(model, dataclasses.replace(config, only=("fc",)), _data(held_x, "held"), _data(cal_x, "cal"))
+    refit = pipeline.realize(alone, "params=0.5", latency=False, layer_errors=False)
+    assert refit.report["sequential"]
+    k = refit.plan.ranks["fc"]
+    af, xf = tb.read_factors(refit.model, ["fc"])["fc"]
+    want = (u[:, :k] * sv[:k]) @ vt[:k] @ np.linalg.inv(root)
+    assert np.allclose(af @ xf, want, rtol=1e-4, atol=1e-4 * np.abs(want).max())
     # off: the ridge adds a multiple of the identity, as before
     off = pipeline.prepare(model, dataclasses.replace(config, bn_inputs=False), _data(held_x, "held"), _data(cal_x, "cal"))
     assert off.calibration.prior_for("fc") is None
