@@ -141,7 +141,7 @@ class CompressConfig:
             return "output" if calibrated and backend_format == "torch" else "error-sum"
         return self.allocation
 
-    def resolved_bn_inputs(self, calibrated: bool, backend_format: str) -> bool:
+    def resolved_bn_inputs(self, backend_format: str) -> bool:
         """``None`` becomes on for a PyTorch model."""
         if self.bn_inputs is None:
             return backend_format == "torch"

@@ -236,26 +236,13 @@ def unscale_rows(dec: Decomposition, d: np.ndarray, scaled_by: str | None) -> De
     return dec
 
 
-def input_moment(stats) -> np.ndarray:
-    """The input second moment a layer's truncation is weighted by, from per-channel input
-    statistics ``(mean, variance, taps)``: ``diag(v) + mu mu^T`` with each of a convolution's
-    ``taps`` kernel positions given its channel's mean and variance (channel-major, as the
-    weight's (out, in * kh * kw) view); channels independent, as a BatchNorm's reading assumes.
-
-    The means are in: a positive activation's mean is part of what the next layer sees (measured
-    on EfficientNet-Lite0 without data, the plan held fixed: 81.8/61.8% top-class agreement at
-    params=0.9/0.8 with them, 80.2/56.2% centred, 77.0/56.8% plain). They would mislead an
-    allocator that compared layers by these energies (one direction ``W mu`` carries most of the
-    energy, a low rank looks almost free: 21.2% at 0.9), which is why the plan reads the weights'
-    own spectra (:func:`with_plan_spectrum`)."""
-    mean, var, taps = stats
-    mu = np.kron(np.asarray(mean, dtype=np.float64), np.ones(int(taps)))
-    return np.diag(np.kron(np.asarray(var, dtype=np.float64), np.ones(int(taps)))) + np.outer(mu, mu)
-
-
 def with_plan_spectrum(factors: Decomposition, plan: Decomposition) -> Decomposition:
     """``factors``' factors at every rank, ``plan``'s spectrum for the allocator and the report:
-    a prior on a layer's inputs changes which rank-k factors it gets, never the ranks."""
+    a prior on a layer's inputs changes which rank-k factors it gets, never the ranks. Planning on
+    the prior-weighted energies misleads the allocator: a positive activation's mean puts most of
+    a layer's energy in one direction ``W mu``, so a low rank looks almost free (EfficientNet-Lite0
+    without data at params=0.9: 21.2% top-class agreement planned that way; 81.8% with the plan
+    read from the weights, 77.0% plain; measured)."""
     return Decomposition(plan.spectrum, factors.left, factors.values, factors.right,
                          {**plan.extra, "input_statistics": True})
 

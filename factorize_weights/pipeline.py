@@ -79,21 +79,18 @@ def decompose(records: list[LayerRecord], method, config: CompressConfig, calibr
     plans."""
     out = {}
     for record in bar(selected(records), config, f"{method.name} decomposition"):
-        known = bn_inputs and record.input_stats is not None
-        target = Prior.from_stats(record.input_stats()) if known and calibration is not None else None
-        known = known and (calibration is not None or Prior.from_stats(record.input_stats()) is not None)
-        moments = calibration.release(record.name, shrink=config.shrinkage, prior=target) if calibration is not None else None
-        prior = known and moments is None and isinstance(method, methods.PlainSvd)
+        prior = Prior.from_stats(record.input_stats()) if bn_inputs and record.input_stats is not None else None
+        moments = calibration.release(record.name, shrink=config.shrinkage, prior=prior) if calibration is not None else None
         try:
             scale = record.row_scale if config.bn_weights else None
             out[record.name] = methods.row_weighted(
                 method, record.name, _weight(record), scale, dtype=record.dtype, moments=moments,
                 scaled_by=record.scaled_by, ridge_value=calibration.ridge_for(record.name) if calibration else None,
-                prior=target)
-            if prior:  # no data: the BatchNorm's promised input statistics
+                prior=prior)
+            if prior is not None and moments is None and isinstance(method, methods.PlainSvd):  # no data
                 weighted = methods.row_weighted(
                     methods.Whitened(config.ridge), record.name, _weight(record), scale, dtype=record.dtype,
-                    moments=methods.input_moment(record.input_stats()), scaled_by=record.scaled_by)
+                    moments=prior.matrix(), scaled_by=record.scaled_by)
                 out[record.name] = methods.with_plan_spectrum(weighted, out[record.name])
         except ValueError as exc:  # NaN/Inf in a weight is the user's model, not our bug
             raise InputError(str(exc)) from exc
@@ -295,7 +292,7 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
         cal = calibrate(model, records, calibration, config, size, moments=method == "whitened")
         timings["calibrate"] = time.perf_counter() - t1
     t1 = time.perf_counter()
-    bn_inputs = config.resolved_bn_inputs(calibration is not None, backend.FORMAT)
+    bn_inputs = config.resolved_bn_inputs(backend.FORMAT)
     if bn_inputs and method != "whitened" and any(not b.is_global for b in parsed):
         # plain factors weighted by BatchNorm statistics have more weight error than the spectrum
         # that plans them promises: an error= or energy= budget would be broken silently

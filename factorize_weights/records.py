@@ -61,7 +61,7 @@ class LayerRecord:
     # reads this layer's output directly), and that normalization's name; None: unweighted
     row_scale: Any = field(default=None, repr=False, compare=False)
     scaled_by: str | None = None
-    # a call giving (variance per input channel, kernel taps) from the eval-mode BatchNorm (and
+    # a call giving (mean and variance per input channel, kernel taps) from the eval-mode BatchNorm (and
     # elementwise activation) that produce the layer's input; see torch_backend._trace_normalized_inputs
     input_stats: Any = field(default=None, repr=False, compare=False)
     input_from: str | None = None

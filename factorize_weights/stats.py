@@ -103,7 +103,7 @@ class Prior:
     """A layer's expected input second moment up to scale, ``T = diag(var) + mean mean^T`` with
     mean diagonal 1, kept as two vectors (never n x n until it is added to a matrix): the target
     the calibration moments shrink toward where the inputs' statistics are known without data
-    (an eval-mode BatchNorm's, methods.input_moment)."""
+    (an eval-mode BatchNorm's), and without data the moment the layer is truncated for."""
 
     def __init__(self, mean: np.ndarray, var: np.ndarray):
         mean, var = np.asarray(mean, dtype=np.float64), np.asarray(var, dtype=np.float64)
@@ -120,6 +120,13 @@ class Prior:
         ones = np.ones(int(taps))
         mean, var = np.kron(mean, ones), np.kron(var, ones)
         return cls(mean, var) if float(np.mean(var + mean * mean)) > 0 else None
+
+    def matrix(self) -> np.ndarray:
+        """``T`` itself (n x n): the second moment a layer is truncated for when there is no data.
+        The means are in: a positive activation's mean is part of what the next layer sees
+        (EfficientNet-Lite0 without data, the plan held fixed: 81.8/61.8% top-class agreement at
+        params=0.9/0.8 with them, 80.2/56.2% centred; measured)."""
+        return self.add_to(np.zeros((len(self.mean), len(self.mean))), 1.0)
 
     def add_to(self, matrix: np.ndarray, scale: float) -> np.ndarray:
         """``matrix + scale * T`` (a new array)."""
