@@ -77,13 +77,21 @@ class Moments:
 
 class CrossMoments:
     """For paired rows x (original inputs) and x' (the inputs the compressed model produces on the
-    same samples): ``C = sum x x'^T`` and ``G' = sum x' x'^T`` (both n x n, float64)."""
+    same samples): ``C = sum x x'^T`` and ``G' = sum x' x'^T`` (both n x n, float64), and how far
+    x' has moved from x (:attr:`drift`)."""
 
     def __init__(self, n: int):
         self.n = int(n)
         self.cross: np.ndarray | None = None
         self.gram: np.ndarray | None = None
         self.rows = 0
+        self._moved = 0.0  # sum |x' - x|^2
+        self._energy = 0.0  # sum |x|^2
+
+    @property
+    def drift(self) -> float:
+        """``sqrt(sum |x' - x|^2 / sum |x|^2)``: 0 while no layer upstream has been replaced."""
+        return relative_error(self._moved, self._energy)
 
     def add(self, x: np.ndarray, x_new: np.ndarray) -> None:
         x = np.asarray(x, dtype=np.float64)
@@ -91,6 +99,8 @@ class CrossMoments:
         if x.shape != y.shape or x.ndim != 2 or x.shape[1] != self.n:
             raise ValueError(f"expected two row blocks of width {self.n} and equal shape; got {x.shape}, {y.shape}")
         c, g = x.T @ y, y.T @ y
+        self._moved += float(np.sum((y - x) ** 2))
+        self._energy += float(np.sum(x * x))
         if self.cross is None:
             self.cross, self.gram = c, g
         else:

@@ -475,13 +475,11 @@ def test_calibrated_factors_shrink_toward_the_batchnorm_statistics():
         af, xf = prep.decompositions["fc"].factors(k)
         want = (u[:, :k] * sv[:k]) @ vt[:k] @ np.linalg.inv(root)
         assert np.allclose(af @ xf, want, rtol=1e-5, atol=1e-5 * np.abs(want).max()), k
-    result = pipeline.realize(prep, "params=0.5", latency=False, layer_errors=False)
-    assert "fc" in result.report["calibration"]["ridge_toward_input_statistics"]
     # the sequential refit adds the same ridge: with fc alone cut (upstream exact, C = G' = G) the
     # refitted factors are the same truncation of W (G + lam T)^(1/2)
     alone = pipeline.prepare(model, dataclasses.replace(config, only=("fc",)), _data(held_x, "held"), _data(cal_x, "cal"))
     refit = pipeline.realize(alone, "params=0.5", latency=False, layer_errors=False)
-    assert refit.report["sequential"]
+    assert refit.report["sequential"] and refit.report["calibration"]["ridge_toward_input_statistics"] == ["fc"]
     k = refit.plan.ranks["fc"]
     af, xf = tb.read_factors(refit.model, ["fc"])["fc"]
     want = (u[:, :k] * sv[:k]) @ vt[:k] @ np.linalg.inv(root)
@@ -489,3 +487,68 @@ def test_calibrated_factors_shrink_toward_the_batchnorm_statistics():
     # off: the ridge adds a multiple of the identity, as before
     off = pipeline.prepare(model, dataclasses.replace(config, bn_inputs=False), _data(held_x, "held"), _data(cal_x, "cal"))
     assert off.calibration.prior_for("fc") is None
+
+
+def test_a_refit_behind_a_replaced_layer_drops_the_batchnorm_target():
+    # oracle: reduced-rank regression in closed form with numpy (common practice; as in
+    # test_stats.py), M = W C G'^-1 truncated in the G'^(1/2) metric, C = X X'^T and G' = X' X'^T
+    # from torch hooks on the original and the compressed model, both with a ridge alpha x mean
+    # diag(G') x I: the identity target, alpha = max(1%, rows ridge 0.1 x 40 / rows, rho / (1 - rho))
+    # with rho scikit-learn's ledoit_wolf_shrinkage of the original inputs. The BatchNorm's
+    # statistics describe the original model's inputs of fc; once c2 is replaced they are stale.
+    from sklearn.covariance import ledoit_wolf_shrinkage
+
+    torch.manual_seed(12)
+    model = NormedHead().eval()
+    with torch.no_grad():
+        for bn in (model.b1, model.b2):
+            bn.weight.uniform_(0.5, 1.5)
+            bn.bias.uniform_(-0.5, 0.5)
+    rng = np.random.default_rng(13)
+    cal_x = rng.standard_normal((24, 3, 6, 6)).astype(np.float32)
+    held_x = rng.standard_normal((8, 3, 6, 6)).astype(np.float32)
+    config = fw.CompressConfig(budget="params=0.5", quiet=True, latency_repeats=0, method="whitened",
+                               only=("c2", "fc"))
+    prep = pipeline.prepare(model, config, _data(held_x, "held"), _data(cal_x, "cal"))
+    assert prep.calibration.prior_for("fc") is not None and prep.calibration.prior_for("c2") is not None
+    result = pipeline.realize(prep, "params=0.5", latency=False, layer_errors=False)
+    ranks = result.plan.ranks
+    assert ranks["c2"] is not None and ranks["fc"] is not None  # c2 is replaced before fc is refitted
+
+    def fc_inputs(m):
+        seen = []
+        handle = m.get_submodule("fc").register_forward_hook(lambda mod, a, o: seen.append(a[0].detach().double().numpy()))
+        with torch.no_grad():
+            m(torch.from_numpy(cal_x))
+        handle.remove()
+        return seen[0]
+
+    x, x_new = fc_inputs(model), fc_inputs(result.model)
+    rho = ledoit_wolf_shrinkage(x, assume_centered=True)
+    alpha = max(0.01, 0.1 * 40 / len(x), rho / (1 - rho))
+    lam = alpha * np.mean(np.diag(x_new.T @ x_new))
+    g_new = x_new.T @ x_new + lam * np.eye(40)
+    cross = x.T @ x_new + lam * np.eye(40)
+    w = model.fc.weight.detach().double().numpy()
+    m = w @ cross @ np.linalg.inv(g_new)
+    s = np.linalg.cholesky(g_new)
+    u, sv, vt = np.linalg.svd(m @ s, full_matrices=False)
+    k = ranks["fc"]
+    want = (u[:, :k] * sv[:k]) @ vt[:k] @ np.linalg.inv(s)
+    af, xf = tb.read_factors(result.model, ["fc"])["fc"]
+    got = af @ xf
+    assert np.allclose(got, want, rtol=1e-4, atol=1e-4 * np.abs(want).max())
+    fit = {e["name"]: e["sequential_fit"] for e in result.report["layers"] if e["rank"]}
+    assert fit["fc"]["ridge_toward"] == "identity" and fit["fc"]["input_drift"] > 1e-3
+    assert fit["c2"]["ridge_toward"] == "input statistics" and fit["c2"]["input_drift"] == 0
+    assert "fc" not in result.report["calibration"]["ridge_toward_input_statistics"]
+    # the stale target would give other factors (so the check above can fail)
+    t = prep.calibration.prior_for("fc").add_to(np.zeros((40, 40)), 1.0)
+    alpha_t = prep.calibration.ridge_for("fc")
+    unit = np.mean(np.diag(x_new.T @ x_new))
+    g_t = x_new.T @ x_new + (alpha_t - 0.01) * unit * t + 0.01 * unit * np.eye(40)
+    c_t = x.T @ x_new + (alpha_t - 0.01) * unit * t + 0.01 * unit * np.eye(40)
+    s_t = np.linalg.cholesky(g_t)
+    u, sv, vt = np.linalg.svd(w @ c_t @ np.linalg.inv(g_t) @ s_t, full_matrices=False)
+    stale = (u[:, :k] * sv[:k]) @ vt[:k] @ np.linalg.inv(s_t)
+    assert not np.allclose(got, stale, rtol=1e-3, atol=1e-3 * np.abs(stale).max())
