@@ -62,7 +62,17 @@ class Calibration:
     passes: int = 1  # passes over the calibration set for the latest budget (moments + refit groups)
     rows_ridge: float = 0.0  # with shrinkage: each layer's ridge is at least this x (input width) / rows
 
-    def summary(self) -> dict:
+    def summary(self, ranks: dict | None = None, fits: dict | None = None) -> dict:
+        """The report's calibration block; with one budget's ``ranks`` and sequential ``fits``,
+        what that budget's written factors used (a refit's own ridge and target)."""
+        fits = fits or {}
+        ridges = {**self.ridges, **{n: f["ridge"] for n, f in fits.items() if n in self.ridges}}
+
+        def toward_statistics(n):
+            if ranks is not None and ranks.get(n) is None:
+                return False  # left dense
+            return fits[n]["ridge_toward"] == "input statistics" if n in fits else self.ridge_for(n) > self.ridge
+
         return {
             "source": self.data.source,
             "sha256": self.data.sha256,
@@ -72,10 +82,9 @@ class Calibration:
             "peak_rss_bytes": peak_rss(),
             "warnings": list(self.warnings),
             "ridge": self.ridge,
-            "shrunk": {name: round(r, 6) for name, r in self.ridges.items() if r > self.ridge},
+            "shrunk": {name: round(r, 6) for name, r in ridges.items() if r > self.ridge},
             "rows_ridge": self.rows_ridge,
-            "ridge_toward_input_statistics": sorted(n for n in self.priors
-                                                    if self.ridge_for(n) > self.ridge and n not in self.moved),
+            "ridge_toward_input_statistics": sorted(n for n in self.priors if toward_statistics(n)),
             "passes": self.passes,
             "batch_size": self.batch_size,
         }
@@ -94,7 +103,6 @@ class Calibration:
         return self.priors.get(name)
 
     identity_ridges: dict[str, float] = field(default_factory=dict)  # with a prior: the ridge toward I
-    moved: set[str] = field(default_factory=set)  # this budget's refits whose inputs upstream layers moved
 
     def identity_ridge_for(self, name: str) -> float:
         """The relative ridge of ``name`` with the identity as the target, as if it had no prior
@@ -218,7 +226,6 @@ def sequential_refit(model, records: list[LayerRecord], ranks: dict, cal: Calibr
     fits, errors = {}, {}
     groups = groups_in_order(chosen, by_name, config.sequential_groups)
     batches = [x for x, _ in cal.data.batches(cal.batch_size)]
-    cal.moved = set()
     runs = backend.paired_runs(model, working, [by_name[n] for g in groups for n in g], batches)
     for group in bar(groups, config, "sequential refit", unit="group"):
         acc = paired_moments(backend, model, working, [by_name[n] for n in group], batches, runs)
@@ -233,8 +240,6 @@ def sequential_refit(model, records: list[LayerRecord], ranks: dict, cal: Calibr
             # the stale target, 53.4% with the identity; reports/accuracy_pretrained.md)
             drift = st.drift
             prior = cal.prior_for(name) if drift <= DRIFT_TOL else None
-            if drift > DRIFT_TOL:
-                cal.moved.add(name)
             alpha = cal.ridge_for(name) if prior is not None else cal.identity_ridge_for(name)
             wh_new = whitening(ridge(st.gram, alpha, prior=prior, base=cal.ridge))
             w = backend.weight_matrix(by_name[name])
@@ -249,8 +254,8 @@ def sequential_refit(model, records: list[LayerRecord], ranks: dict, cal: Calibr
                                    d, record.scaled_by)
             a, x = done[name] = dec.factors(ranks[name], config.split)
             errors[name] = weight_error(w, a, x)
-            fits[name] = {"method": wh_new.method, "ridge": alpha, "floor": wh_new.floor, "input_drift": round(drift, 6),
-                          "ridge_toward": "identity" if prior is None else "input statistics"}
+            fits[name] = {"method": wh_new.method, "ridge": alpha, "floor": wh_new.floor, "input_drift": float(f"{drift:.3g}"),
+                          "ridge_toward": "input statistics" if prior is not None and alpha > cal.ridge else "identity"}
         working = backend.rewrite(working, records, done, in_place=True)
     cal.passes = (1 if cal.moments else 0) + len(groups)  # this budget's: the moments pass, then one per group
     return working, fits, errors

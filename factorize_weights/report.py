@@ -135,7 +135,7 @@ def build_report(
         "recovery": recovery,
         "allocation": _allocation(allocation, effects, timings, config),
         "warnings": plan_warnings(layers, allocation),
-        "calibration": None if calibration is None else calibration.summary(),
+        "calibration": None if calibration is None else calibration.summary(plan.ranks, fits),
         "factor_split": config.split,
         "svd": {"requested": config.svd, "seed": config.seed, "oversampling": config.oversampling,
                 "power_iterations": config.power_iterations},

