@@ -212,6 +212,27 @@ def test_overridden_forward_is_admitted_only_when_it_computes_what_the_base_clas
                                    rtol=1e-4, atol=1e-4)
 
 
+class PaddedConv(nn.Conv2d):
+    """Pads its input itself before a padding-free convolution (as "same"-padding ports do)."""
+
+    def forward(self, x):
+        return super().forward(nn.functional.pad(x, (1, 1, 1, 1)))
+
+
+def test_overridden_forward_with_its_own_padding_is_skipped_naming_both_shapes():
+    # oracle: torch's own output shapes, from the module and from Conv2d.forward on the same input
+    torch.manual_seed(7)
+    model = nn.Sequential(PaddedConv(3, 8, 3, stride=2), nn.ReLU(), nn.Conv2d(8, 8, 1)).eval()
+    x = np.random.default_rng(7).standard_normal((4, 3, 9, 9)).astype(np.float32)
+    prep = pipeline.prepare(model, fw.CompressConfig(quiet=True), _data(x, "held"))
+    reason = {r.name: r.skip_reason for r in prep.records}["0"]
+    with torch.no_grad():
+        got = tuple(model[0](torch.from_numpy(x)).shape)
+        plain = tuple(nn.Conv2d.forward(model[0], torch.from_numpy(x)).shape)
+    assert got != plain
+    assert f"its output shape {got} is not Conv2d's {plain}" in reason, reason
+
+
 class BnNet(nn.Module):
     def __init__(self):
         super().__init__()

@@ -677,23 +677,29 @@ def measure_positions(model: nn.Module, records: list[LayerRecord], sample: np.n
 
     overridden = [r for r in records if r.skip_reason is not None and r.options.get("check_forward")]
     differences = {r.name: [] for r in overridden}
+    why = {}  # record name -> why the base class's output could not be compared (first seen)
     bases = {r.name: next(cls for cls in _KINDS if isinstance(r.handle, cls)) for r in overridden}
     for record in overridden:  # does the base class compute the same on these real inputs?
         base = bases[record.name]
 
         def compare(module, args, output, record=record, base=base):
             if len(args) != 1 or not isinstance(output, torch.Tensor):
+                why.setdefault(record.name, f"it is called with {len(args)} positional inputs or returns no tensor")
                 differences[record.name].append(float("inf"))
                 return
             try:
                 plain = base.forward(module, args[0])
-            except Exception:
+            except Exception as exc:
+                why.setdefault(record.name, f"{base.__name__}.forward fails on its inputs ({type(exc).__name__})")
                 differences[record.name].append(float("inf"))
                 return
-            same_shape = plain.shape == output.shape
+            if plain.shape != output.shape:  # e.g. padding of its own
+                why.setdefault(record.name, f"its output shape {tuple(output.shape)} is not {base.__name__}'s "
+                                            f"{tuple(plain.shape)} on the sample inputs")
+                differences[record.name].append(float("inf"))
+                return
             scale = float(output.abs().max()) if output.numel() else 0.0
-            diff = float((plain - output).abs().max()) / max(scale, 1e-30) if same_shape else float("inf")
-            differences[record.name].append(diff)
+            differences[record.name].append(float((plain - output).abs().max()) / max(scale, 1e-30))
 
         hooks.append(record.handle.register_forward_hook(compare))
 
@@ -744,10 +750,14 @@ def measure_positions(model: nn.Module, records: list[LayerRecord], sample: np.n
             record.skip_reason = None  # the rewrite computes what the layer computed, on real inputs
             record.options["forward_checked"] = (f"{type(record.handle).__name__}.forward matched "
                                                  f"{base.__name__}.forward on {rows} sample input(s)")
+        elif not seen:
+            record.skip_reason = f"class {type(record.handle).__name__} overrides forward() and the sample never called it"
+        elif record.name in why:
+            record.skip_reason = (f"class {type(record.handle).__name__} overrides forward() and {why[record.name]}, "
+                                  "so two plain factors would change it")
         else:
             record.skip_reason = OVERRIDE_MISMATCH.format(cls=type(record.handle).__name__, base=base.__name__,
-                                                          diff=worst) if seen else \
-                f"class {type(record.handle).__name__} overrides forward() and the sample never called it"
+                                                          diff=worst)
             record.positions = None
             record.row_scale = record.scaled_by = None
     return int(total[0])
