@@ -105,6 +105,11 @@ def main() -> None:
         "is ||f(x) - g(x)||_F / ||f(x)||_F of the logits over the held-out set (lower is better), which",
         "still separates the methods where top-1 no longer can.",
         "",
+        "These two models were trained here. Models that other people trained (EfficientNet-Lite0 and",
+        "all-MiniLM-L6-v2, from registry packages) are measured in `accuracy_pretrained.md`",
+        "(`scripts/bench_pretrained.py`), and calibration sets unlike the deployment data in",
+        "`calibration_match.md`.",
+        "",
         f"Machine: {platform.machine()}, Python {platform.python_version()}, torch {torch.__version__}; "
         f"whole benchmark {elapsed:.0f} s.",
     ]
