@@ -386,7 +386,7 @@ def cmd_compress(args) -> int:
     else:
         _flush_warnings()  # warnings first, one line each, then the results
         head, rows = terminal.layer_rows(result.report)
-        print("\n".join(terminal.table(head, rows)))
+        print("\n".join(terminal.table(head, rows, optional=terminal.OPTIONAL_LAYER_COLUMNS)))
         if result.report["skipped"]:
             print(f"skipped {len(result.report['skipped'])} layer(s):")
             for s in result.report["skipped"]:

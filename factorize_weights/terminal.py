@@ -5,9 +5,13 @@ a change of a metric is always said as a *drop* or a *gain* in words, never by a
 
 from __future__ import annotations
 
+import os
 import shutil
+import sys
 
 PERCENT = ("top1", "top5", "agreement")
+#: columns of the layer table left out first on a narrow terminal (report.md keeps them)
+OPTIONAL_LAYER_COLUMNS = ("break-even", "params before", "kind", "energy kept", "matrix")
 
 
 def fmt_value(name: str, value: float) -> str:
@@ -31,23 +35,61 @@ def fmt_change(name: str, before: float, after: float, higher_is_better: bool) -
     return text
 
 
-def table(head: list[str], rows: list[list[str]], width: int | None = None, right_from: int = 2) -> list[str]:
-    """An aligned plain-text table; columns from ``right_from`` on are right-aligned. The first
-    column is shortened (``...`` in the middle) so the table fits ``width`` (the terminal's)."""
-    width = width or shutil.get_terminal_size((120, 24)).columns
+def table(head: list[str], rows: list[list[str]], width: int | None = None, right_from: int = 2,
+          optional: tuple[str, ...] = ()) -> list[str]:
+    """An aligned plain-text table; columns from ``right_from`` on are right-aligned. When it is
+    wider than ``width`` (the terminal's; no limit when the output is not a terminal and COLUMNS
+    is unset, so logs keep everything), in this order: the first column's dotted names are
+    abbreviated, every part but the last to its first letter with indices kept
+    (``_blocks.13._project_conv`` becomes ``_b.13._project_conv``) while they stay distinct; the
+    ``optional`` columns are left out, in the order given; the names are cut in the middle
+    (``...``). A last line then says what was shortened."""
+    if width is None:
+        width = shutil.get_terminal_size((120, 24)).columns \
+            if "COLUMNS" in os.environ or sys.stdout.isatty() else 1 << 30
+    head, rows = list(head), [list(r) for r in rows]
+
+    def too_wide():
+        widths = [max(len(str(r[i])) for r in [head] + rows) for i in range(len(head))]
+        return sum(widths) + 2 * (len(widths) - 1) - width
+
+    said = []
+    if too_wide() > 0:
+        short = [_abbreviate(str(r[0])) for r in rows]
+        if len(set(short)) == len({str(r[0]) for r in rows}):
+            for r, n in zip(rows, short):
+                r[0] = n
+            said.append("layer names abbreviated")
+    dropped = []
+    for name in optional:
+        if too_wide() <= 0 or name not in head:
+            continue
+        i = head.index(name)
+        head.pop(i)
+        for r in rows:
+            r.pop(i)
+        right_from -= i < right_from
+        dropped.append(name)
+    if dropped:
+        said.append("left out: " + ", ".join(dropped))
+    over = too_wide()
+    if over > 0:
+        cut = max(12, max(len(str(r[0])) for r in [head] + rows) - over)
+        rows = [[_middle(str(r[0]), cut)] + r[1:] for r in rows]
+        said.append("long names cut")
     widths = [max(len(str(r[i])) for r in [head] + rows) for i in range(len(head))]
-    spare = width - (sum(widths) + 2 * (len(widths) - 1))
-    if spare < 0 and widths[0] > 12:
-        cut = max(12, widths[0] + spare)
-        rows = [[_middle(r[0], cut)] + r[1:] for r in rows]
-        head = [_middle(head[0], cut)] + head[1:]
-        widths[0] = cut
 
     def line(cells):
         return "  ".join(str(c).rjust(w) if i >= right_from else str(c).ljust(w)
                          for i, (c, w) in enumerate(zip(cells, widths))).rstrip()
 
-    return [line(head), line(["-" * w for w in widths])] + [line(r) for r in rows]
+    note = [f"(to fit the terminal: {'; '.join(said)}. report.md has the whole table)"] if said else []
+    return [line(head), line(["-" * w for w in widths])] + [line(r) for r in rows] + note
+
+
+def _abbreviate(name: str) -> str:
+    parts = name.split(".")
+    return ".".join([p if p.isdigit() else p[: 2 if p.startswith("_") else 1] for p in parts[:-1]] + parts[-1:])
 
 
 def _middle(text: str, n: int) -> str:

@@ -302,3 +302,27 @@ def test_keep_within_chooses_on_the_selection_set_and_reports_on_the_held_out_se
     assert report["heldout"]["source"].endswith("held.npz")
     code, out, err = run(capsys, "compress", "--demo", "--keep-within", "0.5", "-q", "--latency-repeats", "0")
     assert code == 0 and "the held-out set chose it, so its figure below is optimistic" in out
+
+
+def test_layer_table_fits_a_narrow_terminal_and_keeps_whole_names_in_logs(monkeypatch):
+    # common practice: a terminal table fits the terminal's width; a log (not a terminal) keeps
+    # every name whole. Here: every line within the width, the shortened names still distinct
+    # and still ending in the layer's own name and holding its block index
+    from factorize_weights import terminal
+
+    head = ["layer", "kind", "matrix", "rank", "break-even", "params before", "params after", "energy kept",
+            "weight error", "output error"]
+    names = [f"encoder.layer.{i}.attention.self.{leaf}" for i in range(12) for leaf in ("query", "key")]
+    rows = [[n, "linear", "384x384", "96", "192", "147,840", "73,728", "90.00%", "0.3", "0.2"] for n in names]
+    for width in (120, 80):
+        lines = terminal.table(head, rows, width=width, optional=terminal.OPTIONAL_LAYER_COLUMNS)
+        body = lines[2:2 + len(rows)]
+        assert all(len(line) <= width for line in lines[:-1]), width
+        shown = [line.split()[0] for line in body]
+        assert len(set(shown)) == len(names)
+        assert all(s.endswith(n.split(".")[-1]) and f".{n.split('.')[2]}." in s for s, n in zip(shown, names))
+        assert lines[-1].startswith("(to fit the terminal:")
+    monkeypatch.delenv("COLUMNS", raising=False)
+    monkeypatch.setattr(sys.stdout, "isatty", lambda: False)
+    lines = terminal.table(head, rows, optional=terminal.OPTIONAL_LAYER_COLUMNS)
+    assert [line.split()[0] for line in lines[2:]] == names and lines[0].split()[:2] == ["layer", "kind"]
