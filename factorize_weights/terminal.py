@@ -56,7 +56,7 @@ def table(head: list[str], rows: list[list[str]], width: int | None = None, righ
     said = []
     if too_wide() > 0:
         short = [_abbreviate(str(r[0])) for r in rows]
-        if len(set(short)) == len({str(r[0]) for r in rows}):
+        if len(set(short)) == len({str(r[0]) for r in rows}) and any(n != str(r[0]) for n, r in zip(short, rows)):
             for r, n in zip(rows, short):
                 r[0] = n
             said.append("layer names abbreviated")

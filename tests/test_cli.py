@@ -322,6 +322,8 @@ def test_layer_table_fits_a_narrow_terminal_and_keeps_whole_names_in_logs(monkey
         assert len(set(shown)) == len(names)
         assert all(s.endswith(n.split(".")[-1]) and f".{n.split('.')[2]}." in s for s, n in zip(shown, names))
         assert lines[-1].startswith("(to fit the terminal:")
+    plain = [[str(i), *rows[0][1:]] for i in range(3)]  # nothing to abbreviate: not said
+    assert "abbreviated" not in terminal.table(head, plain, width=100, optional=terminal.OPTIONAL_LAYER_COLUMNS)[-1]
     monkeypatch.delenv("COLUMNS", raising=False)
     monkeypatch.setattr(sys.stdout, "isatty", lambda: False)
     lines = terminal.table(head, rows, optional=terminal.OPTIONAL_LAYER_COLUMNS)
