@@ -59,7 +59,7 @@ def table(head: list[str], rows: list[list[str]], width: int | None = None, righ
         if len(set(short)) == len({str(r[0]) for r in rows}) and any(n != str(r[0]) for n, r in zip(short, rows)):
             for r, n in zip(rows, short):
                 r[0] = n
-            said.append("layer names abbreviated")
+            said.append("names abbreviated")
     dropped = []
     for name in optional:
         if too_wide() <= 0 or name not in head:
@@ -71,7 +71,7 @@ def table(head: list[str], rows: list[list[str]], width: int | None = None, righ
         right_from -= i < right_from
         dropped.append(name)
     if dropped:
-        said.append("left out: " + ", ".join(dropped))
+        said.append(f"column{'s' if len(dropped) > 1 else ''} {', '.join(dropped)} left out")
     over = too_wide()
     if over > 0:
         cut = max(12, max(len(str(r[0])) for r in [head] + rows) - over)
@@ -83,7 +83,7 @@ def table(head: list[str], rows: list[list[str]], width: int | None = None, righ
         return "  ".join(str(c).rjust(w) if i >= right_from else str(c).ljust(w)
                          for i, (c, w) in enumerate(zip(cells, widths))).rstrip()
 
-    note = [f"(to fit the terminal: {'; '.join(said)}. report.md has the whole table)"] if said else []
+    note = [f"(shortened to fit the terminal: {'; '.join(said)}; report.md has the whole table)"] if said else []
     return [line(head), line(["-" * w for w in widths])] + [line(r) for r in rows] + note
 
 
