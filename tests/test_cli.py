@@ -321,7 +321,7 @@ def test_layer_table_fits_a_narrow_terminal_and_keeps_whole_names_in_logs(monkey
         shown = [line.split()[0] for line in body]
         assert len(set(shown)) == len(names)
         assert all(s.endswith(n.split(".")[-1]) and f".{n.split('.')[2]}." in s for s, n in zip(shown, names))
-        assert lines[-1].startswith("(shortened to fit the terminal: names abbreviated; columns break-even")
+        assert lines[-1].startswith("(shortened to fit the terminal: names abbreviated; column")
     plain = [[str(i), *rows[0][1:]] for i in range(3)]  # nothing to abbreviate: not said
     assert "abbreviated" not in terminal.table(head, plain, width=100, optional=terminal.OPTIONAL_LAYER_COLUMNS)[-1]
     monkeypatch.delenv("COLUMNS", raising=False)
