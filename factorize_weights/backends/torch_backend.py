@@ -684,7 +684,8 @@ def measure_positions(model: nn.Module, records: list[LayerRecord], sample: np.n
 
         def compare(module, args, output, record=record, base=base):
             if len(args) != 1 or not isinstance(output, torch.Tensor):
-                why.setdefault(record.name, f"it is called with {len(args)} positional inputs or returns no tensor")
+                why.setdefault(record.name, f"it is called with {len(args)} positional inputs" if len(args) != 1
+                               else f"it returns a {type(output).__name__}, not a tensor")
                 differences[record.name].append(float("inf"))
                 return
             try:
