@@ -20,7 +20,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .backends import backend_for
+from .backends import backend_for, can
 from .config import CompressConfig
 from .data import HeldOut
 from .errors import InputError
@@ -262,17 +262,10 @@ def sequential_refit(model, records: list[LayerRecord], ranks: dict, cal: Calibr
 
 
 def recover(original, factorized, records, cal: Calibration, config: CompressConfig, metric: str | None) -> dict:
-    """Fine-tune the factor pairs on the calibration inputs (PyTorch only)."""
-    from .backends import torch_backend, torch_recovery
-
-    if backend_for(original) is not torch_backend:
-        raise InputError("--recover fine-tunes PyTorch factor pairs; an ONNX model has no trainable factors")
-    if not torch_backend.factor_parameters(factorized):
-        raise InputError("--recover: the plan factorized no layer, so there are no factors to fine-tune")
-    sample = torch_backend.predict(original, torch_backend.first_rows(cal.data.inputs, 2), source="--calibration",
-                                   output=config.output)
-    # KL on logits for classifiers (2-D outputs, a classification metric or none); MSE otherwise
-    classifier = sample.ndim == 2 and sample.shape[1] > 1 and metric in (None, "top1", "top5", "agreement")
-    loss = "kl" if classifier else "mse"
-    return torch_recovery.recover(original, factorized, cal.data.inputs, steps=config.recover, loss=loss,
-                                  output=config.output, lr=config.recover_lr, seed=config.seed, quiet=config.quiet)
+    """Fine-tune the factor pairs on the calibration inputs (a backend capability)."""
+    backend = backend_for(original)
+    if not can(backend, "recovery"):
+        raise InputError(f"--recover fine-tunes factor pairs, which a {backend.FORMAT} model does not have as trainable "
+                         "parameters (use a PyTorch model)")
+    return backend.recover(original, factorized, cal.data.inputs, metric=metric, steps=config.recover,
+                           output=config.output, lr=config.recover_lr, seed=config.seed, quiet=config.quiet)

@@ -66,7 +66,7 @@ class CompressConfig:
     # unchanged
     bn_inputs: bool | None = None
     recover: int = 0  # fine-tuning steps of the factors after factorization (needs calibration); 0: off
-    recover_lr: float | None = None  # None: chosen by short trials on the validation slice (torch_recovery.py)
+    recover_lr: float | None = None  # None: chosen by short trials on the validation slice (backends/torch_backend/recovery.py)
     # ridge on the calibration moments, relative to their mean diagonal: 1% (common practice) kept
     # sequential refits from zeroing directions 180 calibration images never visit (measured:
     # demo logit error at params=0.3 0.022 -> 0.004)

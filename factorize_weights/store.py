@@ -15,14 +15,13 @@ from pathlib import Path
 
 from ._version import __version__
 from .allocate import Plan
-from .backends import backend_for
 from .config import CompressConfig
+from .backends import backend_for
 from .errors import InputError
+from .plan_file import PLAN_FORMAT, PLAN_VERSION, plan_layers, read_plan  # noqa: F401 (read_plan: public)
 from .records import LayerRecord
 from .report import render_markdown
 
-PLAN_FORMAT = "factorize-weights/plan"
-PLAN_VERSION = 1
 FILES = ("model.safetensors", "plan.json", "report.html", "report.json", "report.md")
 
 
@@ -184,22 +183,6 @@ def _disk_error(out: Path, exc: OSError) -> InputError | None:
                       "free; nothing was left behind)")
 
 
-def read_plan(folder: str | Path) -> dict:
-    folder = Path(folder)
-    path = folder / "plan.json"
-    if not path.is_file():
-        raise InputError(f"{folder}: no plan.json (is this a factorize-weights output folder?)")
-    try:
-        plan = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, ValueError) as exc:
-        raise InputError(f"{path}: not valid JSON ({exc})") from exc
-    if not isinstance(plan, dict) or plan.get("format") != PLAN_FORMAT:
-        raise InputError(f"{path}: not a factorize-weights plan (format field missing or different)")
-    if plan.get("version", 0) > PLAN_VERSION:
-        raise InputError(f"{path}: plan version {plan.get('version')} is newer than this tool understands ({PLAN_VERSION})")
-    return plan
-
-
 def load_factorized(model, folder: str | Path):
     """Rebuild the factorized model from the user's *original* model object plus an output folder.
 
@@ -208,49 +191,7 @@ def load_factorized(model, folder: str | Path):
     model; the weights in ``model.safetensors`` are then loaded strictly, so the result computes
     exactly what the saved run's factorized model computed.
     """
+    from .backends import rebuild
+
     folder = Path(folder)
-    plan = read_plan(folder)
-    layers = plan.get("layers")
-    if not isinstance(layers, list):
-        raise InputError(f"{folder}/plan.json: no 'layers' list (a damaged or foreign result folder)")
-    for i, entry in enumerate(layers):
-        missing = [f for f in ("name", "kind", "shape", "rank") if not isinstance(entry, dict) or f not in entry]
-        if missing:
-            raise InputError(f"{folder}/plan.json: layer entry {i} lacks the field(s) {', '.join(missing)} "
-                             "(a damaged result folder)")
-    if backend_for(model).FORMAT == "onnx" or (folder / "model.onnx").is_file() and not (folder / "model.safetensors").is_file():
-        from .backends import onnx_backend
-
-        return onnx_backend.load(folder / "model.onnx")
-    weights = folder / "model.safetensors"
-    if not weights.is_file():
-        raise InputError(f"{folder}: no model.safetensors")
-    from .backends import torch_backend as backend
-
-    model = backend.normalize(model)  # the same conversion compress made (attention projections)
-    records = {r.name: r for r in backend.discover(model)}
-    ranks = {}
-    for entry in layers:
-        name = entry["name"]
-        record = records.get(name)
-        if record is None:
-            raise InputError(f"{folder}/plan.json: layer {name!r} is not in the model")
-        if list(record.weight_shape) != list(entry["shape"]) or record.kind != entry["kind"]:
-            raise InputError(
-                f"{folder}/plan.json: layer {name!r} is {entry['kind']} {entry['shape']} in the plan but "
-                f"{record.kind} {list(record.weight_shape)} in the model"
-            )
-        if entry["rank"] != "dense":
-            rank = int(entry["rank"])
-            if not 1 <= rank <= min(record.matrix_shape):
-                raise InputError(
-                    f"{folder}/plan.json: rank {rank} exceeds min(out, in) = {min(record.matrix_shape)} "
-                    f"for layer {name!r}"
-                )
-            ranks[name] = rank
-    rebuilt = backend.skeleton(model, records.values(), ranks)
-    try:
-        backend.load_saved_weights(rebuilt, weights)
-    except Exception as exc:
-        raise InputError(f"{weights}: does not match the plan ({type(exc).__name__}: {str(exc).splitlines()[0]})") from exc
-    return rebuilt.eval()
+    return rebuild(model, folder, plan_layers(folder))

@@ -228,7 +228,7 @@ class _Plain(nn.Linear):
 
 def test_split_attention_computes_what_multihead_attention_computes():
     # oracle: torch's own nn.MultiheadAttention on the same inputs, masks and options
-    from factorize_weights.backends.torch_attention import SplitAttention
+    from factorize_weights.backends.torch_backend.attention import SplitAttention
 
     torch.manual_seed(9)
     for batch_first, kdim in ((True, None), (False, 12)):

@@ -27,8 +27,9 @@ OutputSink = Callable[[str, np.ndarray, np.ndarray], None]
 class Backend(Protocol):
     """What the pipeline needs from a model format (a backend module satisfies it structurally)."""
 
-    FORMAT: str  # "torch" or "onnx"
+    FORMAT: str  # "torch" or "onnx": recorded in reports, never tested outside this package
     RUNTIME: str  # what latency is measured in
+    CAPABILITIES: frozenset  # optional operations it has: "output_effects", "recovery", ...
 
     def discover(self, model, *, only: Sequence[str] = (), skip: Sequence[str] = ()) -> list[LayerRecord]:
         """Every linear/conv layer as a record; the ones left alone with a reason."""
@@ -89,6 +90,14 @@ class Backend(Protocol):
     def save_model(self, model, folder: Path) -> list[str]:
         """Write the model into ``folder``; the file names written."""
 
+    def rebuild(self, model, folder: Path, layers: list[dict]):
+        """The factorized model a result folder holds, from the original ``model`` and the validated
+        ``plan.json`` layer entries."""
+
+    def recover(self, original, factorized, inputs, *, metric: str | None, steps: int, output: str | None = None,
+                lr: float | None = None, seed: int = 0, quiet: bool = False) -> dict:
+        """Fine-tune the factor pairs in place (capability ``recovery``); what happened."""
+
 
 def get(name: str) -> Backend:
     """The backend module called ``name`` (``"torch"`` or ``"onnx"``), imported on first use."""
@@ -106,3 +115,17 @@ def backend_for(model) -> Backend:
 
 def backend_of(record: LayerRecord) -> Backend:
     return get(record.backend)
+
+
+def can(backend: Backend, capability: str) -> bool:
+    """Whether ``backend`` declares ``capability`` (see each backend's ``CAPABILITIES``)."""
+    return capability in getattr(backend, "CAPABILITIES", ())
+
+
+def rebuild(model, folder: Path, layers: list[dict]):
+    """The factorized model of a result folder: by the backend of ``model``, or ONNX when the folder
+    holds only ``model.onnx`` (an ONNX run's output)."""
+    folder = Path(folder)
+    onnx_only = (folder / "model.onnx").is_file() and not (folder / "model.safetensors").is_file()
+    backend = get("onnx") if onnx_only else backend_for(model)
+    return backend.rebuild(model, folder, layers)

@@ -27,7 +27,8 @@ import torch
 from torch import nn
 from tqdm.auto import tqdm
 
-from .torch_backend import call, factor_parameters, inference, rows, select_output
+from ...errors import InputError
+from .running import call, factor_parameters, inference, predict, rows, select_output
 
 
 def _loss(kind: str, student: torch.Tensor, teacher: torch.Tensor) -> torch.Tensor:
@@ -160,3 +161,16 @@ def recover(
             "train_samples": int(len(train_idx)), "validation_loss_before": start_loss,
             "validation_loss_after": best, "early_stopped": since >= patience,
             "kept": "after" if best_step > 0 else "before"}
+
+
+def fine_tune_factors(original: nn.Module, factorized: nn.Module, inputs, *, metric: str | None, steps: int,
+                      output: str | None = None, lr: float | None = None, seed: int = 0, quiet: bool = False) -> dict:
+    """The backend's recovery operation: :func:`recover` with the loss chosen from the task. KL on
+    logits for classifiers (2-D outputs, a classification metric or none); MSE otherwise."""
+    if not factor_parameters(factorized):
+        raise InputError("--recover: the plan factorized no layer, so there are no factors to fine-tune")
+    first = {k: v[:2] for k, v in inputs.items()} if isinstance(inputs, dict) else inputs[:2]
+    sample = predict(original, first, source="--calibration", output=output)
+    classifier = sample.ndim == 2 and sample.shape[1] > 1 and metric in (None, "top1", "top5", "agreement")
+    return recover(original, factorized, inputs, steps=steps, loss="kl" if classifier else "mse",
+                   output=output, lr=lr, seed=seed, quiet=quiet)
