@@ -352,7 +352,7 @@ def _verbose(args, report: dict) -> None:
 def cmd_compress(args) -> int:
     from pathlib import Path
 
-    from .pipeline import compress
+    from .run import compress
     from . import terminal
     from .sweep import POINT_UNITS, drop_of
 
@@ -433,7 +433,7 @@ def cmd_sweep(args) -> int:
 
 
 def cmd_evaluate(args) -> int:
-    from .pipeline import evaluate
+    from .evaluation import evaluate
     from .store import load_factorized
 
     model, _ = _load_model(args)

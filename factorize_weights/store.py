@@ -15,14 +15,24 @@ from pathlib import Path
 
 from ._version import __version__
 from .allocate import Plan
-from .config import CompressConfig
 from .backends import backend_for
+from .config import CompressConfig
 from .errors import InputError
 from .plan_file import PLAN_FORMAT, PLAN_VERSION, plan_layers, read_plan  # noqa: F401 (read_plan: public)
 from .records import LayerRecord
 from .report import render_markdown
 
 FILES = ("model.safetensors", "plan.json", "report.html", "report.json", "report.md")
+
+
+def input_paths(sources: dict | None, *data) -> tuple:
+    """Files a run reads (model, weights, run file, data): an output folder must not hold them."""
+    sources = sources or {}
+    paths = [sources.get("model"), sources.get("weights"), (sources.get("config_file") or {}).get("path")]
+    if paths[0] and ":" in str(paths[0]) and not str(paths[0]).lower().endswith(".onnx"):
+        paths[0] = str(paths[0]).rpartition(":")[0]
+    paths += [d.source for d in data if d is not None]
+    return tuple(p for p in paths if p and Path(str(p)).exists())
 
 
 def check_out_dir(out: str | Path, force: bool, inputs: tuple = ()) -> None:

@@ -76,9 +76,7 @@ def sweep(model, config: CompressConfig, budgets: list[str], *, heldout=None, ca
     from . import store
 
     if out is not None:
-        from .pipeline import input_paths
-
-        store.check_out_dir(out, force, input_paths(sources, heldout, calibration))
+        store.check_out_dir(out, force, store.input_paths(sources, heldout, calibration))
     if save_models and out is None:
         raise InputError("--save-models needs --out")
     t0 = time.perf_counter()

@@ -146,7 +146,7 @@ def test_factorized_params_match_the_formula():
 
 def test_save_and_rebuild_from_the_original_model(tmp_path):
     from factorize_weights.config import CompressConfig
-    from factorize_weights.pipeline import compress
+    from factorize_weights.run import compress
 
     torch.manual_seed(2)
     model = nn.Sequential(nn.Conv2d(3, 32, 3), nn.ReLU(), nn.Flatten(), nn.Linear(32 * 4 * 4, 64),
@@ -192,7 +192,7 @@ def test_stock_transformer_encoder_layers_compress_save_and_reload(tmp_path):
     # and the saved result rebuilt from a fresh original computes what the run's model computed
     from factorize_weights.config import CompressConfig
     from factorize_weights.data import HeldOut
-    from factorize_weights.pipeline import compress
+    from factorize_weights.run import compress
 
     torch.manual_seed(5)
     model = _Encoder().eval()

@@ -33,6 +33,7 @@ from .running import (  # noqa: F401
 )
 
 FORMAT = "onnx"
+NAME = "ONNX"  # in messages
 RUNTIME = "onnxruntime"
 
 #: What this backend can do beyond the common interface (the resolver refuses from this table).

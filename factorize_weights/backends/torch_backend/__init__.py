@@ -39,6 +39,7 @@ from .running import (  # noqa: F401
 )
 
 FORMAT = "torch"
+NAME = "PyTorch"  # in messages
 RUNTIME = "torch"  # what latency is measured in
 
 #: What this backend can do beyond the common interface (the resolver refuses from this table).

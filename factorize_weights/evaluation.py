@@ -1,0 +1,125 @@
+"""Measuring a model on held-out data: checking that data fits, the metric before and after
+(streamed batch by batch), per-layer output errors, and side-by-side CPU latency."""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING
+
+import numpy as np
+
+from . import latency as latency_mod
+from .backends import backend_for
+from .config import CompressConfig
+from .data import HeldOut
+from .errors import InputError
+from .metrics import MetricAccumulator, MetricResult, check_metric, default_metric
+from .progress import bar
+from .stats import relative_error
+
+if TYPE_CHECKING:
+    from .pipeline import Prepared
+
+#: Memory for one batch's activations: evaluation and calibration batches are cut to fit it
+#: (measured per sample on the first input), so 224x224 images at batch 256 do not take gigabytes.
+ACTIVATION_BYTES = 256 * 2**20
+
+
+def check_fits(model, data: HeldOut, flag: str = "--heldout", output: str | None = None) -> np.ndarray:
+    """Run the first batch of ``data`` through ``model``; refuse data that does not fit it."""
+    first, _ = next(data.batches(batch_size=min(len(data), 8)))
+    try:
+        outputs = backend_for(model).predict(model, first, source=f"{flag} {data.source}", output=output)
+    except InputError:
+        raise
+    except Exception as exc:
+        message = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise InputError(
+            f"{flag} {data.source}: inputs of shape {data.sample_shape} per sample "
+            f"do not fit the model ({type(exc).__name__}: {message[:300]})"
+        ) from exc
+    if not np.all(np.isfinite(outputs)):
+        raise InputError(f"{flag} {data.source}: the original model gives NaN or Inf outputs")
+    return outputs
+
+
+def check_heldout(model, heldout: HeldOut, metric: str | None, output: str | None = None) -> str:
+    """Run the first held-out batch through ``model``; return the metric to use."""
+    outputs = check_fits(model, heldout, "--heldout", output)
+    name = metric or default_metric(heldout.labels, outputs)
+    check_metric(name, heldout.labels, outputs)
+    return name
+
+
+def evaluate(original, factorized, heldout: HeldOut, metric: str | None = None, config: CompressConfig | None = None) -> MetricResult:
+    """The held-out metric of ``original`` (before) and ``factorized`` (after)."""
+    config = config or CompressConfig()
+    name = check_heldout(original, heldout, metric, config.output)
+    backend = backend_for(original)
+    size = batch_size_for(config, backend.measure_positions(original, backend.discover(original), heldout.inputs))
+    triples = ((x, backend.predict(original, x, output=config.output), y) for x, y in heldout.batches(size))
+    return score(name, factorized, triples, -(-len(heldout) // size), config)
+
+
+def batch_size_for(config: CompressConfig, per_sample_bytes: int) -> int:
+    """``config.batch_size``, cut so that one batch's activations fit :data:`ACTIVATION_BYTES`."""
+    return max(1, min(config.batch_size, ACTIVATION_BYTES // max(int(per_sample_bytes), 1)))
+
+
+def score(metric: str, factorized, triples, total: int, config: CompressConfig) -> MetricResult:
+    """Stream ``(inputs, original outputs, labels)`` batches into the metric of ``factorized``."""
+    acc = MetricAccumulator(metric)
+    predict = backend_for(factorized).predict
+    for inputs, reference, labels in bar(triples, config, "evaluate", total, "batch"):
+        acc.update(reference, predict(factorized, inputs, output=config.output), labels)
+    return acc.result()
+
+
+def check_overlap(heldout: HeldOut | None, calibration: HeldOut | None, allow: bool,
+                   flag: str = "--calibration") -> None:
+    if heldout is None or calibration is None or allow:
+        return
+    same = heldout.source == calibration.source or (heldout.sha256 is not None and heldout.sha256 == calibration.sha256)
+    if not same and isinstance(heldout.inputs, np.ndarray) and isinstance(calibration.inputs, np.ndarray):
+        same = heldout.inputs.shape == calibration.inputs.shape and np.array_equal(heldout.inputs, calibration.inputs)
+    if same:
+        raise InputError(
+            f"{flag} {calibration.source} is the same data as --heldout {heldout.source}: the accuracy "
+            "would be measured on what was used to fit or choose" + (" (give --allow-overlap to do it anyway)"
+                                                                     if flag == "--calibration" else "")
+        )
+
+
+def evaluate_prepared(prep: Prepared, factorized) -> MetricResult:
+    """The held-out metric against the original's outputs cached by :func:`prepare`."""
+    batches = prep.heldout.batches(prep.batch_size)
+    triples = ((x, ref, y) for (x, _), (ref, y) in zip(batches, prep.reference))
+    return score(prep.metric_name, factorized, triples, len(prep.reference), prep.config)
+
+
+def layer_output_errors(prep: Prepared, factorized, names: list[str]) -> dict[str, float]:
+    """Relative output error ``||f(x) - g(x)||_F / ||f(x)||_F`` of each factorized layer on the
+    inputs the original layer sees, over the first ``config.error_samples`` held-out samples."""
+    num, den = dict.fromkeys(names, 0.0), dict.fromkeys(names, 0.0)
+
+    def sink(name, exact, approx):
+        exact = np.asarray(exact, dtype=np.float64)
+        num[name] += float(np.sum((exact - np.asarray(approx, dtype=np.float64)) ** 2))
+        den[name] += float(np.sum(exact * exact))
+
+    batches = (x for x, _ in prep.heldout.batches(prep.batch_size, limit=prep.config.error_samples))
+    prep.backend.stream_layer_outputs(prep.model, factorized, names, batches, sink)
+    return {n: relative_error(num[n], den[n]) for n in names}
+
+
+def measure_latency(original, factorized, heldout: HeldOut, config: CompressConfig) -> dict:
+    """Median CPU latency of both models on one batch of ``config.latency_batch`` held-out samples,
+    in the model's own runtime (onnxruntime for ONNX, eager torch for PyTorch)."""
+    backend = backend_for(original)
+    batch = latency_mod.batch_of(heldout.inputs, config.latency_batch)
+    with backend.timing([original, factorized], config.latency_threads):
+        result = latency_mod.compare(
+            backend.timer(original, batch, config.latency_threads),
+            backend.timer(factorized, batch, config.latency_threads),
+            warmup=config.latency_warmup, repeats=config.latency_repeats,
+        )
+    return {"runtime": backend.RUNTIME, "batch": config.latency_batch, "threads": config.latency_threads, **result}
