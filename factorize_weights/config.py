@@ -58,11 +58,11 @@ class CompressConfig:
                       "columns); auto: whitened with --calibration, else svd", group=FACTORS, choices=METHODS)
     svd: str = opt("auto", "exact, randomized, or auto (randomized only where the choosable ranks are well below "
                    "the smaller side)", group=SPECTRA, choices=SVD_METHODS)  # auto: exact below 1024 (speed)
-    seed: int = opt(0, "seed of the randomized SVD", group=SPECTRA, low=0)  # fixed so runs repeat
+    seed: int = opt(0, "seed of the randomized SVD", group=SPECTRA, low=0, metavar="N")  # fixed so runs repeat
     # Halko et al.'s usual p; error within a few % of optimal
-    oversampling: int = opt(10, "randomized SVD oversampling p", group=ADVANCED, low=0)
+    oversampling: int = opt(10, "randomized SVD oversampling p", group=ADVANCED, low=0, metavar="P")
     # q=2 brings slowly decaying spectra to ~1.00x optimal error
-    power_iterations: int = opt(2, "randomized SVD power iterations q", group=ADVANCED, low=0)
+    power_iterations: int = opt(2, "randomized SVD power iterations q", group=ADVANCED, low=0, metavar="Q")
     # singular values shared by both factors (factors.py); "left" gives the same product A @ X, so
     # the same model outputs: Python API only
     split: str = opt("balanced", choices=SPLITS)
@@ -79,12 +79,14 @@ class CompressConfig:
     batch_size: int = opt(256, "largest held-out and calibration batch (cut to fit 256 MiB of activations)",
                           group=EVALUATION, low=1, metavar="N")
     error_samples: int = opt(256, "held-out samples for the per-layer output errors", group=ADVANCED, low=0,
-                             metavar="N")
+                             metavar="N", commands=("compress", "sweep"))
     # edge inference usually serves one request at a time
     latency_batch: int = opt(1, "batch size of the timed runs", group=LATENCY, low=1, metavar="N")
     # one core: the common budget on a shared gateway, and the least noisy
     latency_threads: int = opt(1, "CPU threads", group=LATENCY, low=1, metavar="N")
-    latency_warmup: int = opt(5, "untimed runs first", group=ADVANCED, low=0, metavar="N")  # allocations, caches
+    # allocations, caches
+    latency_warmup: int = opt(5, "untimed runs first", group=ADVANCED, low=0, metavar="N",
+                              commands=("compress", "sweep"))
     latency_repeats: int = opt(30, "timed runs per model (0: off)", group=LATENCY, low=0, metavar="N")
     # refit layers in forward order to the original outputs; None: on for whitened (it won or tied
     # every row of reports/accuracy.md), off otherwise
@@ -94,7 +96,7 @@ class CompressConfig:
     # one per layer is the exact layer-by-layer refit
     sequential_groups: int = opt(64, "most passes of a sequential refit: layers are refitted in N groups in "
                                  "forward order (one group per layer is exact layer by layer)", group=ADVANCED,
-                                 low=1, metavar="N")
+                                 low=1, metavar="N", commands=("compress", "sweep"))
     # how ranks are shared out (allocate.py): "output" measures each layer's effect on the model's
     # output on calibration data (effects.py); "energy-product" keeps the most of the product of the
     # layers' kept energy fractions (no layer is crushed to save a little elsewhere); "error-sum"
@@ -106,7 +108,7 @@ class CompressConfig:
                           "energy; error-sum: least summed layer error; auto: output when it can, else error-sum",
                           group=FACTORS, choices=ALLOCATIONS)
     effect_samples: int = opt(32, "calibration samples the output-effect probes run on", group=ADVANCED, low=1,
-                              metavar="N")
+                              metavar="N", commands=("compress", "sweep"))
     # weight each output row's error by the |gamma|/sqrt(var+eps) of an eval-mode BatchNorm that reads
     # the layer's output. Python API only: its one measurement is a loss (EfficientNet-Lite0 at
     # params=0.7, 50.2% -> 27.8% agreement, equal elsewhere; reports/accuracy_pretrained.md)

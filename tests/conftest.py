@@ -41,7 +41,7 @@ def validate_every_report(monkeypatch):
     from factorize_weights import cli, report, store, sweep
 
     schemas = {name: report.schema(name) for name in ("report", "sweep")}
-    real_write, real_print, real_sweep_write = store.write_run_files, cli._print_json, sweep._write_sweep
+    real_write, real_print, real_sweep_write = store.write_run_files, cli.commands._print_json, sweep._write_sweep
 
     def write_run_files(folder, model, records, plan, rep, *args, **kwargs):
         jsonschema.validate(rep, schemas["report"])
@@ -59,5 +59,5 @@ def validate_every_report(monkeypatch):
         return real_sweep_write(out, doc, *args, **kwargs)
 
     monkeypatch.setattr(store, "write_run_files", write_run_files)
-    monkeypatch.setattr(cli, "_print_json", print_json)
+    monkeypatch.setattr(cli.commands, "_print_json", print_json)
     monkeypatch.setattr(sweep, "_write_sweep", write_sweep)

@@ -190,14 +190,14 @@ def _bad(user, kind):
         save_file(state, str(user / "nan.safetensors"))
         return base + ["--weights", user / "nan.safetensors"], "layer '2': weight has 1 NaN or Inf"
     if kind == "infeasible budget":
-        return ["compress", "--model", model, "--budget", "params=0.001", "--out", user / "out"], \
+        return ["compress", "--model", model, "--factory-weights", "--budget", "params=0.001", "--out", user / "out"], \
             "smallest possible plan"
     if kind == "bad budget":
-        return ["compress", "--model", model, "--budget", "params=-1", "--out", user / "out"], "--budget"
+        return ["compress", "--model", model, "--factory-weights", "--budget", "params=-1", "--out", user / "out"], "--budget"
     if kind == "nonempty out":
         (user / "out").mkdir()
         (user / "out" / "keep.txt").write_text("mine")
-        return base, "folder exists and is not empty (give --force"
+        return base + ["--factory-weights"], "folder exists and is not empty (give --force"
     if kind == "missing budget":
         return ["compress", "--model", model], "give exactly one of --budget and --keep-within"
     if kind == "usage error":
@@ -283,7 +283,7 @@ def test_no_option_or_field_uses_the_old_names(capsys):
             main([command, "--help"])
         texts.append(capsys.readouterr().out)
     texts += [json.dumps(report.schema(n)) for n in ("report", "sweep")]
-    for old in ("damping", "max-drop", "max_drop", "rank-multiple", "rank_multiple"):
+    for old in ("damping", "max-drop", "max_drop", "rank-multiple", "rank_multiple", "fail-over", "fail_over"):
         assert all(old not in t for t in texts), old
 
 

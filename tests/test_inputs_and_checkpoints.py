@@ -218,7 +218,8 @@ def test_damaged_plan_and_a_model_without_layers_are_named(tmp_path, capsys):
     code, _, err = run_cli(capsys, "evaluate", "--demo", "--factorized", tmp_path / "run", "--heldout", demo.HELDOUT)
     _one_line_exit_2(code, err, "plan.json", "lacks the field(s) shape, rank")
     (tmp_path / "flat.py").write_text("from torch import nn\ndef build():\n    return nn.Sequential(nn.ReLU())\n")
-    code, _, err = run_cli(capsys, "compress", "--model", f"{tmp_path}/flat.py:build", "--budget", "params=0.5")
+    code, _, err = run_cli(capsys, "compress", "--model", f"{tmp_path}/flat.py:build", "--factory-weights",
+                           "--budget", "params=0.5")
     _one_line_exit_2(code, err, "flat.py:build", "nothing to factorize")
 
 

@@ -217,7 +217,7 @@ def _bad(tmp_path, kind):
             "the graph has 2 inputs (a, b)"
     if kind == "weights with onnx":
         return ["compress", str(tmp_path / "m.onnx"), "--weights", "w.pt", "--budget", "params=0.5"], \
-            "--weights is for PyTorch models"
+            "--weights is for PyTorch factories"
     raise AssertionError(kind)
 
 

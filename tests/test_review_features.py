@@ -108,23 +108,23 @@ def test_keep_within_finds_a_budget_within_target(tmp_path, capsys):
 
 def test_keep_within_needs_heldout_and_one_budget(capsys, tmp_path):
     (tmp_path / "m.py").write_text("from torch import nn\ndef build():\n    return nn.Sequential(nn.Linear(8, 8))\n")
-    code, _, err = run(capsys, "compress", "--model", f"{tmp_path}/m.py:build", "--keep-within", "1")
+    code, _, err = run(capsys, "compress", "--model", f"{tmp_path}/m.py:build", "--factory-weights", "--keep-within", "1")
     assert code == 2 and "--keep-within needs --heldout" in err
     code, _, err = run(capsys, "compress", "--demo", "--keep-within", "1", "--budget", "params=0.5")
     assert code == 2 and "exactly one of --budget and --keep-within" in err
 
 
-def test_fail_over_gate_exits_3_after_writing_everything(tmp_path, capsys):
+def test_drop_limit_gate_exits_3_after_writing_everything(tmp_path, capsys):
     out = tmp_path / "gate"
-    code, _, err = run(capsys, "compress", "--demo", "--budget", "params=0.05", "--method", "svd", "--fail-over", "1.0",
+    code, _, err = run(capsys, "compress", "--demo", "--budget", "params=0.05", "--method", "svd", "--drop-limit", "1.0",
                        "--out", out, "-q", "--latency-repeats", "0")
     assert code == 3
     lines = err.strip().splitlines()
     # the gate is the last line; params=0.05 without data also earns the aggressive-plan warning
-    assert "gate failed" in lines[-1] and "more than --fail-over 1" in lines[-1]
+    assert "gate failed" in lines[-1] and "more than --drop-limit 1" in lines[-1]
     assert all(": warning: " in line for line in lines[:-1])
     assert (out / "report.json").is_file() and (out / "model.safetensors").is_file()
-    code, _, _ = run(capsys, "compress", "--demo", "--budget", "params=0.5", "--fail-over", "1.0", "-q",
+    code, _, _ = run(capsys, "compress", "--demo", "--budget", "params=0.5", "--drop-limit", "1.0", "-q",
                      "--latency-repeats", "0")
     assert code == 0
 

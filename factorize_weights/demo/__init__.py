@@ -25,6 +25,12 @@ CALIBRATION = HERE / "calibration.npz"
 MODEL_SPEC = "factorize_weights.demo:build_model"
 
 
+def spec(kind: str = "torch") -> tuple[str, str | None]:
+    """(model spec, weights) of the demo: ``"torch"`` the factory and its checkpoint, ``"onnx"`` the
+    exported file (which holds its weights)."""
+    return (str(ONNX), None) if kind == "onnx" else (MODEL_SPEC, str(WEIGHTS))
+
+
 def build_model() -> nn.Module:
     """The bay-digit reader: input (N, 1, 8, 8) in [0, 1], output (N, 10) logits."""
     return nn.Sequential(

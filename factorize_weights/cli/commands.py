@@ -1,0 +1,212 @@
+"""What each command does with its parsed options: load the model and the data, call the library,
+print the results (an aligned table, a summary) or the JSON report."""
+
+from __future__ import annotations
+
+import json
+import sys
+
+from ..config import CompressConfig, cli_fields
+from ..errors import InputError
+from .options import PROG
+
+
+def load_model(args):
+    """The model and its provenance from ``MODEL`` / ``--model`` / ``--demo`` (backends/opening.py)."""
+    from ..backends.opening import open_model
+
+    if args.model_path and args.model:
+        raise InputError(f"give the model once: positional {args.model_path!r} and --model {args.model!r}")
+    spec = args.model_path or args.model
+    weights, factory_weights = args.weights, args.factory_weights
+    if args.demo:
+        if spec or args.weights or factory_weights:
+            raise InputError("--demo cannot be combined with a model, --weights or --factory-weights")
+        from .. import demo
+
+        spec, weights = demo.spec(args.demo)
+        if getattr(args, "heldout", None) is None and hasattr(args, "heldout"):
+            args.heldout = str(demo.HELDOUT)
+    if not spec:
+        raise InputError("no model given: MODEL.onnx, --model FILE.py:FACTORY (with --weights), or --demo")
+    model, sources = open_model(spec, weights=weights, weights_key=args.weights_key,
+                                factory_weights=factory_weights, warn=_warn)
+    return model, _run_sources(args, sources)
+
+
+def _run_sources(args, sources: dict) -> dict:
+    """Provenance: the run file (if any) and the command line."""
+    if getattr(args, "config_file", None):
+        sources["config_file"] = {k: args.config_file[k] for k in ("path", "sha256")}
+    sources["argv"] = list(getattr(args, "argv", sys.argv[1:]))
+    return sources
+
+
+def _heldout(args):
+    from ..data import load_heldout
+
+    return load_heldout(args.heldout) if getattr(args, "heldout", None) else None
+
+
+def _config(args, command: str, **extra) -> CompressConfig:
+    """The configuration from the parsed options: every field ``command`` offers, by its metadata."""
+    values = {f.name: getattr(args, f.name) for f in cli_fields(command)}
+    values.update(quiet=args.quiet, **extra)
+    return CompressConfig(**values)
+
+
+def _print_json(obj) -> None:
+    print(json.dumps(obj, indent=2, allow_nan=False))
+
+
+def cmd_inspect(args) -> int:
+    from ..pipeline import inspect_model
+    from ..report import render_inspect
+
+    model, _ = load_model(args)
+    report = inspect_model(model, _config(args, "inspect"))
+    if args.json:
+        _print_json(report)
+    else:
+        print(render_inspect(report))
+    return 0
+
+
+def _calibration(args):
+    from ..data import load_heldout
+
+    return load_heldout(args.calibration, flag="--calibration") if args.calibration else None
+
+
+_WARNINGS: list[str] = []
+
+
+def _warn(text: str) -> None:
+    """Queue a warning: printed when the command finishes, dropped when it fails (so a failure is
+    always exactly one line)."""
+    _WARNINGS.append(text)
+
+
+def _flush_warnings() -> None:
+    for text in _WARNINGS:
+        print(f"{PROG}: {_colour('warning', '33')}: {text}", file=sys.stderr)
+    _WARNINGS.clear()
+
+
+def _colour(text: str, code: str) -> str:
+    """ANSI colour only on a terminal, and never when NO_COLOR is set (no-color.org)."""
+    import os
+
+    if sys.stderr.isatty() and not os.environ.get("NO_COLOR"):
+        return f"\033[{code}m{text}\033[0m"
+    return text
+
+
+def _verbose(args, report: dict) -> None:
+    if getattr(args, "verbose", False):
+        stages = ", ".join(f"{k} {v:.2f} s" for k, v in report.get("wall_seconds", {}).items())
+        print(f"{PROG}: stages: {stages}", file=sys.stderr)
+
+
+def cmd_compress(args) -> int:
+    from pathlib import Path
+
+    from ..run import compress
+    from .. import terminal
+    from ..sweep import POINT_UNITS, drop_of
+
+    if args.budget is not None and not args.budget.strip():
+        raise InputError("--budget '': empty; give KIND=VALUE, e.g. --budget params=0.5")
+    if (args.budget is None) == (args.keep_within is None):
+        raise InputError("give exactly one of --budget and --keep-within")
+    import math
+
+    for flag, value in (("--keep-within", args.keep_within), ("--drop-limit", args.drop_limit)):
+        if value is not None and not (math.isfinite(value) and value >= 0):
+            raise InputError(f"{flag} must be a finite number >= 0 (in the metric's units); got {value}")
+    if args.drop_limit is not None and not args.heldout and not args.demo:
+        raise InputError("--drop-limit needs --heldout (the drop is measured on it)")
+    config = _config(args, "compress", budget=args.budget or "params=1")
+    model, sources = load_model(args)
+    heldout, calibration = _heldout(args), _calibration(args)
+    from ..data import load_heldout
+
+    selection = load_heldout(args.selection, flag="--selection") if args.selection else None
+    result = compress(model, config, heldout=heldout, out=args.out, force=args.force, sources=sources,
+                      calibration=calibration, keep_within=args.keep_within, selection=selection)
+    for warning in (result.report.get("calibration") or {}).get("warnings", []) + result.report.get("warnings", []):
+        _warn(warning)
+    _verbose(args, result.report)
+    if args.json:
+        _print_json(result.report)
+    else:
+        _flush_warnings()  # warnings first, one line each, then the results
+        head, rows = terminal.layer_rows(result.report)
+        print("\n".join(terminal.table(head, rows, optional=terminal.OPTIONAL_LAYER_COLUMNS)))
+        if result.report["skipped"]:
+            print(f"skipped {len(result.report['skipped'])} layer(s):")
+            for s in result.report["skipped"]:
+                print(f"  {s['name']}: {s['reason']}")
+        if "search" in result.report:
+            sr = result.report["search"]
+            tried = ", ".join(f"{t['budget']} drop {t['drop']:.4g}" for t in sr["tried"])
+            chooser = ("the selection set chose it" if sr.get("selection") else
+                       "the held-out set chose it, so its figure below is optimistic (give --selection)")
+            print(f"search: {sr['chosen']} is the smallest budget within a drop of {sr['keep_within']:g} "
+                  f"{sr['unit']} ({sr['evaluations']} evaluations: {tried}); {chooser}")
+        files = sorted(p.name for p in Path(args.out).iterdir()) if args.out else None
+        print("\n".join(terminal.summary(result.report, args.out, files)))
+    if args.drop_limit is not None and result.metric is not None:
+        drop = drop_of(result.metric)
+        if drop > args.drop_limit:
+            print(f"{PROG}: {_colour('gate failed', '31')}: held-out {result.metric.name} dropped {drop:.4g} "
+                  f"{POINT_UNITS[result.metric.name]}, more than --drop-limit {args.drop_limit:g} "
+                  f"(by {drop - args.drop_limit:.4g})", file=sys.stderr)
+            return 3
+    return 0
+
+
+def cmd_sweep(args) -> int:
+    from ..sweep import parse_budget_list, sweep
+
+    if not args.budgets:
+        raise InputError("--budgets is required, e.g. --budgets params=0.8,0.6,0.4,0.2")
+    budgets = parse_budget_list(args.budgets)
+    config = _config(args, "sweep", budget=budgets[0])
+    model, sources = load_model(args)
+    doc = sweep(model, config, budgets, heldout=_heldout(args), calibration=_calibration(args), out=args.out,
+                force=args.force, save_models=args.save_models, sources=sources)
+    if args.json:
+        _print_json(doc)
+        return 0
+    from ..sweep import render_markdown
+
+    print(render_markdown(doc), end="")
+    if args.out:
+        print(f"wrote {args.out}/ (sweep.json, sweep.csv, sweep.md, sweep.html"
+              f"{', one folder per budget' if args.save_models else ''})")
+    return 0
+
+
+def cmd_evaluate(args) -> int:
+    from ..evaluation import evaluate
+    from ..store import load_factorized
+
+    model, _ = load_model(args)
+    if not args.heldout:
+        raise InputError("--heldout is required for evaluate")
+    heldout = _heldout(args)
+    factorized = load_factorized(model, args.factorized)
+    result = evaluate(model, factorized, heldout, args.metric, CompressConfig(
+        quiet=args.quiet, batch_size=args.batch_size, output=args.output))
+    if args.json:
+        _print_json({"metric": result.to_dict(), "factorized": args.factorized, "heldout": heldout.source})
+    else:
+        from .. import terminal
+
+        change = terminal.fmt_change(result.name, result.before, result.after, result.higher_is_better)
+        print(f"held-out {result.name} {terminal.fmt_value(result.name, result.before)} -> "
+              f"{terminal.fmt_value(result.name, result.after)} ({change}; {result.samples} samples)")
+    return 0
+
+
