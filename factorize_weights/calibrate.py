@@ -20,7 +20,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .backends import backend_for, can
+from .backends import backend_for
 from .config import CompressConfig
 from .data import HeldOut
 from .errors import InputError
@@ -262,10 +262,8 @@ def sequential_refit(model, records: list[LayerRecord], ranks: dict, cal: Calibr
 
 
 def recover(original, factorized, records, cal: Calibration, config: CompressConfig, metric: str | None) -> dict:
-    """Fine-tune the factor pairs on the calibration inputs (a backend capability)."""
-    backend = backend_for(original)
-    if not can(backend, "recovery"):
-        raise InputError(f"--recover fine-tunes factor pairs, which a {backend.FORMAT} model does not have as trainable "
-                         "parameters (use a PyTorch model)")
-    return backend.recover(original, factorized, cal.data.inputs, metric=metric, steps=config.recover,
-                           output=config.output, lr=config.recover_lr, seed=config.seed, quiet=config.quiet)
+    """Fine-tune the factor pairs on the calibration inputs (a backend capability; the resolver
+    refused the run before any work if the backend lacks it)."""
+    return backend_for(original).recover(original, factorized, cal.data.inputs, metric=metric, steps=config.recover,
+                                         output=config.output, lr=config.recover_lr, seed=config.seed,
+                                         quiet=config.quiet)

@@ -33,13 +33,13 @@ SPECTRA, FACTORS, CALIBRATION, EVALUATION, LATENCY, ADVANCED = _G
 
 
 def opt(default, help: str = "", *, group: str | None = None, choices: tuple | None = None, low=None, high=None,
-        open_low: bool = False, open_high: bool = False, metavar: str | None = None, commands: tuple | None = None, cli: bool = True,
-        flag: str | None = None):
+        open_low: bool = False, open_high: bool = False, metavar: str | None = None, commands: tuple | None = None,
+        cli: bool = True, flag: str | None = None):
     """A configuration field with its metadata. ``low``/``high`` bound numbers (excluded when
     ``open_low``/``open_high``); ``commands`` narrows the group's commands; ``flag`` overrides the option
     name derived from the field name (``rank_step`` -> ``--rank-step``)."""
-    meta = {"help": help, "group": group, "choices": choices, "low": low, "high": high, "open_low": open_low, "open_high": open_high,
-            "metavar": metavar, "commands": commands, "cli": cli and group is not None, "flag": flag}
+    meta = {"help": help, "group": group, "choices": choices, "low": low, "high": high, "open_low": open_low,
+            "open_high": open_high, "metavar": metavar, "commands": commands, "cli": cli and group is not None, "flag": flag}
     if isinstance(default, tuple):
         return dataclasses.field(default_factory=lambda: default, metadata=meta)
     return dataclasses.field(default=default, metadata=meta)

@@ -3,8 +3,6 @@
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING
-
 import numpy as np
 
 from . import latency as latency_mod
@@ -15,9 +13,6 @@ from .errors import InputError
 from .metrics import MetricAccumulator, MetricResult, check_metric, default_metric
 from .progress import bar
 from .stats import relative_error
-
-if TYPE_CHECKING:
-    from .pipeline import Prepared
 
 #: Memory for one batch's activations: evaluation and calibration batches are cut to fit it
 #: (measured per sample on the first input), so 224x224 images at batch 256 do not take gigabytes.
@@ -50,7 +45,8 @@ def check_heldout(model, heldout: HeldOut, metric: str | None, output: str | Non
     return name
 
 
-def evaluate(original, factorized, heldout: HeldOut, metric: str | None = None, config: CompressConfig | None = None) -> MetricResult:
+def evaluate(original, factorized, heldout: HeldOut, metric: str | None = None,
+             config: CompressConfig | None = None) -> MetricResult:
     """The held-out metric of ``original`` (before) and ``factorized`` (after)."""
     config = config or CompressConfig()
     name = check_heldout(original, heldout, metric, config.output)
@@ -89,14 +85,14 @@ def check_overlap(heldout: HeldOut | None, calibration: HeldOut | None, allow: b
         )
 
 
-def evaluate_prepared(prep: Prepared, factorized) -> MetricResult:
+def evaluate_prepared(prep, factorized) -> MetricResult:
     """The held-out metric against the original's outputs cached by :func:`prepare`."""
     batches = prep.heldout.batches(prep.batch_size)
     triples = ((x, ref, y) for (x, _), (ref, y) in zip(batches, prep.reference))
     return score(prep.metric_name, factorized, triples, len(prep.reference), prep.config)
 
 
-def layer_output_errors(prep: Prepared, factorized, names: list[str]) -> dict[str, float]:
+def layer_output_errors(prep, factorized, names: list[str]) -> dict[str, float]:
     """Relative output error ``||f(x) - g(x)||_F / ||f(x)||_F`` of each factorized layer on the
     inputs the original layer sees, over the first ``config.error_samples`` held-out samples."""
     num, den = dict.fromkeys(names, 0.0), dict.fromkeys(names, 0.0)

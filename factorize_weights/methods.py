@@ -147,7 +147,8 @@ class Whitened:
         if matrix.shape[0] <= matrix.shape[1]:
             dec = self.decompose_left(name, matrix, ridge(moments, alpha, prior=prior, base=self.ridge), dtype=dtype)
         else:
-            dec = self.decompose_whitened(name, matrix, whitening(ridge(moments, alpha, prior=prior, base=self.ridge)), dtype=dtype)
+            s = whitening(ridge(moments, alpha, prior=prior, base=self.ridge))
+            dec = self.decompose_whitened(name, matrix, s, dtype=dtype)
         dec.extra["whitening"]["ridge"] = alpha
         if prior is not None and alpha > self.ridge:
             dec.extra["whitening"]["ridge_toward"] = "input statistics"

@@ -42,7 +42,8 @@ def check_metric(name: str, labels: np.ndarray | None, outputs: np.ndarray) -> N
         raise InputError(f"--metric {name}: the held-out set has no 'labels' array")
     if name in ("top1", "top5"):
         if labels.ndim != 1 or labels.dtype.kind not in "iub":
-            raise InputError(f"--metric {name}: 'labels' must be integer class ids of shape (N,); got {labels.dtype} {labels.shape}")
+            raise InputError(f"--metric {name}: 'labels' must be integer class ids of shape (N,); "
+                             f"got {labels.dtype} {labels.shape}")
         if outputs.ndim != 2:
             raise InputError(f"--metric {name}: the model output must be (N, classes); got shape {outputs.shape}")
         k = 5 if name == "top5" else 1

@@ -214,7 +214,8 @@ def render_report_html(report: dict, spectra: dict) -> str:
         ["parameters (selected layers)", f"{fmt_int(t['params_before'])} → {fmt_int(t['params_after'])} "
                                          f"({100 * t['params_ratio']:.1f}%)"],
         ["parameters (whole model)", f"{fmt_int(t['model_params_before'])} → {fmt_int(t['model_params_after'])}"],
-        ["size (float32 weights)", f"{t['model_params_before'] * 4 / 2**20:.2f} MiB → {t['model_params_after'] * 4 / 2**20:.2f} MiB"],
+        ["size (float32 weights)",
+         f"{t['model_params_before'] * 4 / 2**20:.2f} MiB → {t['model_params_after'] * 4 / 2**20:.2f} MiB"],
     ]
     if "flops_before" in t:
         rows.append(["multiply-adds per sample", f"{fmt_int(t['flops_before'])} → {fmt_int(t['flops_after'])} "
@@ -222,7 +223,9 @@ def render_report_html(report: dict, spectra: dict) -> str:
     if m:
         worse = m["delta"] < 0 if m["higher_is_better"] else m["delta"] > 0
         rows.append([f"held-out {esc(m['name'])}", f"{fmt_metric(m['name'], m['before'])} → {fmt_metric(m['name'], m['after'])} "
-                     f"<span class=\"{'bad' if worse else 'good'}\">({esc(fmt_change(m['name'], m['before'], m['after'], m['higher_is_better']))})</span> on {m['samples']} samples"])
+                     f"<span class=\"{'bad' if worse else 'good'}\">"
+                     f"({esc(fmt_change(m['name'], m['before'], m['after'], m['higher_is_better']))})</span> "
+                     f"on {m['samples']} samples"])
     lat = report.get("latency")
     if lat:
         rows.append(["CPU latency", f"{lat['before_ms']:.3f} → {lat['after_ms']:.3f} ms (×{lat['speedup']:.2f}; "
@@ -279,7 +282,8 @@ def render_report_html(report: dict, spectra: dict) -> str:
     cal = report.get("calibration")
     if cal:
         body += ["<section><h2>Calibration</h2>", f"<p>{cal['samples']} samples from <code>{esc(cal['source'])}</code>; "
-                 f"Gram matrices {cal['gram_bytes'] / 2**20:.1f} MiB; peak process memory {cal['peak_rss_bytes'] / 2**20:.0f} MiB.</p>"]
+                 f"Gram matrices {cal['gram_bytes'] / 2**20:.1f} MiB; "
+                 f"peak process memory {cal['peak_rss_bytes'] / 2**20:.0f} MiB.</p>"]
         body += [f"<p class=\"bad\">warning: {esc(w)}</p>" for w in cal["warnings"]] + ["</section>"]
     body.append(f"<p><small>factorize-weights {esc(report['tool_version'])}, {esc(report['created'])}</small></p>")
     return _page("Factorization report", body)
@@ -342,14 +346,17 @@ def render_sweep_html(sweep: dict) -> str:
             f"spectra and calibration computed once ({sweep['wall_seconds']['prepare']:.2f} s), then "
             f"{sweep['wall_seconds']['points']:.2f} s for all points.</p>"]
     if points and points[0].get("metric"):
-        body.append(f"<figure class=\"chart\">{sweep_figure(points, 'params_ratio_pct', 'parameters kept (% of selected layers)', baseline_x=100.0)}"
+        chart = sweep_figure(points, 'params_ratio_pct', 'parameters kept (% of selected layers)', baseline_x=100.0)
+        body.append(f"<figure class=\"chart\">{chart}"
                     "<figcaption>Held-out metric against parameters kept; grey diamond and dashed line: the original "
                     "model.</figcaption></figure>")
         if all(p.get("latency") for p in points):
             for p in points:
                 p["_after_ms"] = p["latency"]["after_ms"]
             base_ms = points[0]["latency"]["before_ms"]
-            body.append(f"<figure class=\"chart\">{sweep_figure(points, '_after_ms', 'measured median latency (ms)', line=False, baseline_x=base_ms, spread=True)}"
+            chart = sweep_figure(points, '_after_ms', 'measured median latency (ms)', line=False, baseline_x=base_ms,
+                                 spread=True)
+            body.append(f"<figure class=\"chart\">{chart}"
                         "<figcaption>Held-out metric against measured CPU latency (median; bars: 10th to 90th "
                         "percentile); grey diamond: the original model.</figcaption></figure>")
             for p in points:
@@ -357,7 +364,8 @@ def render_sweep_html(sweep: dict) -> str:
     name = points[0]["metric"]["name"] if points and points[0].get("metric") else "metric"
     head = ["budget", "params kept", "parameters after", "layers factorized", f"held-out {name}", f"change in {name}",
             "median ms [p10-p90]"]
-    rows = _sweep_baseline(points) + [[f"<code>{esc(p['budget'])}</code>", f"{p['params_ratio_pct']:.1f}%", fmt_int(p["params_after"]),
+    rows = _sweep_baseline(points) + [[f"<code>{esc(p['budget'])}</code>", f"{p['params_ratio_pct']:.1f}%",
+                                       fmt_int(p["params_after"]),
              str(p["layers_factorized"]), "" if not p.get("metric") else fmt_metric(p["metric"]["name"], p["metric"]["after"]),
              "" if not p.get("metric") else esc(fmt_change(p["metric"]["name"], p["metric"]["before"], p["metric"]["after"],
                                                   p["metric"]["higher_is_better"])),

@@ -21,7 +21,7 @@ class Moments:
     --------
     >>> acc = Moments(3)
     >>> acc.add(np.ones((4, 3)))
-    >>> acc.gram[0, 0], acc.rows
+    >>> float(acc.gram[0, 0]), acc.rows
     (4.0, 4)
     """
 

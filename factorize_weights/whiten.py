@@ -21,7 +21,7 @@ import numpy as np
 from .factors import split_factors
 from scipy.linalg import solve_triangular
 
-from .spectra import Spectrum, flip_signs, gram_svd
+from .spectra import Spectrum, gram_svd
 
 #: Relative eigenvalue floor of the fallback: eigenvalues below FLOOR x the largest are
 #: raised to it. Small enough not to change a well-conditioned problem, large enough that S^{-1}

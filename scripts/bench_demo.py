@@ -87,7 +87,8 @@ def main() -> None:
         f"1 thread. Spectra of all layers: {t_spectra:.2f} s; one full `compress` at params=0.3 with "
         f"evaluation: {t_compress:.2f} s.",
         "",
-        "Layer ranks are listed in model order: " + ", ".join(f"`{r.name}` {r.matrix_shape[0]}x{r.matrix_shape[1]}" for r in chosen) + ".",
+        "Layer ranks are listed in model order: "
+        + ", ".join(f"`{r.name}` {r.matrix_shape[0]}x{r.matrix_shape[1]}" for r in chosen) + ".",
         "",
         "| budget | plan | params kept | top-1 before | top-1 after | delta (points) | ranks |",
         "|---|---|---:|---:|---:|---:|---|",

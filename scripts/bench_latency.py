@@ -61,7 +61,8 @@ def main() -> None:
     args = parser.parse_args()
     models = {
         "demo CNN (489k params)": (fw.build_model(demo.MODEL_SPEC, demo.WEIGHTS), np.load(demo.HELDOUT)["inputs"]),
-        "FFN stack 6 x (384-1536-384) (7.1M params)": (ffn_stack(), np.random.default_rng(0).standard_normal((64, 384)).astype(np.float32)),
+        "FFN stack 6 x (384-1536-384) (7.1M params)": (
+            ffn_stack(), np.random.default_rng(0).standard_normal((64, 384)).astype(np.float32)),
     }
     rows = []
     tmp = Path(tempfile.mkdtemp())

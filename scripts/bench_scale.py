@@ -187,7 +187,8 @@ def write_report(rows: dict, args) -> None:
             f"| {r['calibrated']['seconds'] / r['calibrated_floor']['seconds']:.2f} | {r['calibrated']['passes']} "
             f"| {r['sweep']['seconds']:.1f} | {r['sweep']['seconds'] / r['plain']['seconds']:.2f} "
             f"| {r['plain']['peak_rss'] / gib:.2f} GiB | {(2 * model_bytes + gib) / gib:.2f} GiB "
-            f"| {r['calibrated']['peak_rss'] / gib:.2f} GiB | {(2 * model_bytes + gib + r['calibrated']['gram_bytes']) / gib:.2f} GiB "
+            f"| {r['calibrated']['peak_rss'] / gib:.2f} GiB "
+            f"| {(2 * model_bytes + gib + r['calibrated']['gram_bytes']) / gib:.2f} GiB "
             f"| {r['baseline']['peak_rss'] / gib:.2f} GiB |")
     sizes = list(rows)
     if len(sizes) > 1:

@@ -292,7 +292,6 @@ def test_int8_on_a_torch_model_needs_export(tmp_path, capsys):
 
 def test_products_of_two_activations_are_not_listed():
     # attention scores Q K^T: neither operand is a weight, so the node is no layer at all
-    import onnx
     from onnx import TensorProto, helper, numpy_helper
 
     w = numpy_helper.from_array(np.ones((4, 4), np.float32), "W")

@@ -7,6 +7,7 @@ from __future__ import annotations
 import argparse
 import dataclasses
 
+from .. import demo
 from .._version import __version__
 from ..config import ADVANCED, GROUPS, CompressConfig, cli_fields, flag_of
 
@@ -103,7 +104,7 @@ def _model_options(p: argparse.ArgumentParser) -> None:
                    help="the key of a .pt/.pth checkpoint that holds the tensors (default: found, with a notice)")
     g.add_argument("--factory-weights", action="store_true",
                    help="use the weights the factory itself creates or loads (instead of --weights)")
-    g.add_argument("--demo", nargs="?", const="torch", choices=("torch", "onnx"),
+    g.add_argument("--demo", nargs="?", const="torch", choices=tuple(demo.VARIANTS),
                    help="use the embedded demo model (PyTorch, or its ONNX export) and its held-out set")
     p.add_argument("--debug", action="store_true", help="show tracebacks")
     p.add_argument("-q", "--quiet", action="store_true", help="no progress bars")

@@ -15,8 +15,6 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from torch import nn
-
 HERE = Path(__file__).resolve().parent
 WEIGHTS = HERE / "bay_digits.safetensors"
 ONNX = HERE / "bay_digits.onnx"  # the same network exported to ONNX (input "image", output "logits")
@@ -25,14 +23,20 @@ CALIBRATION = HERE / "calibration.npz"
 MODEL_SPEC = "factorize_weights.demo:build_model"
 
 
-def spec(kind: str = "torch") -> tuple[str, str | None]:
-    """(model spec, weights) of the demo: ``"torch"`` the factory and its checkpoint, ``"onnx"`` the
-    exported file (which holds its weights)."""
-    return (str(ONNX), None) if kind == "onnx" else (MODEL_SPEC, str(WEIGHTS))
+#: ``--demo`` choices: (model spec, weights): the factory and its checkpoint, or the exported file
+#: (which holds its weights)
+VARIANTS = {"torch": (MODEL_SPEC, str(WEIGHTS)), "onnx": (str(ONNX), None)}
 
 
-def build_model() -> nn.Module:
-    """The bay-digit reader: input (N, 1, 8, 8) in [0, 1], output (N, 10) logits."""
+def spec(variant: str = "torch") -> tuple[str, str | None]:
+    """(model spec, weights) of the demo variant (a key of :data:`VARIANTS`)."""
+    return VARIANTS[variant]
+
+
+def build_model():
+    """The bay-digit reader (an ``nn.Module``): input (N, 1, 8, 8) in [0, 1], output (N, 10) logits."""
+    from torch import nn  # imported here, so the CLI can list the demo variants without torch
+
     return nn.Sequential(
         nn.Conv2d(1, 32, 3, padding=1),  # (N, 32, 8, 8)
         nn.ReLU(),

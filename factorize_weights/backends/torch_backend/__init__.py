@@ -17,8 +17,8 @@ concern per file:
 from __future__ import annotations
 
 from .layers import (  # noqa: F401
-    OVERRIDE_MISMATCH, OVERRIDE_REASON, FactorPair, count_params, discover, load_saved_weights, rebuild, rewrite,
-    save_weights, skeleton, weight_matrix,
+    OVERRIDE_MISMATCH, OVERRIDE_REASON, FactorPair, count_params, discover, load_saved_weights, normalize, rebuild,
+    rewrite, save_weights, skeleton, weight_matrix,
 )
 from .loading import (  # noqa: F401
     NESTED_KEYS, CheckpointNotice, ShardedCheckpoint, build_model, load_factory, load_pretrained, load_weights,
@@ -34,7 +34,7 @@ from .probes import (  # noqa: F401
 )
 from .recovery import fine_tune_factors as recover  # noqa: F401
 from .running import (  # noqa: F401
-    call, check, export_onnx, factor_parameters, first_rows, inference, normalize, predict, read_factors, rows,
+    call, check, export_onnx, factor_parameters, first_rows, inference, predict, read_factors, rows,
     save_model, select_output, timer, timing, to_tensor,
 )
 

@@ -311,12 +311,18 @@ def load_saved_weights(model: nn.Module, path: str | Path) -> None:
 
 
 
+def normalize(model: nn.Module) -> nn.Module:
+    """``nn.MultiheadAttention`` modules become :class:`~.attention.SplitAttention` (same
+    function, four ``nn.Linear`` projections) in a copy; a model without any is returned as is."""
+    from .attention import split_attention
+
+    return split_attention(model)
+
+
 def rebuild(model: nn.Module, folder: Path, layers: list[dict]) -> nn.Module:
     """The factorized model a result folder holds, from the original ``model`` (not modified) and
     the validated ``plan.json`` entries: the same conversion compress made (attention
     projections), factor pairs of the planned ranks, then ``model.safetensors`` loaded strictly."""
-    from .running import normalize
-
     weights = folder / "model.safetensors"
     if not weights.is_file():
         raise InputError(f"{folder}: no model.safetensors")

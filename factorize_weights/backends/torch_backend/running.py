@@ -127,12 +127,6 @@ def _check_names(model: nn.Module, inputs: dict, source: str) -> None:
                          f"forward({', '.join(params)}): name a single input 'inputs', or several after forward's parameters")
 
 
-def normalize(model: nn.Module) -> nn.Module:
-    """``nn.MultiheadAttention`` modules become :class:`~.attention.SplitAttention` (same
-    function, four ``nn.Linear`` projections) in a copy; a model without any is returned as is."""
-    from .attention import split_attention
-
-    return split_attention(model)
 
 
 @contextlib.contextmanager
