@@ -251,7 +251,89 @@ CASES = [
     ("out parent missing", lambda w: swap(compress(w), "--out", w / "no" / "such" / "out"), 2, ["--out", "does not exist"]),
     ("out holds an input", lambda w: swap(compress(w, "--force"), "--out", w), 2, ["--out", "holds"]),
     ("evaluate not a result", lambda w: ["evaluate", "--demo", "--factorized", w / "full"], 2, ["full", "no plan.json"]),
+    # resolver rules not met by a row above (resolve.RULES; see RULE_CASES below)
+    ("recover without data", lambda w: compress(w, "--recover", "5"), 2, ["--recover needs --calibration"]),
+    ("sequential with plain svd", lambda w: compress(w, "--calibration", w / "cal.npz", "--sequential", "--method", "svd"),
+     2, ["--sequential refits whitened factors", "--method svd"]),
+    ("export without data", lambda w: compress(w, "--export-onnx"), 2, ["--export-onnx needs --heldout"]),
+    ("export without out", lambda w: without(compress(w, "--export-onnx", "--heldout", w / "held.npz"), "--out"), 2,
+     ["--export-onnx needs --out"]),
+    ("int8 without out", lambda w: without(compress(w, "--int8", "--heldout", w / "held.npz"), "--out"), 2,
+     ["--int8 needs --out"]),
+    ("int8 of a pytorch model", lambda w: compress(w, "--int8", "--heldout", w / "held.npz"), 2,
+     ["--int8 quantizes ONNX models", "--export-onnx"]),
+    ("keep-within without data", lambda w: without(compress(w, "--keep-within", "1"), "--budget"), 2,
+     ["--keep-within needs --heldout"]),
 ]
+
+
+def _bn_weights_on_onnx(w):
+    """bn_weights is a Python API setting only (docs/decisions.md): this rule is met there."""
+    from factorize_weights import CompressConfig, compress as api_compress
+    from factorize_weights.backends import onnx_backend
+    from factorize_weights.data import load_heldout
+
+    api_compress(onnx_backend.load(demo.ONNX), CompressConfig(bn_weights=True, quiet=True),
+                 heldout=load_heldout(str(demo.HELDOUT)))
+
+
+#: Every rule of the resolver (resolve.RULES) and the refusal row that meets it: a CASES id, or a
+#: callable for a rule only the Python API can reach. test_every_rule_has_a_row fails on a new rule
+#: without one, test_the_row_meets_its_rule when the row is refused by another rule.
+RULE_CASES = {
+    "whitened-needs-calibration": "whitened without data",
+    "sequential-needs-calibration": "sequential without data",
+    "recover-needs-calibration": "recover without data",
+    "sequential-needs-whitened": "sequential with plain svd",
+    "recover-needs-capability": "onnx recover",
+    "bn-weights-needs-capability": _bn_weights_on_onnx,
+    "bn-inputs-needs-capability": "onnx bn inputs",
+    "bn-needs-data": "bn inputs without data",
+    "bn-inputs-per-layer-budget": "bn inputs with an error budget",
+    "flops-needs-heldout": "flops without data",
+    "output-allocation-needs-calibration": "output allocation without data",
+    "output-allocation-needs-capability": "onnx output allocation",
+    "export-needs-capability": "onnx export-onnx",
+    "export-needs-heldout": "export without data",
+    "export-needs-out": "export without out",
+    "int8-needs-heldout": "int8 without data",
+    "int8-needs-out": "int8 without out",
+    "int8-needs-onnx": "int8 of a pytorch model",
+    "keep-within-needs-heldout": "keep-within without data",
+    "selection-needs-keep-within": "selection without search",
+}
+
+
+def test_every_rule_has_a_row():
+    from factorize_weights import resolve
+
+    assert set(RULE_CASES) == {r.id for r in resolve.RULES}
+    names = {c[0] for c in CASES}
+    assert all(callable(v) or v in names for v in RULE_CASES.values())
+
+
+@pytest.mark.parametrize("rule_id", sorted(RULE_CASES))
+def test_the_row_meets_its_rule(rule_id, w, capsys, monkeypatch):
+    # wrap every rule so the one that refuses is recorded; the row must be refused by its own rule
+    from factorize_weights import resolve
+    from factorize_weights.errors import InputError
+
+    fired = []
+    wrapped = tuple(resolve.Rule(r.id, lambda c, f, r=r: bool(r.refused(c, f)) and not fired.append(r.id), r.message)
+                    for r in resolve.RULES)
+    monkeypatch.setattr(resolve, "RULES", wrapped)
+    row = RULE_CASES[rule_id]
+    if callable(row):
+        with pytest.raises(InputError):
+            row(w)
+    else:
+        build = next(c[1] for c in CASES if c[0] == row)
+        try:
+            code, _, _ = run_cli(capsys, *[str(a) for a in build(w)])
+        except SystemExit as stop:
+            code = stop.code
+        assert code == 2
+    assert fired[:1] == [rule_id]
 
 
 @pytest.mark.parametrize("case", CASES, ids=[c[0] for c in CASES])

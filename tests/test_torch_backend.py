@@ -226,14 +226,14 @@ class _Plain(nn.Linear):
     pass
 
 
-def test_split_attention_computes_what_multihead_attention_computes():
+def test_unpack_attention_computes_what_multihead_attention_computes():
     # oracle: torch's own nn.MultiheadAttention on the same inputs, masks and options
-    from factorize_weights.backends.torch_backend.attention import SplitAttention
+    from factorize_weights.backends.torch_backend.attention import UnpackedAttention
 
     torch.manual_seed(9)
     for batch_first, kdim in ((True, None), (False, 12)):
         mha = nn.MultiheadAttention(16, 4, batch_first=batch_first, kdim=kdim, vdim=kdim).eval()
-        split = SplitAttention(mha).eval()
+        split = UnpackedAttention(mha).eval()
         q, k = torch.randn(3, 5, 16), torch.randn(3, 7, kdim or 16)
         if not batch_first:
             q, k = q.transpose(0, 1), k.transpose(0, 1)

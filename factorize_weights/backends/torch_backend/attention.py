@@ -2,8 +2,8 @@
 
 PyTorch's module reads its packed ``in_proj_weight`` (or ``q/k/v_proj_weight`` when ``kdim``/``vdim``
 differ) and ``out_proj.weight`` directly inside ``F.multi_head_attention_forward``: no Linear is
-called, so nothing can be replaced or hooked. :func:`split_attention` swaps each such module in a
-copy of the model for a :class:`SplitAttention` that computes the same function (scaled dot-product
+called, so nothing can be replaced or hooked. :func:`unpack_attention` swaps each such module in a
+copy of the model for a :class:`UnpackedAttention` that computes the same function (scaled dot-product
 attention, Vaswani et al. 2017, with PyTorch's mask conventions) from four ``nn.Linear``
 projections. The tool does this before discovery, so the projections are ordinary linear layers to
 every later stage (calibration hooks, refits, rewrite, export); ``load_factorized`` does the same
@@ -23,7 +23,7 @@ import torch.nn.functional as F
 from torch import nn
 
 
-class SplitAttention(nn.Module):
+class UnpackedAttention(nn.Module):
     """The function of a given ``nn.MultiheadAttention`` with projections ``q_proj``, ``k_proj``,
     ``v_proj`` and ``out_proj`` (``nn.Linear``). Same call signature and return value."""
 
@@ -122,9 +122,9 @@ def why_not(mha: nn.MultiheadAttention) -> str | None:
     return None
 
 
-def split_attention(model: nn.Module) -> nn.Module:
+def unpack_attention(model: nn.Module) -> nn.Module:
     """``model`` itself when it has no convertible ``nn.MultiheadAttention``; else a copy with each
-    one replaced by a :class:`SplitAttention` (the user's model is never modified)."""
+    one replaced by a :class:`UnpackedAttention` (the user's model is never modified)."""
     names = [n for n, m in model.named_modules() if isinstance(m, nn.MultiheadAttention) and why_not(m) is None]
     if not names:
         return model
@@ -132,5 +132,5 @@ def split_attention(model: nn.Module) -> nn.Module:
     for name in names:
         parent_name, _, child = name.rpartition(".")
         parent = new.get_submodule(parent_name) if parent_name else new
-        setattr(parent, child, SplitAttention(new.get_submodule(name)))
+        setattr(parent, child, UnpackedAttention(new.get_submodule(name)))
     return new

@@ -312,11 +312,11 @@ def load_saved_weights(model: nn.Module, path: str | Path) -> None:
 
 
 def normalize(model: nn.Module) -> nn.Module:
-    """``nn.MultiheadAttention`` modules become :class:`~.attention.SplitAttention` (same
+    """``nn.MultiheadAttention`` modules become :class:`~.attention.UnpackedAttention` (same
     function, four ``nn.Linear`` projections) in a copy; a model without any is returned as is."""
-    from .attention import split_attention
+    from .attention import unpack_attention
 
-    return split_attention(model)
+    return unpack_attention(model)
 
 
 def rebuild(model: nn.Module, folder: Path, layers: list[dict]) -> nn.Module:
