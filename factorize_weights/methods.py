@@ -23,6 +23,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .columns import column_factors, column_spectrum
+from .factors import split_factors
 from .records import max_saving_rank
 from .spectra import Spectrum, checked_matrix, choose_method, flip_signs, gram_svd, randomized_svd
 from .stats import ridge
@@ -63,11 +64,7 @@ class Decomposition:
         _check_rank(rank, len(self.values), self.spectrum.name)
         u = self.left[:, :rank].astype(np.float64)
         r = self.right[:rank].astype(np.float64)
-        s = self.values[:rank]
-        if split == "balanced":
-            root = np.sqrt(s)
-            return u * root, root[:, None] * r
-        return u * s, r
+        return split_factors(u, self.values, r, rank, split)
 
     @property
     def nbytes(self) -> int:

@@ -22,7 +22,12 @@ import numpy as np
 from .errors import InputError
 
 METRICS = ("top1", "top5", "mse", "cosine", "agreement")
+#: The facts every output reads about a metric, in one place: whether higher is better, and the
+#: units of a value and of a drop (percent metrics drop in percentage points)
 HIGHER_IS_BETTER = {"top1": True, "top5": True, "mse": False, "cosine": True, "agreement": True}
+PERCENT = ("top1", "top5", "agreement")  # values in percent, drops in percentage points
+DROP_UNITS = {"top1": "percentage points", "top5": "percentage points", "agreement": "percentage points",
+              "cosine": "cosine (absolute)", "mse": "mse (absolute increase)"}
 
 
 def default_metric(labels: np.ndarray | None, outputs: np.ndarray) -> str:
@@ -145,7 +150,7 @@ class MetricAccumulator:
             self.after += int(np.sum(np.argmax(original, 1) == np.argmax(factorized, 1)))
 
     def result(self) -> MetricResult:
-        scale = 100.0 if self.name in ("top1", "top5", "agreement") else 1.0
+        scale = 100.0 if self.name in PERCENT else 1.0
         n = max(self.n, 1)
         per_class = None
         if self.classes:

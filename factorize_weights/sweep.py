@@ -17,11 +17,11 @@ from .budget import parse_budget
 from .config import CompressConfig
 from .errors import InputError
 from .pipeline import Prepared, prepare, realize
+from .metrics import DROP_UNITS
 from .progress import bar
 from .terminal import fmt_change
 
-POINT_UNITS = {"top1": "percentage points", "top5": "percentage points", "agreement": "percentage points",
-               "cosine": "cosine (absolute)", "mse": "mse (absolute increase)"}
+POINT_UNITS = DROP_UNITS  # the name sweep callers use
 
 
 def parse_budget_list(text: str) -> list[str]:

@@ -9,7 +9,7 @@ import os
 import shutil
 import sys
 
-PERCENT = ("top1", "top5", "agreement")
+from .metrics import PERCENT
 #: columns of the layer table left out first on a narrow terminal (report.md keeps them)
 OPTIONAL_LAYER_COLUMNS = ("break-even", "params before", "kind", "energy kept", "matrix")
 

@@ -18,10 +18,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .factors import split_factors
 from scipy.linalg import solve_triangular
 
-from .spectra import Spectrum, gram_svd
+from .spectra import gram_svd
 
 #: Relative eigenvalue floor of the fallback: eigenvalues below FLOOR x the largest are
 #: raised to it. Small enough not to change a well-conditioned problem, large enough that S^{-1}
@@ -94,33 +93,9 @@ def whitening(gram: np.ndarray, *, floor: float = FLOOR) -> Whitening:
     return Whitening(vecs * root, "eigh-damped", floor, clamped, root)
 
 
-def whitened_svd(matrix: np.ndarray, wh: Whitening):
-    """U, sigma, Vt of W S (float64, signs fixed)."""
-    return whitened_product_svd(np.asarray(matrix, dtype=np.float64) @ wh.s)
-
-
 def whitened_product_svd(ws: np.ndarray):
     """U, sigma, Vt of an already formed whitened product (float64, signs fixed)."""
     return gram_svd(ws)
-
-
-def whitened_spectrum(name: str, matrix: np.ndarray, wh: Whitening) -> Spectrum:
-    """Singular values of W S; the total is ``||W S||_F^2``, the layer's output energy on the
-    calibration set, so the allocator's normalized errors are relative output errors."""
-    ws = np.asarray(matrix, dtype=np.float64) @ wh.s
-    s = np.linalg.svd(ws, compute_uv=False)
-    return Spectrum(name, tuple(matrix.shape), s, float(np.sum(ws * ws)), "exact")
-
-
-def whitened_factors(matrix: np.ndarray, wh: Whitening, rank: int, *, split: str = "balanced", usv=None):
-    """A (m, k), X (k, n) with A @ X = [W S]_k S^{-1}: the rank-k map with the least output error
-    on the calibration inputs. ``usv`` is a precomputed :func:`whitened_svd`."""
-    m, n = matrix.shape
-    if not 1 <= rank <= min(m, n):
-        raise ValueError(f"rank {rank} is outside [1, min(out, in) = {min(m, n)}]")
-    u, s, vt = whitened_svd(matrix, wh) if usv is None else usv
-    a, x = split_factors(u, s, vt, rank, split)
-    return a, wh.right_inverse(x)  # the split scales rows of V^T, so S^{-1} can come after it
 
 
 def regression_product(matrix: np.ndarray, cross: np.ndarray, gram_new: Whitening) -> np.ndarray:

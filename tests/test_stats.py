@@ -285,7 +285,7 @@ def test_left_gram_whitened_factors_equal_the_cholesky_route(shape):
     # Wang et al. 2024 (arXiv 2403.07378): [W S]_k S^{-1} with S S^T = G (Cholesky, whiten.py, checked
     # against its theorem in test_calibration) as the oracle for the projection U_k U_k^T W
     from factorize_weights.methods import Whitened
-    from factorize_weights.whiten import whitened_factors, whitening
+    from factorize_weights.whiten import whitening
 
     rng = np.random.default_rng(2)
     w = rng.standard_normal(shape)
@@ -296,7 +296,7 @@ def test_left_gram_whitened_factors_equal_the_cholesky_route(shape):
     np.testing.assert_allclose(dec.spectrum.singular_values, ref, rtol=1e-8)
     for k in (1, 3, len(dec.values)):
         a, f = dec.factors(k)
-        ca, cf = whitened_factors(w, whitening(g), k)
+        ca, cf = Whitened.decompose_whitened("w", w, whitening(g), dtype="float64").factors(k)
         np.testing.assert_allclose(a @ f, ca @ cf, rtol=1e-7, atol=1e-9)
 
 

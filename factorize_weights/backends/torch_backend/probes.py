@@ -14,112 +14,157 @@ from .layers import _KINDS, OVERRIDE_MISMATCH
 from .running import _run_once
 from ...records import LayerRecord
 
+
 def measure_positions(model: nn.Module, records: list[LayerRecord], sample: np.ndarray) -> int:
     """Set each record's output positions per sample by one forward pass on one sample: 1 for a
     linear layer on (N, in), T for (N, T, in), the output length or area for a convolution; a
     layer called several times per forward counts every call. Returns an estimate of the activation
-    memory one sample needs: :data:`LIVE_OUTPUTS` times the largest module output, at most the sum of
-    all module outputs. Without gradients a module's output is freed once the next ones have read it,
-    so the sum overstates the peak many times: EfficientNet-Lite0's outputs sum to 391 MiB a sample
-    while a batch of 16 (64) grew the process by 8 (14) MiB a sample, and its largest output is
-    4.7 MiB (measured)."""
-    hooks = []
-    total = [0]
-    largest = [0]
+    memory one sample needs (:class:`_ActivationSize`).
 
-    def count(module, args, output):
-        if isinstance(output, torch.Tensor):
-            size = output.numel() * output.element_size()
-            total[0] += size
-            largest[0] = max(largest[0], size)
-
-    overridden = [r for r in records if r.skip_reason is not None and r.options.get("check_forward")]
-    differences = {r.name: [] for r in overridden}
-    why = {}  # record name -> why the base class's output could not be compared (first seen)
-    bases = {r.name: next(cls for cls in _KINDS if isinstance(r.handle, cls)) for r in overridden}
-    for record in overridden:  # does the base class compute the same on these real inputs?
-        base = bases[record.name]
-
-        def compare(module, args, output, record=record, base=base):
-            if len(args) != 1 or not isinstance(output, torch.Tensor):
-                why.setdefault(record.name, f"it is called with {len(args)} positional inputs" if len(args) != 1
-                               else f"it returns a {type(output).__name__}, not a tensor")
-                differences[record.name].append(float("inf"))
-                return
-            try:
-                plain = base.forward(module, args[0])
-            except Exception as exc:
-                why.setdefault(record.name, f"{base.__name__}.forward fails on its inputs ({type(exc).__name__})")
-                differences[record.name].append(float("inf"))
-                return
-            if plain.shape != output.shape:  # e.g. padding of its own
-                why.setdefault(record.name, f"its output shape {tuple(output.shape)} is not {base.__name__}'s "
-                                            f"{tuple(plain.shape)} on the sample inputs")
-                differences[record.name].append(float("inf"))
-                return
-            scale = float(output.abs().max()) if output.numel() else 0.0
-            differences[record.name].append(float((plain - output).abs().max()) / max(scale, 1e-30))
-
-        hooks.append(record.handle.register_forward_hook(compare))
-
-    last = [None, None]  # the latest output of a candidate layer, and its record
-
-    def scaled(module, args, name):  # an eval-mode BatchNorm reading that output directly
-        if last[0] is not None and args and args[0] is last[0] and not module.training \
-                and module.running_var is not None and last[1].row_scale is None \
-                and args[0].dim() >= 2 and args[0].shape[1] == last[1].matrix_shape[0]:
-            gamma = module.weight.detach().abs() if module.weight is not None else torch.ones_like(module.running_var)
-            scale = (gamma / torch.sqrt(module.running_var.detach() + module.eps)).double().numpy()
-            last[1].row_scale, last[1].scaled_by = scale, name
-        last[0] = last[1] = None
-
-    for bn_name, bn in model.named_modules():
-        if isinstance(bn, nn.modules.batchnorm._BatchNorm):
-            hooks.append(bn.register_forward_pre_hook(lambda m, a, name=bn_name: scaled(m, a, name)))
-
+    The pass runs four probes at once, each a class of its own: :class:`_ForwardCheck` (do
+    overridden forward()s compute what their base class computes?), :class:`_Positions`,
+    :class:`_RowScales` (BatchNorms that read a layer's output) and :class:`_ActivationSize`, plus
+    the BatchNorm-chain trace (:func:`_trace_normalized_inputs`)."""
+    hooks: list = []
+    check = _ForwardCheck(records)
+    positions = _Positions(records, check.names)
+    scales = _RowScales(positions)
+    size = _ActivationSize()
+    check.attach(hooks)
+    scales.attach(model, hooks)
     produced = _trace_normalized_inputs(model, records, hooks)
-    for record in records:
-        if record.skip_reason is not None and record.name not in differences:
-            continue
-        record.positions = 0
-        record.row_scale = record.scaled_by = None
-        record.input_stats = record.input_from = None
-
-        def hook(module, args, output, record=record):
-            last[0], last[1] = (output, record) if isinstance(output, torch.Tensor) else (None, None)
-            shape = output.shape
-            if record.kind == "linear":
-                record.positions += int(np.prod(shape[1:-1]))  # empty product: 1
-            else:
-                record.positions += int(np.prod(shape[2:]))
-
-        hooks.append(record.handle.register_forward_hook(hook))
-    hooks += [m.register_forward_hook(count) for m in model.modules() if not list(m.children())]
-    rows = min(8 if overridden else 1, len(next(iter(sample.values())) if isinstance(sample, dict) else sample))
+    positions.attach(hooks)
+    size.attach(model, hooks)
+    rows = min(8 if check.names else 1, len(next(iter(sample.values())) if isinstance(sample, dict) else sample))
     _run_once(model, sample, hooks, rows=rows)
-    total[0] = min(total[0], LIVE_OUTPUTS * largest[0]) // max(rows, 1)
     for record in records:
         if record.name in produced and record.positions is not None:
             record.input_stats, record.input_from = produced[record.name]
-    for record in overridden:
-        seen = differences[record.name]
-        worst = max(seen) if seen else float("inf")
-        base = bases[record.name]
-        if seen and worst <= OVERRIDE_TOLERANCE:
-            record.skip_reason = None  # the rewrite computes what the layer computed, on real inputs
-            record.options["forward_checked"] = (f"{type(record.handle).__name__}.forward matched "
-                                                 f"{base.__name__}.forward on {rows} sample input(s)")
-        elif not seen:
-            record.skip_reason = f"class {type(record.handle).__name__} overrides forward() and the sample never called it"
-        elif record.name in why:
-            record.skip_reason = (f"class {type(record.handle).__name__} overrides forward() and {why[record.name]}, "
-                                  "so two plain factors would change it")
-        else:
-            record.skip_reason = OVERRIDE_MISMATCH.format(cls=type(record.handle).__name__, base=base.__name__,
-                                                          diff=worst)
-            record.positions = None
+    check.finish(rows)
+    return size.per_sample(rows)
+
+
+class _ActivationSize:
+    """Activation memory one sample needs: :data:`LIVE_OUTPUTS` times the largest module output, at
+    most the sum of all module outputs. Without gradients a module's output is freed once the next
+    ones have read it, so the sum overstates the peak many times: EfficientNet-Lite0's outputs sum to
+    391 MiB a sample while a batch of 16 (64) grew the process by 8 (14) MiB a sample, and its
+    largest output is 4.7 MiB (measured)."""
+
+    def __init__(self):
+        self.total = self.largest = 0
+
+    def attach(self, model: nn.Module, hooks: list) -> None:
+        hooks += [m.register_forward_hook(self._count) for m in model.modules() if not list(m.children())]
+
+    def _count(self, module, args, output) -> None:
+        if isinstance(output, torch.Tensor):
+            size = output.numel() * output.element_size()
+            self.total += size
+            self.largest = max(self.largest, size)
+
+    def per_sample(self, rows: int) -> int:
+        return int(min(self.total, LIVE_OUTPUTS * self.largest) // max(rows, 1))
+
+
+class _ForwardCheck:
+    """Layers whose class overrides ``forward()`` are admitted only when, on the sample's real
+    inputs, the base class's forward gives the same output (to :data:`OVERRIDE_TOLERANCE` of the
+    output's scale); otherwise the reason is recorded as the layer's skip reason."""
+
+    def __init__(self, records: list[LayerRecord]):
+        self.records = [r for r in records if r.skip_reason is not None and r.options.get("check_forward")]
+        self.names = {r.name for r in self.records}
+        self.differences = {r.name: [] for r in self.records}
+        self.why: dict[str, str] = {}  # why the base class's output could not be compared (first seen)
+        self.bases = {r.name: next(cls for cls in _KINDS if isinstance(r.handle, cls)) for r in self.records}
+
+    def attach(self, hooks: list) -> None:
+        for record in self.records:
+            hooks.append(record.handle.register_forward_hook(
+                lambda m, a, o, record=record: self._compare(m, a, o, record)))
+
+    def _fail(self, record: LayerRecord, why: str) -> None:
+        self.why.setdefault(record.name, why)
+        self.differences[record.name].append(float("inf"))
+
+    def _compare(self, module, args, output, record: LayerRecord) -> None:
+        base = self.bases[record.name]
+        if len(args) != 1 or not isinstance(output, torch.Tensor):
+            return self._fail(record, f"it is called with {len(args)} positional inputs" if len(args) != 1
+                              else f"it returns a {type(output).__name__}, not a tensor")
+        try:
+            plain = base.forward(module, args[0])
+        except Exception as exc:
+            return self._fail(record, f"{base.__name__}.forward fails on its inputs ({type(exc).__name__})")
+        if plain.shape != output.shape:  # e.g. padding of its own
+            return self._fail(record, f"its output shape {tuple(output.shape)} is not {base.__name__}'s "
+                                      f"{tuple(plain.shape)} on the sample inputs")
+        scale = float(output.abs().max()) if output.numel() else 0.0
+        self.differences[record.name].append(float((plain - output).abs().max()) / max(scale, 1e-30))
+
+    def finish(self, rows: int) -> None:
+        for record in self.records:
+            seen = self.differences[record.name]
+            worst = max(seen) if seen else float("inf")
+            cls, base = type(record.handle).__name__, self.bases[record.name].__name__
+            if seen and worst <= OVERRIDE_TOLERANCE:
+                record.skip_reason = None  # the rewrite computes what the layer computed, on real inputs
+                record.options["forward_checked"] = f"{cls}.forward matched {base}.forward on {rows} sample input(s)"
+            elif not seen:
+                record.skip_reason = f"class {cls} overrides forward() and the sample never called it"
+            elif record.name in self.why:
+                record.skip_reason = (f"class {cls} overrides forward() and {self.why[record.name]}, "
+                                      "so two plain factors would change it")
+            else:
+                record.skip_reason = OVERRIDE_MISMATCH.format(cls=cls, base=base, diff=worst)
+                record.positions = None
+                record.row_scale = record.scaled_by = None
+
+
+class _Positions:
+    """Output positions per sample of every candidate layer (and the latest output of one, which
+    :class:`_RowScales` reads)."""
+
+    def __init__(self, records: list[LayerRecord], checked: set):
+        self.records = [r for r in records if r.skip_reason is None or r.name in checked]
+        self.last = [None, None]  # the latest output of a candidate layer, and its record
+
+    def attach(self, hooks: list) -> None:
+        for record in self.records:
+            record.positions = 0
             record.row_scale = record.scaled_by = None
-    return int(total[0])
+            record.input_stats = record.input_from = None
+            hooks.append(record.handle.register_forward_hook(lambda m, a, o, record=record: self._count(o, record)))
+
+    def _count(self, output, record: LayerRecord) -> None:
+        self.last[0], self.last[1] = (output, record) if isinstance(output, torch.Tensor) else (None, None)
+        shape = output.shape
+        # linear: every position of (N, ..., out) but the batch (empty product: 1); conv: (N, C, *spatial)
+        record.positions += int(np.prod(shape[1:-1])) if record.kind == "linear" else int(np.prod(shape[2:]))
+
+
+class _RowScales:
+    """An eval-mode BatchNorm that reads a candidate layer's output directly gives that layer's rows
+    the weights |gamma| / sqrt(var + eps) (``record.row_scale``, used by ``bn_weights``)."""
+
+    def __init__(self, positions: _Positions):
+        self.last = positions.last
+
+    def attach(self, model: nn.Module, hooks: list) -> None:
+        for name, bn in model.named_modules():
+            if isinstance(bn, nn.modules.batchnorm._BatchNorm):
+                hooks.append(bn.register_forward_pre_hook(lambda m, a, name=name: self._scaled(m, a, name)))
+
+    def _scaled(self, module, args, name: str) -> None:
+        out, record = self.last
+        if out is not None and args and args[0] is out and not module.training \
+                and module.running_var is not None and record.row_scale is None \
+                and args[0].dim() >= 2 and args[0].shape[1] == record.matrix_shape[0]:
+            gamma = module.weight.detach().abs() if module.weight is not None else torch.ones_like(module.running_var)
+            record.row_scale = (gamma / torch.sqrt(module.running_var.detach() + module.eps)).double().numpy()
+            record.scaled_by = name
+        self.last[0] = self.last[1] = None
 
 
 # outputs of the largest size that may be alive at once in an inference pass (a block's input, its
