@@ -89,42 +89,66 @@ class Calibration:
             "batch_size": self.batch_size,
         }
 
-    ridges: dict[str, float] = field(default_factory=dict)  # the relative ridge each layer got
+    regularized: dict[str, "LayerRidge"] = field(default_factory=dict)  # per layer, set by release()
+
+    @property
+    def ridges(self) -> dict[str, float]:
+        """The relative ridge each layer released with shrinkage on got."""
+        return {n: r.ridge for n, r in self.regularized.items() if r.shrunk}
+
+    @property
+    def priors(self) -> dict[str, Prior]:
+        return {n: r.prior for n, r in self.regularized.items() if r.prior is not None}
 
     def ridge_for(self, name: str) -> float:
         """The relative ridge of layer ``name``: ``ridge`` or, with shrinkage on, at least the
         Ledoit-Wolf shrinkage of its moments (set by :meth:`release`)."""
-        return self.ridges.get(name, self.ridge)
-
-    priors: dict[str, Prior] = field(default_factory=dict)  # the target each layer's ridge adds, where known
+        return self.regularized[name].ridge if name in self.regularized else self.ridge
 
     def prior_for(self, name: str) -> Prior | None:
         """What the ridge of layer ``name`` adds instead of a multiple of the identity (or None)."""
-        return self.priors.get(name)
-
-    identity_ridges: dict[str, float] = field(default_factory=dict)  # with a prior: the ridge toward I
+        return self.regularized[name].prior if name in self.regularized else None
 
     def identity_ridge_for(self, name: str) -> float:
         """The relative ridge of ``name`` with the identity as the target, as if it had no prior
         (what a refit uses once the layers upstream have moved its inputs)."""
-        return self.identity_ridges.get(name, self.ridge_for(name))
+        r = self.regularized.get(name)
+        return self.ridge if r is None else r.identity_ridge
 
     def release(self, name: str, shrink: bool = False, prior: Prior | None = None) -> np.ndarray:
-        """The Gram matrix of ``name``, dropped from this object (it is used once); with ``shrink``,
-        the layer's ridge becomes at least its Ledoit-Wolf shrinkage (toward ``prior`` when given)
-        and ``rows_ridge`` x its input width / its calibration rows first. A ``prior`` is kept for
-        the sequential refits, which add the same ridge."""
+        """The Gram matrix of ``name``, dropped from this object (it is used once), and the layer's
+        regularisation decided once (:class:`LayerRidge`): with ``shrink``, its ridge becomes at
+        least its Ledoit-Wolf shrinkage (toward ``prior`` when given) and ``rows_ridge`` x its input
+        width / its calibration rows first. The sequential refits read the same record."""
+        self.regularized[name] = LayerRidge.decide(self.moments[name], self.ridge, self.rows_ridge, shrink, prior)
         st = self.moments[name]
-        if prior is not None:
-            self.priors[name] = prior
-        if shrink:
-            floor = max(self.ridge, self.rows_ridge * st.n / st.rows if st.rows else 0.0)
-            self.ridges[name] = shrinkage_ridge(st.shrinkage(prior), floor)
-            if prior is not None:
-                self.identity_ridges[name] = shrinkage_ridge(st.shrinkage(None), floor)
         g = st.gram
         st.gram = None
         return g
+
+
+@dataclass
+class LayerRidge:
+    """One layer's regularisation of its calibration moments, and why: the relative ridge, the
+    target it adds (a Prior, or the identity when None), the ridge toward the identity for refits
+    whose inputs have drifted, and which rule set the value."""
+
+    ridge: float
+    identity_ridge: float
+    prior: Prior | None
+    reason: str  # "floor" (the --ridge floor), "rows floor" or "Ledoit-Wolf shrinkage"
+    shrunk: bool = True  # decided with shrinkage on (the report lists such layers' ridges)
+
+    @staticmethod
+    def decide(st: Moments, base: float, rows_ridge: float, shrink: bool, prior: Prior | None) -> "LayerRidge":
+        if not shrink:
+            return LayerRidge(base, base, prior, "floor", shrunk=False)
+        rows_floor = rows_ridge * st.n / st.rows if st.rows else 0.0
+        floor = max(base, rows_floor)
+        ridge = shrinkage_ridge(st.shrinkage(prior), floor)
+        identity = shrinkage_ridge(st.shrinkage(None), floor) if prior is not None else ridge
+        reason = "Ledoit-Wolf shrinkage" if ridge > floor else ("rows floor" if rows_floor > base else "floor")
+        return LayerRidge(ridge, identity, prior, reason)
 
 
 def peak_rss() -> int:
