@@ -138,8 +138,12 @@ def measure_positions(model: OnnxModel, records: list[LayerRecord], sample) -> i
 
 
 def normalize(model: OnnxModel) -> OnnxModel:
-    """Nothing to convert: in an ONNX graph every projection is already its own MatMul or Gemm."""
-    return model
+    """Weights as initializers wherever they are constant: ``Constant`` nodes and constant-only
+    chains in front of them folded (folding.py), in a copy; in an ONNX graph every projection is
+    already its own MatMul or Gemm."""
+    from .folding import fold_constants
+
+    return fold_constants(model)[0]
 
 
 def replacement_errors(model: OnnxModel, records: dict, trials, batches: list, output: str | None = None):
