@@ -111,8 +111,8 @@ RULES: tuple[Rule, ...] = (
     Rule("output-allocation-needs-calibration", lambda c, f: c.allocation == "output" and not f.calibration,
          f"--allocation output {_NEEDS_CAL} (the inputs its probes run on)"),
     Rule("output-allocation-needs-capability", lambda c, f: c.allocation == "output" and not f.can("output_effects"),
-         lambda c, f: f"--allocation output: {_a(f)} model cannot be probed at its output yet (the probes run on "
-                      "PyTorch models only); use --allocation energy-product or error-sum"),
+         lambda c, f: f"--allocation output: {_a(f)} model cannot be probed at its output; use --allocation "
+                      "energy-product or error-sum"),
     Rule("export-needs-capability", lambda c, f: c.export_onnx and not f.can("export_onnx"),
          lambda c, f: f"--export-onnx writes an ONNX copy of a PyTorch model; {_a(f)} model cannot be exported "
                       "(an ONNX model is ONNX already)"),

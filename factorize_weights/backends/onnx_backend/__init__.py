@@ -37,7 +37,10 @@ NAME = "ONNX"  # in messages
 RUNTIME = "onnxruntime"
 
 #: What this backend can do beyond the common interface (the resolver refuses from this table).
-CAPABILITIES = frozenset({"int8"})
+CAPABILITIES = frozenset({
+    "output_effects",  # replacement_errors: a rank-k weight fed in place of the stored one
+    "int8",  # quantize_int8: onnxruntime dynamic quantization
+})
 
 
 def rebuild(model, folder: Path, layers: list[dict]) -> OnnxModel:

@@ -147,9 +147,73 @@ def normalize(model: OnnxModel) -> OnnxModel:
 
 
 def replacement_errors(model: OnnxModel, records: dict, trials, batches: list, output: str | None = None):
-    """Not available for ONNX models (the pipeline refuses ``--allocation output`` for them before
-    calling this, and ``auto`` allocates by each layer's own error)."""
-    raise NotImplementedError("output-effect probes run on PyTorch models only")
+    """For each ``(name, A, X)`` in ``trials``: the squared error of the model's output with layer
+    ``name``'s weight alone replaced by the rank-k product A @ X (in the weight's own layout and
+    dtype), everything else exact, and the squared norm of the original output, over ``batches``.
+
+    No graph surgery per probe: one probe session lists every candidate weight as a graph input
+    as well as an initializer, so a run uses the stored weight unless a feed overrides it (ONNX
+    IR: an initializer that is also an input is its default value), and each trial feeds one."""
+    session = _override_session(model, [r.options["weight"] for r in records.values()])
+    names = [o.name for o in session.get_outputs()]
+    pick = names.index(output) if output in names else (int(output) if output and output.isdigit() else 0)
+    feeds = [feed(model, b, source="--calibration") for b in batches]
+    reference = [np.asarray(session.run([names[pick]], f)[0], dtype=np.float64) for f in feeds]
+    energy = float(sum(float(np.sum(r * r)) for r in reference))
+    for name, a, x in trials:
+        record = records[name]
+        weight = {record.options["weight"]: _weight_layout(record, a @ x)}
+        err = 0.0
+        for f, ref in zip(feeds, reference):
+            diff = np.asarray(session.run([names[pick]], {**f, **weight})[0], dtype=np.float64) - ref
+            err += float(np.sum(diff * diff))
+        yield err, energy
+
+
+def _weight_layout(record: LayerRecord, matrix: np.ndarray) -> np.ndarray:
+    """A matrix view (out x in) back in the weight tensor's layout and dtype: the inverse of
+    ``layers.weight_matrix`` (Conv reshaped to its kernel; Gemm's alpha and transB undone; MatMul
+    transposed for a right-hand weight)."""
+    from onnx import numpy_helper
+
+    _, tensor = record.handle
+    dtype = numpy_helper.to_array(tensor).dtype
+    o = record.options
+    if o["op"] == "Conv":
+        w = matrix.reshape(tuple(int(d) for d in tensor.dims))
+    elif o["op"] == "Gemm":
+        w = matrix / o["alpha"] if o["transB"] else (matrix / o["alpha"]).T
+    else:
+        w = matrix.T if o["side"] == "right" else matrix
+    return np.ascontiguousarray(w, dtype=dtype)
+
+
+def _override_session(model: OnnxModel, weights: list[str]):
+    """A session in which each named initializer is also a graph input (cached per set of names)."""
+    import onnx
+    import onnxruntime as ort
+
+    key = ("override", tuple(sorted(weights)))
+    if key not in model._sessions:
+        proto = model.proto
+        inits = {t.name: t for t in proto.graph.initializer}
+        listed = {i.name for i in proto.graph.input}
+        n_in = len(proto.graph.input)
+        for name in weights:
+            if name in inits and name not in listed:
+                t = inits[name]
+                proto.graph.input.append(onnx.helper.make_tensor_value_info(name, t.data_type, list(t.dims)))
+        try:
+            if proto.ByteSize() >= TWO_GB:
+                raise InputError("--allocation output: the ONNX model is 2 GB or more; probe it with "
+                                 "--allocation energy-product or error-sum")
+            options = ort.SessionOptions()
+            options.log_severity_level = 3
+            source = proto.SerializeToString()
+        finally:
+            del proto.graph.input[n_in:]
+        model._sessions[key] = ort.InferenceSession(source, options, providers=["CPUExecutionProvider"])
+    return model._sessions[key]
 
 
 def stream_layer_outputs(original: OnnxModel, factorized: OnnxModel, names: list[str], batches, sink) -> None:

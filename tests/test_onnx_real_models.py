@@ -1,5 +1,6 @@
-"""ONNX weights wherever they are constant: Constant nodes and constant-only chains (Cast, Transpose,
-Reshape, Squeeze/Unsqueeze, DequantizeLinear) in front of a weight, as converters write them.
+"""ONNX models as they come: weights in Constant nodes and constant-only chains (Cast, Transpose,
+Reshape, Squeeze/Unsqueeze, DequantizeLinear) in front of a weight, as converters write them; and
+output-effect probes on ONNX models (a rank-k weight fed in place of the stored one).
 
 Oracle: onnxruntime running the original graph (the chains' meaning is the ONNX operator
 specification's, which onnxruntime implements), and onnx.checker for validity."""
@@ -156,3 +157,39 @@ def test_inspect_counts_the_folded_parameters(tmp_path, capsys, opset):
 
     report = json.loads(out)
     assert report["model_params"] == 8 * 16 + 16 + 16 * 12 + 12 * 10 + 60 + 30
+
+
+def test_an_onnx_output_probe_equals_a_direct_rewrite_and_run(tmp_path):
+    # the probe feeds A @ X in place of the stored weight; the oracle rewrites that one layer into
+    # its two factor nodes and runs both graphs in onnxruntime on the same inputs
+    from factorize_weights import demo
+
+    model = ob.normalize(ob.load(demo.ONNX))
+    records = [r for r in ob.discover(model) if r.skip_reason is None]
+    x = np.load(demo.HELDOUT)["inputs"][:32]
+    session = ort.InferenceSession(model.proto.SerializeToString(), providers=["CPUExecutionProvider"])
+    reference = session.run(None, {"image": x})[0].astype(np.float64)
+    for record in records[2:5]:
+        u, s, vt = np.linalg.svd(ob.weight_matrix(record), full_matrices=False)
+        k = max(1, len(s) // 8)
+        a, f = u[:, :k] * s[:k], vt[:k]
+        (err, energy), = ob.replacement_errors(model, {record.name: record}, [(record.name, a, f)], [x])
+        split = ob.rewrite(model, records, {record.name: (a, f)})
+        direct = ort.InferenceSession(split.proto.SerializeToString(),
+                                      providers=["CPUExecutionProvider"]).run(None, {"image": x})[0]
+        want = float(np.sum((direct.astype(np.float64) - reference) ** 2))
+        assert energy == pytest.approx(float(np.sum(reference ** 2)), rel=1e-6)
+        assert err == pytest.approx(want, rel=1e-3)  # float32 kernels: one product against two factors
+
+
+def test_a_calibrated_onnx_plan_allocates_by_output_effect(tmp_path, capsys):
+    from factorize_weights import demo
+
+    code = main(["compress", "--demo", "onnx", "--budget", "params=0.3", "--calibration", str(demo.CALIBRATION),
+                 "-q", "--latency-repeats", "0", "--json"])
+    out, err = capsys.readouterr()
+    assert code == 0, err
+    import json
+
+    report = json.loads(out)
+    assert report["allocation"]["by"] == "output" and report["allocation"]["probe_passes"] > 0
