@@ -66,7 +66,8 @@ def score(metric: str, factorized, triples, total: int, config: CompressConfig) 
     acc = MetricAccumulator(metric)
     predict = backend_for(factorized).predict
     for inputs, reference, labels in bar(triples, config, "evaluate", total, "batch"):
-        acc.update(reference, predict(factorized, inputs, output=config.output), labels)
+        mask = inputs.get("attention_mask") if isinstance(inputs, dict) else None  # sequence metrics count real tokens
+        acc.update(reference, predict(factorized, inputs, output=config.output), labels, mask)
     return acc.result()
 
 

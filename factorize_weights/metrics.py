@@ -34,35 +34,57 @@ def default_metric(labels: np.ndarray | None, outputs: np.ndarray) -> str:
     """top1 for class labels with logits, mse for float targets, cosine when unlabelled."""
     if labels is None:
         return "cosine"
-    if labels.dtype.kind in "iub" and outputs.ndim == 2 and labels.ndim == 1:
-        return "top1"
+    if labels.dtype.kind in "iub" and outputs.ndim in (2, 3) and labels.shape == outputs.shape[:-1]:
+        return "top1"  # one class per sample, or per position of a sequence
     return "mse"
 
 
+#: Labels below zero mark positions to ignore in a sequence (padding, special tokens): the
+#: ignore-index convention of token classifiers (common practice; PyTorch's cross_entropy uses -100)
+IGNORE_BELOW = 0
+
+
 def check_metric(name: str, labels: np.ndarray | None, outputs: np.ndarray) -> None:
-    """Refuse a metric the data cannot support, naming what is missing."""
+    """Refuse a metric the data cannot support, naming what is missing. Classification metrics
+    take (N, classes) outputs with (N,) labels, or per position (N, T, classes) with (N, T)."""
     if name not in METRICS:
         raise InputError(f"--metric {name!r}: expected one of {', '.join(METRICS)}")
     if name in ("top1", "top5", "mse") and labels is None:
         raise InputError(f"--metric {name}: the held-out set has no 'labels' array")
     if name in ("top1", "top5"):
-        if labels.ndim != 1 or labels.dtype.kind not in "iub":
-            raise InputError(f"--metric {name}: 'labels' must be integer class ids of shape (N,); "
+        want = outputs.shape[:-1]  # (N,) or per position (N, T)
+        if outputs.ndim not in (2, 3):
+            raise InputError(f"--metric {name}: the model output must be (N, classes) or (N, positions, classes); "
+                             f"got shape {outputs.shape}")
+        if labels.dtype.kind not in "iub" or labels.shape[1:] != want[1:]:
+            shape = "(N,)" if outputs.ndim == 2 else f"(N, {want[1]})"
+            raise InputError(f"--metric {name}: 'labels' must be integer class ids of shape {shape}; "
                              f"got {labels.dtype} {labels.shape}")
-        if outputs.ndim != 2:
-            raise InputError(f"--metric {name}: the model output must be (N, classes); got shape {outputs.shape}")
         k = 5 if name == "top5" else 1
-        if outputs.shape[1] < k:
-            raise InputError(f"--metric {name}: the model has only {outputs.shape[1]} outputs")
-        if labels.min() < 0 or labels.max() >= outputs.shape[1]:
+        if outputs.shape[-1] < k:
+            raise InputError(f"--metric {name}: the model has only {outputs.shape[-1]} outputs")
+        valid = labels[labels >= IGNORE_BELOW] if outputs.ndim == 3 else labels
+        if valid.size and (valid.min() < 0 or valid.max() >= outputs.shape[-1]):
             raise InputError(
-                f"--metric {name}: labels range over [{labels.min()}, {labels.max()}] but the model has "
-                f"{outputs.shape[1]} classes"
+                f"--metric {name}: labels range over [{valid.min()}, {valid.max()}] but the model has "
+                f"{outputs.shape[-1]} classes"
             )
     if name == "mse" and labels.shape[1:] != outputs.shape[1:]:
         raise InputError(f"--metric mse: labels of shape {labels.shape[1:]} per sample do not match outputs {outputs.shape[1:]}")
-    if name == "agreement" and outputs.ndim != 2:
-        raise InputError(f"--metric agreement: the model output must be (N, classes); got shape {outputs.shape}")
+    if name == "agreement" and outputs.ndim not in (2, 3):
+        raise InputError(f"--metric agreement: the model output must be (N, classes) or (N, positions, classes); "
+                         f"got shape {outputs.shape}")
+
+
+def positions(original: np.ndarray, factorized: np.ndarray, labels: np.ndarray | None, mask: np.ndarray | None):
+    """Per-position outputs (N, T, C) as rows (P, C) of the positions that count: where ``mask``
+    (an attention mask, (N, T)) is nonzero and, with labels, where the label is not ignored (< 0)."""
+    keep = np.ones(original.shape[:2], dtype=bool)
+    if mask is not None and np.shape(mask) == original.shape[:2]:
+        keep &= np.asarray(mask) != 0
+    if labels is not None and labels.shape == original.shape[:2]:
+        keep &= labels >= IGNORE_BELOW
+    return original[keep], factorized[keep], (labels[keep] if labels is not None else None)
 
 
 def topk_correct(logits: np.ndarray, labels: np.ndarray, k: int) -> int:
@@ -92,6 +114,7 @@ class MetricResult:
     after: float
     samples: int
     per_class: list | None = None  # top1/top5 with class labels: [{"class", "samples", "before", "after"}]
+    per_position: dict | None = None  # sequence outputs: {"positions": P, "masked_by": [...]}
 
     @property
     def delta(self) -> float:
@@ -112,6 +135,8 @@ class MetricResult:
         }
         if self.per_class is not None:
             out["per_class"] = self.per_class
+        if self.per_position is not None:
+            out["per_position"] = self.per_position
         return out
 
 
@@ -126,8 +151,24 @@ class MetricAccumulator:
         self.before = 0.0
         self.after = 0.0
         self.classes: dict[int, list[int]] = {}  # class id -> [samples, correct before, correct after]
+        self.positions: dict | None = None  # set by the first per-position batch
 
-    def update(self, original: np.ndarray, factorized: np.ndarray, labels: np.ndarray | None) -> None:
+    def update(self, original: np.ndarray, factorized: np.ndarray, labels: np.ndarray | None,
+               mask: np.ndarray | None = None) -> None:
+        """One batch. Classification metrics on (N, T, C) outputs count every position that
+        ``mask`` (an attention mask) and the labels (< 0: ignored) keep."""
+        if self.name in ("top1", "top5", "agreement") and original.ndim == 3:
+            if self.positions is None:
+                self.positions = {"positions": 0, "masked_by": []}
+            by = self.positions["masked_by"]
+            if mask is not None and np.shape(mask) == original.shape[:2] and "attention_mask" not in by:
+                by.append("attention_mask")
+            if self.name != "agreement" and labels is not None and np.any(labels < IGNORE_BELOW) \
+                    and "labels < 0" not in by:
+                by.append("labels < 0")
+            original, factorized, labels = positions(original, factorized, labels if self.name != "agreement"
+                                                     else None, mask)
+            self.positions["positions"] += original.shape[0]
         self.n += original.shape[0]
         if self.name in ("top1", "top5"):
             k = 1 if self.name == "top1" else 5
@@ -156,4 +197,5 @@ class MetricAccumulator:
         if self.classes:
             per_class = [{"class": c, "samples": s, "before": 100.0 * b / s, "after": 100.0 * a / s}
                          for c, (s, b, a) in sorted(self.classes.items())]
-        return MetricResult(self.name, scale * self.before / n, scale * self.after / n, self.n, per_class)
+        return MetricResult(self.name, scale * self.before / n, scale * self.after / n, self.n, per_class,
+                            self.positions)

@@ -128,7 +128,7 @@ def summary(report: dict, out=None, files: list[str] | None = None) -> list[str]
     m = report.get("metric")
     if m:
         lines.append(f"held-out {m['name']} {fmt_value(m['name'], m['before'])} -> {fmt_value(m['name'], m['after'])} "
-                     f"({fmt_change(m['name'], m['before'], m['after'], m['higher_is_better'])}; {m['samples']} samples)")
+                     f"({fmt_change(m['name'], m['before'], m['after'], m['higher_is_better'])}; {counted(m)})")
     lat = report.get("latency")
     if lat:
         lines.append(f"latency {lat['before_ms']:.3g} -> {lat['after_ms']:.3g} ms (x{lat['speedup']:.2f}; FLOPs predict "
@@ -139,3 +139,12 @@ def summary(report: dict, out=None, files: list[str] | None = None) -> list[str]
     else:
         lines.append(f"wrote {str(out).rstrip('/')}/ ({', '.join(files or [])})")
     return lines
+
+
+def counted(metric: dict) -> str:
+    """What a metric was counted over: samples, or positions of sequences (and what masked them)."""
+    pos = metric.get("per_position")
+    if pos is None:
+        return f"{metric['samples']} samples"
+    by = f", {' and '.join(pos['masked_by'])} honoured" if pos["masked_by"] else ""
+    return f"{pos['positions']} positions{by}"
