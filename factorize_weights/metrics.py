@@ -34,7 +34,9 @@ def default_metric(labels: np.ndarray | None, outputs: np.ndarray) -> str:
     """top1 for class labels with logits, mse for float targets, cosine when unlabelled."""
     if labels is None:
         return "cosine"
-    if labels.dtype.kind in "iub" and outputs.ndim in (2, 3) and labels.shape == outputs.shape[:-1]:
+    # (labels may be the whole set and outputs one batch: compare the per-sample shapes)
+    if labels.dtype.kind in "iub" and outputs.ndim in (2, 3) and labels.shape[1:] == outputs.shape[1:-1] \
+            and labels.ndim == outputs.ndim - 1:
         return "top1"  # one class per sample, or per position of a sequence
     return "mse"
 
