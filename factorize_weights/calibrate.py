@@ -27,7 +27,7 @@ from .errors import InputError
 from .methods import Whitened, floored_scale, unscale_rows
 from .progress import bar
 from .records import LayerRecord
-from .stats import CrossMoments, Moments, Prior, ridge, shrinkage_ridge, weight_error
+from .stats import CrossMoments, Moments, OutputMoments, Prior, ridge, shrinkage_ridge, weight_error
 from .whiten import regression_product, whitening
 
 #: Below this relative change of a layer's inputs (float32 rounding), no layer upstream has moved them.
@@ -61,6 +61,7 @@ class Calibration:
     batch_size: int = 256
     passes: int = 1  # passes over the calibration set for the latest budget (moments + refit groups)
     rows_ridge: float = 0.0  # with shrinkage: each layer's ridge is at least this x (input width) / rows
+    plan: "StatisticsPlan | None" = None  # which side of each layer's statistics was kept, and why
 
     def summary(self, ranks: dict | None = None, fits: dict | None = None) -> dict:
         """The report's calibration block; with one budget's ``ranks`` and sequential ``fits``,
@@ -87,6 +88,7 @@ class Calibration:
             "ridge_toward_input_statistics": sorted(n for n in self.priors if toward_statistics(n)),
             "passes": self.passes,
             "batch_size": self.batch_size,
+            **(self.plan.summary() if self.plan is not None else {}),
         }
 
     regularized: dict[str, "LayerRidge"] = field(default_factory=dict)  # per layer, set by release()
@@ -115,13 +117,23 @@ class Calibration:
         r = self.regularized.get(name)
         return self.ridge if r is None else r.identity_ridge
 
+    def output_side(self, name: str) -> bool:
+        """Whether layer ``name`` kept only its output moment (too wide for its input Gram)."""
+        return self.plan is not None and self.plan.sides.get(name) == "output"
+
+    def uncalibrated(self, name: str) -> bool:
+        """Whether layer ``name`` got no statistics at all (too wide on both sides for the budget)."""
+        return self.plan is not None and name in self.plan.dropped
+
     def release(self, name: str, shrink: bool = False, prior: Prior | None = None) -> np.ndarray:
         """The Gram matrix of ``name``, dropped from this object (it is used once), and the layer's
         regularisation decided once (:class:`LayerRidge`): with ``shrink``, its ridge becomes at
         least its Ledoit-Wolf shrinkage (toward ``prior`` when given) and ``rows_ridge`` x its input
         width / its calibration rows first. The sequential refits read the same record."""
-        self.regularized[name] = LayerRidge.decide(self.moments[name], self.ridge, self.rows_ridge, shrink, prior)
         st = self.moments[name]
+        self.regularized[name] = LayerRidge.decide(st, self.ridge, self.rows_ridge, shrink, prior)
+        if isinstance(st, OutputMoments):
+            return st  # the method forms W (G + ridge) W^T from it (methods.Whitened)
         g = st.gram
         st.gram = None
         return g
@@ -141,6 +153,9 @@ class LayerRidge:
 
     @staticmethod
     def decide(st: Moments, base: float, rows_ridge: float, shrink: bool, prior: Prior | None) -> "LayerRidge":
+        if isinstance(st, OutputMoments):  # no input Gram: no Ledoit-Wolf estimate and no prior target
+            floor = max(base, rows_ridge * st.n / st.rows if st.rows and shrink else 0.0)
+            return LayerRidge(floor, floor, None, "floor (output-side statistics)", shrunk=shrink)
         if not shrink:
             return LayerRidge(base, base, prior, "floor", shrunk=False)
         rows_floor = rows_ridge * st.n / st.rows if st.rows else 0.0
@@ -162,9 +177,74 @@ def _batches(data: HeldOut, batch_size: int, config: CompressConfig, desc: str):
     return (x for x, _ in bar(data.batches(batch_size), config, desc, total, "batch"))
 
 
-def input_moments(backend, model, records: list[LayerRecord], batches) -> tuple[dict[str, Moments], int]:
-    """``G = sum x x^T`` of every record's inputs over ``batches`` (one pass); and the sample count."""
-    acc = {r.name: Moments(r.matrix_shape[1]) for r in records}
+#: Share of the available memory the calibration statistics may take by default (the rest is the
+#: model, its copies and the activations of a batch; common practice, with margin)
+STATS_SHARE = 0.5
+
+
+@dataclass
+class StatisticsPlan:
+    """Which statistic each layer accumulates, decided from the shapes before any pass: the input
+    Gram G (n x n) where the budget allows, else the output moment W G W^T (m x m, when m < n;
+    stats.OutputMoments), else none (the layer keeps plain factors). Sizes in bytes, float64."""
+
+    budget: int
+    sides: dict[str, str]  # layer name -> "input" or "output"
+    dropped: dict[str, int]  # layer name -> the bytes its smaller statistic would need
+
+    @staticmethod
+    def make(records: list[LayerRecord], budget: int) -> "StatisticsPlan":
+        need = {r.name: 8 * r.matrix_shape[1] ** 2 for r in records}
+        small = {r.name: 8 * min(r.matrix_shape) ** 2 for r in records}
+        sides = {r.name: "input" for r in records}
+        total = sum(need.values())
+        # the layers that save most by switching go first, so the fewest layers lose the input side
+        for r in sorted(records, key=lambda r: need[r.name] - small[r.name], reverse=True):
+            if total <= budget:
+                break
+            m, n = r.matrix_shape
+            if m < n:
+                sides[r.name] = "output"
+                total -= need[r.name] - small[r.name]
+        dropped = {}
+        for r in sorted(records, key=lambda r: small[r.name], reverse=True):
+            if total <= budget:
+                break
+            held = need[r.name] if sides[r.name] == "input" else small[r.name]
+            dropped[r.name] = small[r.name]
+            sides.pop(r.name)
+            total -= held
+        return StatisticsPlan(budget, sides, dropped)
+
+    def bytes(self, records: list[LayerRecord]) -> int:
+        by = {r.name: r for r in records}
+        return sum(8 * (by[n].matrix_shape[1] if side == "input" else by[n].matrix_shape[0]) ** 2
+                   for n, side in self.sides.items())
+
+    def summary(self) -> dict:
+        return {"memory_budget_bytes": int(self.budget),
+                "output_side": sorted(n for n, s in self.sides.items() if s == "output"),
+                "not_calibrated": {n: int(b) for n, b in sorted(self.dropped.items())}}
+
+
+def statistics_budget(config: CompressConfig) -> int:
+    """Bytes the calibration statistics may take: ``--stats-memory`` GiB, else a share of the
+    memory available now."""
+    from .data import _available_memory
+
+    if config.stats_memory is not None:
+        return int(config.stats_memory * 2**30)
+    return int(STATS_SHARE * _available_memory())
+
+
+def input_moments(backend, model, records: list[LayerRecord], batches,
+                  plan: StatisticsPlan | None = None) -> tuple[dict[str, Moments], int]:
+    """``G = sum x x^T`` of every record's inputs over ``batches`` (one pass), or for the layers the
+    ``plan`` puts on the output side ``W G W^T``; and the sample count."""
+    sides = plan.sides if plan is not None else {r.name: "input" for r in records}
+    records = [r for r in records if r.name in sides]
+    acc = {r.name: Moments(r.matrix_shape[1]) if sides[r.name] == "input" else OutputMoments(backend.weight_matrix(r))
+           for r in records}
     samples = backend.stream_inputs(model, records, batches, lambda name, rows: acc[name].add(rows))
     return acc, samples
 
@@ -190,9 +270,12 @@ def calibrate(model, records: list[LayerRecord], data: HeldOut, config: Compress
     if not moments:
         return Calibration(data, {}, [], config.ridge, 0, batch_size, 0)
     backend = backend_for(model)
-    moments, _ = input_moments(backend, model, chosen, _batches(data, batch_size, config, "calibration"))
-    warnings = []
-    for record in chosen:
+    plan = StatisticsPlan.make(chosen, statistics_budget(config))
+    moments, _ = input_moments(backend, model, chosen, _batches(data, batch_size, config, "calibration"), plan)
+    warnings = [f"layer {name!r}: its calibration statistics would need {need / 2**30:.1f} GiB, more than the "
+                f"budget of {plan.budget / 2**30:.1f} GiB allows (--stats-memory); it keeps plain SVD factors"
+                for name, need in plan.dropped.items()]
+    for record in (r for r in chosen if r.name in moments):
         st = moments[record.name]
         if st.gram is None:
             raise InputError(f"--calibration {data.source}: layer {record.name!r} never ran on the calibration inputs")
@@ -204,7 +287,8 @@ def calibrate(model, records: list[LayerRecord], data: HeldOut, config: Compress
                    if config.ridge > 0 else "second moment is rank-deficient and was only floored (--ridge 0)")
             )
     gram_bytes = int(sum(st.nbytes for st in moments.values()))
-    return Calibration(data, moments, warnings, config.ridge, gram_bytes, batch_size, rows_ridge=config.rows_ridge)
+    return Calibration(data, moments, warnings, config.ridge, gram_bytes, batch_size, rows_ridge=config.rows_ridge,
+                       plan=plan)
 
 
 def groups_in_order(stages: list[list[str]], records: dict[str, LayerRecord], groups: int,
@@ -228,7 +312,7 @@ def groups_in_order(stages: list[list[str]], records: dict[str, LayerRecord], gr
 
 
 def sequential_refit(model, records: list[LayerRecord], ranks: dict, cal: Calibration, config: CompressConfig,
-                     stages: list[list[str]]):
+                     stages: list[list[str]], fixed=None):
     """Refit the factorized layers to the *original* outputs from the inputs that the compressed
     layers upstream produce (reduced-rank regression, then whitened truncation), group by group in
     forward ``order``, on one working copy patched in place.
@@ -241,6 +325,10 @@ def sequential_refit(model, records: list[LayerRecord], ranks: dict, cal: Calibr
     against 87.4% for one layer at a time). With one layer per group this is the exact layer-by-
     layer refit; ``config.sequential_groups`` caps the number of groups, hence of passes.
 
+    Layers whose input statistics did not fit the memory budget (output side only, or none) are
+    not refitted: their factors come from ``fixed`` (the plan's factors, ``{name: (A, X)}``) and
+    they enter the working copy with their group.
+
     Returns (the working copy, per-layer fit records, per-layer relative weight errors).
     """
     backend = backend_for(model)
@@ -250,11 +338,16 @@ def sequential_refit(model, records: list[LayerRecord], ranks: dict, cal: Calibr
     fits, errors = {}, {}
     groups = groups_in_order(chosen, by_name, config.sequential_groups)
     batches = [x for x, _ in cal.data.batches(cal.batch_size)]
-    runs = backend.paired_runs(model, working, [by_name[n] for g in groups for n in g], batches)
+    kept = {n for g in groups for n in g if (cal.output_side(n) or cal.uncalibrated(n)) and fixed is not None}
+    runs = backend.paired_runs(model, working, [by_name[n] for g in groups for n in g if n not in kept], batches)
     for group in bar(groups, config, "sequential refit", unit="group"):
-        acc = paired_moments(backend, model, working, [by_name[n] for n in group], batches, runs)
+        refit = [n for n in group if n not in kept]
+        acc = paired_moments(backend, model, working, [by_name[n] for n in refit], batches, runs) if refit else {}
         done = {}
-        for name in group:
+        for name in (n for n in group if n in kept):
+            a, x = done[name] = fixed[name]
+            errors[name] = weight_error(backend.weight_matrix(by_name[name]), a, x)
+        for name in refit:
             st = acc.pop(name)
             # the same ridge on both moments: where the calibration data says nothing, M stays W.
             # A BatchNorm's statistics describe the original model's inputs of this layer: they are

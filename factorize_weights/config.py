@@ -148,6 +148,11 @@ class CompressConfig:
     # (0.05/0.1/0.2/0.5 measured; reports/accuracy_pretrained.md), so it is a constant of the
     # estimator, not an option: Python API only (benchmarks set 0 to reproduce the older rows)
     rows_ridge: float = opt(0.1, low=0, high=10)
+    # None: half the memory available when calibration starts (calibrate.STATS_SHARE)
+    stats_memory: float | None = opt(None, "memory the calibration statistics may take, in GiB (default: half the "
+                                     "available memory); wider layers keep their m x m output moment instead of "
+                                     "the n x n input Gram, or plain factors", group=ADVANCED, low=0,
+                                     open_low=True, metavar="GIB", commands=("compress", "sweep"))
     allow_overlap: bool = opt(False, "allow the same data for --calibration and --heldout", group=CALIBRATION)
     export_onnx: bool = opt(False, "also write model.onnx, checked against the original in onnxruntime",
                             group=EVALUATION, commands=("compress",))

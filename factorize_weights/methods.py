@@ -26,7 +26,7 @@ from .columns import column_factors, column_spectrum
 from .factors import split_factors
 from .records import max_saving_rank
 from .spectra import Spectrum, checked_matrix, choose_method, flip_signs, gram_svd, randomized_svd
-from .stats import ridge
+from .stats import OutputMoments, ridge
 from .whiten import Whitening, whitened_product_svd, whitening
 
 
@@ -141,6 +141,10 @@ class Whitened:
             raise ValueError(f"layer {name!r}: whitened factors need the calibration moments of its inputs")
         alpha = self.ridge if ridge_value is None else ridge_value
         matrix = checked_matrix(name, matrix)
+        if isinstance(moments, OutputMoments):  # a layer too wide for its input Gram (calibrate.py)
+            dec = self.from_left_gram(name, matrix, moments.left_gram(alpha), dtype=dtype, method="output-moment")
+            dec.extra["whitening"]["ridge"] = alpha
+            return dec
         if matrix.shape[0] <= matrix.shape[1]:
             dec = self.decompose_left(name, matrix, ridge(moments, alpha, prior=prior, base=self.ridge), dtype=dtype)
         else:
@@ -157,10 +161,15 @@ class Whitened:
         eigenvectors are the left singular vectors U of W S and the optimal rank-k map is
         [W S]_k S^{-1} = U_k U_k^T W, a projection of W's columns (no Cholesky, no solves; a
         singular G needs no floor). Same factors as :meth:`decompose_whitened` in exact arithmetic."""
+        return Whitened.from_left_gram(name, matrix, (matrix @ gram) @ matrix.T, dtype=dtype)  # W G W^T (m, m)
+
+    @staticmethod
+    def from_left_gram(name: str, matrix: np.ndarray, left_gram: np.ndarray, *, dtype: str = "float32",
+                       method: str = "left-gram") -> Decomposition:
+        """The decomposition from ``W G W^T`` (m x m) alone: U from its eigenvectors, singular
+        values of W S from its eigenvalues, factors U_k and U_k^T W."""
         m, n = matrix.shape
         top = max(max_saving_rank(m, n), 1)
-        wg = matrix @ gram  # (m, n)
-        left_gram = wg @ matrix.T  # (m, m) = W G W^T
         vals, vecs = np.linalg.eigh((left_gram + left_gram.T) / 2.0)
         vals, u = np.maximum(vals[::-1], 0.0), vecs[:, ::-1]
         s = np.sqrt(vals)
@@ -170,7 +179,7 @@ class Whitened:
         right[small] = 0.0  # no energy in that direction: nothing to divide
         keep = _store_dtype(dtype)
         spectrum = Spectrum(name, (m, n), s, float(np.sum(vals)), "exact")
-        extra = {"whitening": {"method": "left-gram", "floor": 0.0, "clamped": 0}}
+        extra = {"whitening": {"method": method, "floor": 0.0, "clamped": 0}}
         return Decomposition(spectrum, np.ascontiguousarray(u[:, :top], dtype=keep), s[:top].copy(),
                              np.ascontiguousarray(right, dtype=keep), extra)
 

@@ -30,7 +30,7 @@ from .progress import bar
 from .records import LayerRecord
 from .resolve import Facts, facts_for, resolve
 from .spectra import Spectrum, checked_matrix, compute_spectrum
-from .stats import Prior, weight_error
+from .stats import OutputMoments, Prior, weight_error
 
 
 @dataclass
@@ -74,13 +74,19 @@ def decompose(records: list[LayerRecord], method, config: CompressConfig, calibr
     SVD), it is truncated for its output error on them, at the ranks its weights' own spectrum
     plans."""
     out = {}
+    plain = methods.make("svd", config)
     for record in bar(selected(records), config, f"{method.name} decomposition"):
         prior = Prior.from_stats(record.input_stats()) if bn_inputs and record.input_stats is not None else None
-        moments = calibration.release(record.name, shrink=config.shrinkage, prior=prior) if calibration is not None else None
+        layer_method, moments = method, None
+        if calibration is not None and calibration.uncalibrated(record.name):
+            layer_method = plain  # too wide for any statistic within the memory budget (a warning says so)
+        elif calibration is not None:
+            moments = calibration.release(record.name, shrink=config.shrinkage, prior=prior)
         try:
-            scale = record.row_scale if config.bn_weights else None
+            # output-side statistics hold W's own products: a row weighting could not be applied to them
+            scale = record.row_scale if config.bn_weights and not isinstance(moments, OutputMoments) else None
             out[record.name] = methods.row_weighted(
-                method, record.name, _weight(record), scale, dtype=record.dtype, moments=moments,
+                layer_method, record.name, _weight(record), scale, dtype=record.dtype, moments=moments,
                 scaled_by=record.scaled_by, ridge_value=calibration.ridge_for(record.name) if calibration else None,
                 prior=prior)
             if prior is not None and moments is None and isinstance(method, methods.PlainSvd):  # no data
@@ -305,7 +311,7 @@ def realize(prep: Prepared, budget: str, *, sources: dict | None = None, latency
     fits, measured = {}, factors.weight_errors
     if prep.sequential and len(factors):
         factorized, fits, measured = sequential_refit(model, prep.records, plan.ranks, prep.calibration, config,
-                                                      prep.order)
+                                                      prep.order, fixed=factors)
     else:
         factorized = backend.rewrite(model, prep.records, factors)
     recovery = None

@@ -87,7 +87,9 @@ def build_report(
     chosen = [r for r in records if r.skip_reason is None]
     layers = []
     for record in chosen:
-        entry = _layer_entry(record, spectra[record.name], plan.ranks[record.name], method,
+        # a layer too wide for any calibration statistic kept plain factors (calibrate.StatisticsPlan)
+        own = "svd" if calibration is not None and calibration.uncalibrated(record.name) else method
+        entry = _layer_entry(record, spectra[record.name], plan.ranks[record.name], own,
                              weight_errors.get(record.name))
         if calibration is not None:
             if record.name in calibration.moments:
@@ -95,7 +97,7 @@ def build_report(
             extra = decompositions[record.name].extra if decompositions else {}
             if "whitening" in extra:
                 entry["whitening"] = dict(extra["whitening"])
-            if method == "whitened" and entry["rank"] is not None and not sequential and not recovery:
+            if own == "whitened" and entry["rank"] is not None and not sequential and not recovery:
                 # Eckart-Young on W S: the relative output error on the calibration inputs
                 entry["calibration_output_error"] = float(spectra[record.name].relative_error(entry["rank"]))
             if fits and record.name in fits:

@@ -75,6 +75,51 @@ class Moments:
         return 0 if self.gram is None else int(self.gram.nbytes)
 
 
+class OutputMoments:
+    """The output side of a layer's calibration statistics, for a layer too wide for its input Gram
+    matrix: ``W G W^T = sum_rows (W x)(W x)^T`` (m x m, float64) and ``tr G = sum ||x||^2``, from the
+    same rows as :class:`Moments`, holding m^2 numbers instead of n^2.
+
+    With m <= n the whitened truncation needs nothing else: (W S)(W S)^T = W G W^T, so its
+    eigenvectors are the left singular vectors of W S and the optimal rank-k map is the projection
+    U_k U_k^T W (the response PCA of Zhang et al., "Accelerating Very Deep Convolutional Networks
+    for Classification and Detection", TPAMI 2016), equal to the input-side factors whenever G is
+    non-singular. The ridge a G + a mu I adds a mu W W^T here (mu = tr G / n)."""
+
+    def __init__(self, weight: np.ndarray):
+        self.w = np.asarray(weight, dtype=np.float64)  # (m, n): the layer's matrix view
+        self.n = int(self.w.shape[1])
+        self.gram: np.ndarray | None = None  # (m, m)
+        self.rows = 0
+        self.trace = 0.0
+
+    def add(self, rows: np.ndarray) -> None:
+        """Add a block of input rows (r, n)."""
+        r = np.asarray(rows, dtype=np.float64)
+        if r.ndim != 2 or r.shape[1] != self.n:
+            raise ValueError(f"expected rows of width {self.n}; got shape {r.shape}")
+        y = r @ self.w.T  # (r, m): the layer's outputs without bias
+        g = y.T @ y
+        self.gram = g if self.gram is None else self.gram + g
+        self.rows += r.shape[0]
+        self.trace += float(np.einsum("ij,ij->", r, r))
+
+    def left_gram(self, alpha: float) -> np.ndarray:
+        """``W (G + alpha mu I) W^T`` with ``mu = tr G / n`` (the relative ridge of :func:`ridge`)."""
+        out = self.gram.copy()
+        if alpha > 0:
+            out += alpha * (self.trace / self.n) * (self.w @ self.w.T)
+        return out
+
+    def shrinkage(self, prior=None) -> float:
+        """Not available on the output side (Ledoit-Wolf needs ``||G||_F``): 0, the floor decides."""
+        return 0.0
+
+    @property
+    def nbytes(self) -> int:
+        return 0 if self.gram is None else int(self.gram.nbytes)
+
+
 class CrossMoments:
     """For paired rows x (original inputs) and x' (the inputs the compressed model produces on the
     same samples): ``C = sum x x'^T`` and ``G' = sum x' x'^T`` (both n x n, float64), and how far
