@@ -121,10 +121,13 @@ def summary(report: dict, out=None, files: list[str] | None = None) -> list[str]
                      f"{b['units']} allowed)")
     else:
         lines.append(f"budget {b['given']}: every layer within it")
-    mb = 4 / 2**20
-    lines.append(f"parameters {t['model_params_before']:,} -> {t['model_params_after']:,} "
-                 f"({100 * t['params_ratio']:.1f}% of the selected layers); float32 size "
-                 f"{t['model_params_before'] * mb:.2f} -> {t['model_params_after'] * mb:.2f} MiB")
+    mb = 4 / 1e6  # float32 bytes, in MB
+    whole = t["model_params_after"] / t["model_params_before"] if t["model_params_before"] else 1.0
+    # each count beside its own share: the selected layers' (what the budget is of) and the whole model's
+    lines.append(f"parameters: selected layers {t['params_before']:,} -> {t['params_after']:,} "
+                 f"({100 * t['params_ratio']:.1f}%); whole model {t['model_params_before']:,} -> "
+                 f"{t['model_params_after']:,} ({100 * whole:.1f}%); float32 "
+                 f"{t['model_params_before'] * mb:.2f} -> {t['model_params_after'] * mb:.2f} MB")
     m = report.get("metric")
     if m:
         lines.append(f"held-out {m['name']} {fmt_value(m['name'], m['before'])} -> {fmt_value(m['name'], m['after'])} "
@@ -133,7 +136,8 @@ def summary(report: dict, out=None, files: list[str] | None = None) -> list[str]
     if lat:
         lines.append(f"latency {lat['before_ms']:.3g} -> {lat['after_ms']:.3g} ms (x{lat['speedup']:.2f}; FLOPs predict "
                      f"x{lat['predicted_speedup'] or 1:.2f}; {lat['runtime']}, batch {lat['batch']}, "
-                     f"{lat['threads']} thread{'s' if lat['threads'] != 1 else ''})")
+                     f"{lat['threads']} thread{'s' if lat['threads'] != 1 else ''})"
+                     + ("; SLOWER than the original on this CPU" if lat["speedup"] < 1 else ""))
     if out is None:
         lines.append("nothing was written (no --out)")
     else:

@@ -259,3 +259,18 @@ def test_report_html_shows_the_budget_search(tmp_path, capsys):
     tried = json.loads((out / "report.json").read_text())["search"]["tried"]
     assert sections["search"] == 1 + len(tried)  # header + one row per budget tried
     assert "optimistic" in (out / "report.html").read_text()
+
+
+def test_the_terminal_summary_gives_each_count_its_own_share(tmp_path, capsys):
+    # with layer 9 skipped the selected layers' share and the whole model's differ; both are
+    # recomputed here from the report's own totals (report.json is the reference)
+    code, out, err = run(capsys, "compress", "--demo", "--budget", "params=0.5", "--skip", "9", "-q",
+                         "--latency-repeats", "0", "--out", tmp_path / "o")
+    assert code == 0, err
+    t = json.loads((tmp_path / "o" / "report.json").read_text())["totals"]
+    line = next(x for x in out.splitlines() if x.startswith("parameters:"))
+    selected = 100 * t["params_after"] / t["params_before"]
+    whole = 100 * t["model_params_after"] / t["model_params_before"]
+    assert abs(selected - whole) > 5
+    assert f"selected layers {t['params_before']:,} -> {t['params_after']:,} ({selected:.1f}%)" in line
+    assert f"whole model {t['model_params_before']:,} -> {t['model_params_after']:,} ({whole:.1f}%)" in line
