@@ -312,7 +312,7 @@ def groups_in_order(stages: list[list[str]], records: dict[str, LayerRecord], gr
 
 
 def sequential_refit(model, records: list[LayerRecord], ranks: dict, cal: Calibration, config: CompressConfig,
-                     stages: list[list[str]], fixed=None):
+                     stages: list[list[str]], fixed=None):  # fixed: needed when cal has output-side layers
     """Refit the factorized layers to the *original* outputs from the inputs that the compressed
     layers upstream produce (reduced-rank regression, then whitened truncation), group by group in
     forward ``order``, on one working copy patched in place.
@@ -338,7 +338,9 @@ def sequential_refit(model, records: list[LayerRecord], ranks: dict, cal: Calibr
     fits, errors = {}, {}
     groups = groups_in_order(chosen, by_name, config.sequential_groups)
     batches = [x for x, _ in cal.data.batches(cal.batch_size)]
-    kept = {n for g in groups for n in g if (cal.output_side(n) or cal.uncalibrated(n)) and fixed is not None}
+    kept = {n for g in groups for n in g if cal.output_side(n) or cal.uncalibrated(n)}
+    if kept and fixed is None:  # a caller's bug: these layers have no n x n statistics to refit from
+        raise ValueError(f"sequential_refit: layers {sorted(kept)} kept no input moments; pass their factors as fixed")
     runs = backend.paired_runs(model, working, [by_name[n] for g in groups for n in g if n not in kept], batches)
     for group in bar(groups, config, "sequential refit", unit="group"):
         refit = [n for n in group if n not in kept]

@@ -31,8 +31,7 @@ def fold_constants(model: OnnxModel) -> tuple[OnnxModel, int]:
 
     from onnx import numpy_helper
 
-    graph = model.graph
-    if not any(n.op_type == "Constant" or n.op_type in FOLDABLE for n in graph.node):
+    if not _would_fold(model.graph):  # most graphs: no copy of the model at all
         return model, 0
     proto = copy.deepcopy(model.proto)
     graph = proto.graph
@@ -78,6 +77,20 @@ def fold_constants(model: OnnxModel) -> tuple[OnnxModel, int]:
     del graph.initializer[:]
     graph.initializer.extend(live)
     return OnnxModel(proto, model.path, model.external_data), folded
+
+
+def _would_fold(graph) -> bool:
+    """Whether :func:`fold_constants` would fold any node, decided on names alone (no copy, no
+    evaluation): a Constant node, or a foldable op whose inputs are all constants read once."""
+    consts = {t.name: t for t in graph.initializer}
+    inputs = {i.name for i in graph.input}
+    uses = _uses(graph)
+    for node in graph.node:
+        if node.op_type == "Constant" and not _subgraphs(node):
+            return True
+        if node.op_type in FOLDABLE and _foldable_inputs(node, consts, inputs, uses):
+            return True
+    return False
 
 
 def _foldable_inputs(node, consts: dict, inputs: set, uses: Counter) -> bool:
