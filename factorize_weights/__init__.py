@@ -32,7 +32,7 @@ _EXPORTS = {
     "prepare": "pipeline", "realize": "pipeline", "selected": "pipeline",
     "LayerRecord": "records", "break_even_rank": "records",
     "Spectrum": "spectra", "compute_spectrum": "spectra", "randomized_svd": "spectra",
-    "load_factorized": "store",
+    "load_factorized": "store", "open_model": "store",
     "search_budget": "sweep",
 }
 

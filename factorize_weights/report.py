@@ -14,7 +14,8 @@ from .data import HeldOut
 from .metrics import MetricResult
 from .records import LayerRecord
 from .spectra import Spectrum
-from .terminal import fmt_change, fmt_value
+from .formatting import (fmt_change, fmt_count, fmt_error, fmt_kept, fmt_mb, fmt_ms, fmt_points, fmt_rank,
+                         fmt_ratio, fmt_value)
 
 
 def _layer_entry(record: LayerRecord, spectrum: Spectrum, rank: int | None, method: str,
@@ -213,12 +214,52 @@ def _rank_for(s: Spectrum, target: float) -> int | None:
 # ---------------------------------------------------------------- text renderings
 
 
-def fmt_int(n) -> str:
-    return f"{int(n):,}"
+fmt_int = fmt_count  # the names the renderers of this module use
+fmt_metric = fmt_value
 
 
-def fmt_metric(name: str, value: float) -> str:
-    return fmt_value(name, value)
+def speed_verdict(report: dict) -> str | None:
+    """Whether the result is faster or slower than the original where it was measured (the
+    factorized model, and the int8 variants when they were compared), or None when nothing was timed."""
+    lat, q = report.get("latency"), report.get("int8")
+    said = []
+    if lat:
+        how = f"{lat['runtime']}, batch {lat['batch']}, {lat['threads']} thread{'s' if lat['threads'] != 1 else ''}"
+        if lat["speedup"] < 1:
+            said.append(f"SLOWER than the original on this CPU ({fmt_ratio(lat['speedup'])} speed, {how}): try a "
+                        "smaller budget, or time it where it will run (docs/latency.md)")
+        else:
+            said.append(f"{fmt_ratio(lat['speedup'])} the original's speed on this CPU ({how})")
+    if q:
+        ms = {v["name"]: v["latency_ms"] for v in q["variants"]}
+        if ms.get("factorized+int8") and ms.get("factorized") and ms["factorized+int8"] > ms["factorized"]:
+            said.append(f"factorized+int8 is SLOWER than the float32 factorized model in {q['runtime']} "
+                        f"({fmt_ms(ms['factorized+int8'])} against {fmt_ms(ms['factorized'])})")
+    return "; ".join(said) or None
+
+
+def next_steps(report: dict, out) -> list[str]:
+    """How to use the result: in Python (rebuilt from the original), in onnxruntime where there is
+    an .onnx file, and whether it is faster or slower than the original."""
+    if out is None:
+        return []
+    out = str(out).rstrip("/")
+    src, files = report.get("sources") or {}, report.get("files") or {}
+    lines = []
+    if src.get("model") and "open_args" in src:  # opened by name (the CLI): the same names open it again
+        args = "".join(f", {k}={v!r}" for k, v in src["open_args"].items())
+        lines.append(f"Python: small = factorize_weights.load_factorized(factorize_weights.open_model("
+                     f"{src['model']!r}{args}), {out!r})")
+    for name in ("model.onnx", "model.int8.onnx"):
+        if name in files:
+            lines.append(f"onnxruntime: onnxruntime.InferenceSession({out + '/' + name!r})")
+    size = sum(files.values())
+    if size:
+        lines.append("size on disk: " + ", ".join(f"{n} {fmt_mb(b)}" for n, b in files.items()))
+    verdict = speed_verdict(report)
+    if verdict:
+        lines.append(f"speed: {verdict}")
+    return lines
 
 
 def _versions() -> dict:
@@ -245,7 +286,8 @@ def summary_line(report: dict) -> str:
     text = (
         f"budget {b['given']}: selected layers {fmt_int(t['params_before'])} -> {fmt_int(t['params_after'])} "
         f"parameters ({100 * t['params_ratio']:.1f}%), whole model {fmt_int(t['model_params_before'])} -> "
-        f"{fmt_int(t['model_params_after'])}"
+        f"{fmt_int(t['model_params_after'])} (float32 {fmt_mb(4 * t['model_params_before'])} -> "
+        f"{fmt_mb(4 * t['model_params_after'])})"
     )
     if "flops_before" in t:
         text += (f"; multiply-adds per sample {fmt_int(t['flops_before'])} -> {fmt_int(t['flops_after'])} "
@@ -255,8 +297,8 @@ def summary_line(report: dict) -> str:
     lat = report.get("latency")
     if lat:
         text += (f"; latency ({lat['runtime']}, batch {lat['batch']}, {lat['threads']} thread"
-                 f"{'s' if lat['threads'] != 1 else ''}) {lat['before_ms']:.3f} -> {lat['after_ms']:.3f} ms "
-                 f"(x{lat['speedup']:.2f}; FLOPs predict x{lat['predicted_speedup'] or 1:.2f})")
+                 f"{'s' if lat['threads'] != 1 else ''}) {fmt_ms(lat['before_ms'])} -> {fmt_ms(lat['after_ms'])} "
+                 f"({fmt_ratio(lat['speedup'])}; FLOPs predict {fmt_ratio(lat['predicted_speedup'] or 1)})")
     m = report.get("metric")
     if m:
         change = fmt_change(m["name"], m["before"], m["after"], m["higher_is_better"])
@@ -276,13 +318,12 @@ def layer_table(report: dict) -> list[str]:
     for e in report["layers"]:
         cells = [
             f"`{e['name']}`", e["kind"], "x".join(str(v) for v in e["matrix_shape"]),
-            "dense" if e["rank"] is None else str(e["rank"]), str(e["break_even_rank"]),
+            fmt_rank(e["rank"]), str(e["break_even_rank"]),
             fmt_int(e["params_before"]), fmt_int(e["params_after"]),
-            f"{100 * e['energy_kept']:.2f}%", f"{e['weight_error']:.4f}",
+            fmt_kept(e["energy_kept"], e["rank"]), fmt_error(e["weight_error"], e["rank"]),
         ]
         if has_out:
-            oe = e.get("output_error")
-            cells.append("" if oe is None else f"{oe:.4f}")
+            cells.append(fmt_error(e.get("output_error"), e["rank"]))
         rows.append("| " + " | ".join(cells) + " |")
     return rows
 
@@ -301,8 +342,8 @@ def plan_warnings(layers: list[dict], allocation: str) -> list[str]:
         return []
     worst = min(low, key=lambda e: e["energy_kept"])
     return [f"{len(low)} layer(s) keep less than {AGGRESSIVE_KEPT:.0%} of their energy (lowest: {worst['name']} at "
-            f"rank {worst['rank']}, {worst['energy_kept']:.1%}); without data the plan cannot see what that does to "
-            "the output: give --calibration data (ranks then follow each layer's measured effect) or a milder --budget"]
+            f"rank {worst['rank']}, {worst['energy_kept']:.1%}); without calibration data the plan cannot see what that "
+            "does to the output: give --calibration data (ranks then follow each layer's measured effect) or a milder --budget"]
 
 
 def _allocation(allocation: str, effects: dict | None, timings: dict, config) -> dict:
@@ -318,6 +359,18 @@ def _allocation(allocation: str, effects: dict | None, timings: dict, config) ->
 
 def render_markdown(report: dict) -> str:
     lines = ["# Factorization report", "", summary_line(report) + ".", ""]
+    steps = next_steps(report, "OUT") if report.get("files") else []
+    if steps:  # the folder's own path is not known to a report read elsewhere: OUT stands for it
+        lines += ["## What next", "", "With `OUT` the folder of this report:", ""] + [f"- {x}" for x in steps] + [""]
+    q = report.get("int8")
+    if q:
+        lines += ["## int8 on top", "", f"{q['quantization']}; {q['runtime']}, batch {q['batch']}, "
+                  f"{q['threads']} thread(s). Metric: {q['metric']} (change against the original).", "",
+                  "| variant | size on disk | metric | change | median ms |", "|---|---:|---:|---:|---:|"]
+        lines += [f"| {v['name']} | {fmt_mb(v['size_bytes'])} | {fmt_metric(q['metric'], v['metric'])} | "
+                  f"{_int8_change(q['metric'], v)} | {'—' if v['latency_ms'] is None else format(v['latency_ms'], '.3f')} |"
+                  for v in q["variants"]]
+        lines.append("")
     b = report["budget"]
     what = {"svd": "truncated SVD of the weights", "whitened": "whitened truncated SVD on calibration inputs",
             "columns": "columns of W chosen by pivoted QR, least-squares second factor"}[report["method"]]
@@ -350,19 +403,11 @@ def render_markdown(report: dict) -> str:
                   "", f"Measured speedup x{lat['speedup']:.2f}; the plan's FLOP ratio "
                   f"{lat['flop_ratio'] if lat['flop_ratio'] is None else round(lat['flop_ratio'], 3)} predicts "
                   f"x{lat['predicted_speedup'] or 1:.2f}."]
-    q = report.get("int8")
-    if q:
-        lines += ["", "## int8 on top", "", f"{q['quantization']}; {q['runtime']}, batch {q['batch']}, "
-                  f"{q['threads']} thread(s). Metric: {q['metric']} (change against the original).", "",
-                  "| variant | size on disk | metric | change | median ms |", "|---|---:|---:|---:|---:|"]
-        lines += [f"| {v['name']} | {fmt_int(v['size_bytes'])} B | {fmt_metric(q['metric'], v['metric'])} | "
-                  f"{_int8_change(q['metric'], v)} | {'' if v['latency_ms'] is None else format(v['latency_ms'], '.3f')} |"
-                  for v in q["variants"]]
     cal = report.get("calibration")
     if cal:
         lines += ["", f"Calibration: {cal['samples']} samples from `{cal['source']}` (SHA-256 "
-                  f"{(cal['sha256'] or 'n/a')[:16]}...), Gram matrices {cal['gram_bytes'] / 2**20:.1f} MiB, "
-                  f"peak process memory {cal['peak_rss_bytes'] / 2**20:.0f} MiB."]
+                  f"{(cal['sha256'] or 'n/a')[:16]}...), Gram matrices {fmt_mb(cal['gram_bytes'])}, "
+                  f"peak process memory {fmt_mb(cal['peak_rss_bytes'])}."]
         lines += [f"- warning: {w}" for w in cal["warnings"]]
     if report.get("export"):
         e = report["export"]
@@ -370,12 +415,14 @@ def render_markdown(report: dict) -> str:
                   f"max |difference| {e['max_abs_diff']:.3g} (tolerance {e['tolerance']:.3g})."]
     sr = report.get("search")
     if sr:
+        name = (report.get("metric") or {}).get("name", "")
         chooser = "the selection set" if sr.get("selection") else "the held-out set (so the held-out figure is optimistic)"
         lines += ["", "## Budget search", "",
-                  f"The smallest params budget whose drop stays within {sr['keep_within']:g} {sr['unit']}, chosen on "
+                  f"The smallest params budget whose drop stays within {fmt_points(name, sr['keep_within'])}, chosen on "
                   f"{chooser}: `{sr['chosen']}` after {sr['evaluations']} evaluations.", "",
                   "| budget | metric | drop | within |", "|---|---:|---:|---|"]
-        lines += [f"| `{t['budget']}` | {t['metric']:.4g} | {t['drop']:.4g} | {'yes' if t['within'] else 'no'} |"
+        lines += [f"| `{t['budget']}` | {fmt_value(name, t['metric'])} | {fmt_points(name, t['drop'])} | "
+                  f"{'yes' if t['within'] else 'no'} |"
                   for t in sr["tried"]]
     lines += per_class_lines(report)
     lines += ["", "## Layers", ""] + layer_table(report)
@@ -403,21 +450,6 @@ def per_class_lines(report: dict) -> list[str]:
         lines.append(f"| {r['class']} | {r['samples']} | {r['before']:.2f}% | {r['after']:.2f}% | "
                      f"{fmt_change('top1', r['before'], r['after'], True)} |")
     return lines
-
-
-def render_inspect(report: dict) -> str:
-    lines = [f"model parameters: {fmt_int(report['model_params'])}", "",
-             "| layer | kind | matrix | params | break-even | rank for 90% energy | rank for 99% energy | top singular value |",
-             "|---|---|---|---:|---:|---:|---:|---:|"]
-    for e in report["layers"]:
-        s = e["spectrum"]["singular_values"]
-        lines.append(
-            f"| `{e['name']}` | {e['kind']} | {'x'.join(map(str, e['matrix_shape']))} | {fmt_int(e['params'])} | "
-            f"{e['break_even_rank']} | {e['rank_for_energy_90']} | {e['rank_for_energy_99']} | {s[0]:.4g} |"
-        )
-    if report["skipped"]:
-        lines += ["", "skipped:"] + [f"  {s['name']} ({s['kind']}): {s['reason']}" for s in report["skipped"]]
-    return "\n".join(lines)
 
 
 def schema(name: str = "report") -> dict:

@@ -159,6 +159,10 @@ def write_run_files(folder: Path, model, records, plan: Plan, report: dict, conf
     write_model(model, folder)
     for name, src in (extra or {}).items():
         shutil.move(str(src), folder / name)
+    # sizes on disk of what holds the model (every output shows them in MB); the report is the
+    # caller's dict, so the terminal summary sees them too
+    report["files"] = {p.name: p.stat().st_size for p in sorted(folder.iterdir())
+                       if p.is_file() and (p.name.startswith("model.") or p.suffix == ".onnx")}
     _dump(folder / "plan.json", plan_dict(records, plan, config, report.get("method", "svd")))
     _dump(folder / "report.json", report)
     (folder / "report.md").write_text(render_markdown(report), encoding="utf-8")
@@ -205,3 +209,16 @@ def load_factorized(model, folder: str | Path):
 
     folder = Path(folder)
     return rebuild(model, folder, plan_layers(folder))
+
+
+def open_model(spec: str, weights: str | None = None, *, weights_key: str | None = None,
+               factory_weights: bool = False):
+    """The model named as on the command line: an ONNX file, a model folder, or ``FILE.py:FACTORY``
+    / ``package.module:FACTORY`` with its checkpoint (``weights``; or ``factory_weights=True``
+    when the factory loads its own). With :func:`load_factorized` it rebuilds a saved result::
+
+        small = load_factorized(open_model("net.py:build_net", weights="net.safetensors"), "compressed/")
+    """
+    from .backends.opening import open_model as _open
+
+    return _open(spec, weights=weights, weights_key=weights_key, factory_weights=factory_weights)[0]

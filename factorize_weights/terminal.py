@@ -9,41 +9,24 @@ import os
 import shutil
 import sys
 
-from .metrics import PERCENT
+from .report import next_steps
+from .formatting import (fmt_change, fmt_count, fmt_error, fmt_kept, fmt_mb, fmt_ms, fmt_rank, fmt_ratio,
+                         fmt_share, fmt_value)
+
+__all__ = ["fmt_change", "fmt_value", "table", "layer_rows", "summary", "counted"]
 #: columns of the layer table left out first on a narrow terminal (report.md keeps them)
 OPTIONAL_LAYER_COLUMNS = ("break-even", "params before", "kind", "energy kept", "matrix")
 
 
-def fmt_value(name: str, value: float) -> str:
-    """A metric value: percentages with two decimals; anything else with four significant digits
-    (0.000338 stays 0.000338, never 0.00)."""
-    return f"{value:.2f}%" if name in PERCENT else f"{value:.4g}"
-
-
-def fmt_change(name: str, before: float, after: float, higher_is_better: bool) -> str:
-    """``drop 0.62 points`` / ``gain 0.19 points`` / ``no change``; error metrics (lower is better)
-    also as a ratio, so a regression from 0.000338 to 0.00468 reads "x13.8 worse"."""
-    worse = (before - after) if higher_is_better else (after - before)
-    if worse == 0:
-        return "no change"
-    word = "drop" if worse > 0 else "gain"
-    unit = " points" if name in PERCENT else ""
-    text = f"{word} {abs(worse):.4g}{unit}"
-    if not higher_is_better and before > 0:
-        ratio = after / before
-        text += f", x{ratio:.3g} {'worse' if ratio > 1 else 'better'}"
-    return text
-
-
 def table(head: list[str], rows: list[list[str]], width: int | None = None, right_from: int = 2,
-          optional: tuple[str, ...] = ()) -> list[str]:
+          optional: tuple[str, ...] = (), whole: str = "report.md") -> list[str]:
     """An aligned plain-text table; columns from ``right_from`` on are right-aligned. When it is
     wider than ``width`` (the terminal's; no limit when the output is not a terminal and COLUMNS
-    is unset, so logs keep everything), in this order: the first column's dotted names are
-    abbreviated, every part but the last to its first letter with indices kept
-    (``_blocks.13._project_conv`` becomes ``_b.13._project_conv``) while they stay distinct; the
+    is unset, so logs keep everything), in this order: the first column's dotted names lose the
+    prefix they all share (``common_prefix``); they are abbreviated, every part but the last two
+    to its first letter with indices kept (``abbreviate``), while they stay distinct; the
     ``optional`` columns are left out, in the order given; the names are cut in the middle
-    (``...``). A last line then says what was shortened."""
+    (``...``). A last line then says what was shortened and where the whole table is (``whole``)."""
     if width is None:
         width = shutil.get_terminal_size((120, 24)).columns \
             if "COLUMNS" in os.environ or sys.stdout.isatty() else 1 << 30
@@ -55,7 +38,14 @@ def table(head: list[str], rows: list[list[str]], width: int | None = None, righ
 
     said = []
     if too_wide() > 0:
-        short = [_abbreviate(str(r[0])) for r in rows]
+        names = [str(r[0]) for r in rows]
+        prefix = common_prefix(names)
+        if prefix:
+            for r in rows:
+                r[0] = str(r[0])[len(prefix):]
+            said.append(f"names without their common prefix {prefix!r}")
+    if too_wide() > 0:
+        short = [abbreviate(str(r[0])) for r in rows]
         if len(set(short)) == len({str(r[0]) for r in rows}) and any(n != str(r[0]) for n, r in zip(short, rows)):
             for r, n in zip(rows, short):
                 r[0] = n
@@ -75,21 +65,40 @@ def table(head: list[str], rows: list[list[str]], width: int | None = None, righ
     over = too_wide()
     if over > 0:
         cut = max(12, max(len(str(r[0])) for r in [head] + rows) - over)
-        rows = [[_middle(str(r[0]), cut)] + r[1:] for r in rows]
-        said.append("long names cut")
+        cut_rows = [[_middle(str(r[0]), cut)] + r[1:] for r in rows]
+        if cut_rows != rows:
+            rows = cut_rows
+            said.append("long names cut")
     widths = [max(len(str(r[i])) for r in [head] + rows) for i in range(len(head))]
 
     def line(cells):
         return "  ".join(str(c).rjust(w) if i >= right_from else str(c).ljust(w)
                          for i, (c, w) in enumerate(zip(cells, widths))).rstrip()
 
-    note = [f"(shortened to fit the terminal: {'; '.join(said)}; report.md has the whole table)"] if said else []
+    note = [f"(shortened to fit the terminal: {'; '.join(said)}; {whole} has the whole table)"] if said else []
     return [line(head), line(["-" * w for w in widths])] + [line(r) for r in rows] + note
 
 
-def _abbreviate(name: str) -> str:
+def common_prefix(names: list[str]) -> str:
+    """The dotted prefix (whole parts, ending in ".") that every name shares, leaving each name at
+    least its last two parts: ``bert.encoder.layer.0.attention.self.query`` and
+    ``bert.encoder.layer.1.output.dense`` share ``bert.encoder.layer.``."""
+    if len(names) < 2:
+        return ""
+    split = [n.split(".") for n in names]
+    keep = min(len(p) for p in split) - 2
+    n = 0
+    while n < keep and len({p[n] for p in split}) == 1:
+        n += 1
+    return ".".join(split[0][:n]) + "." if n else ""
+
+
+def abbreviate(name: str) -> str:
+    """Every part but the last two to its first letter (two when it starts with "_"), indices
+    kept: ``encoder.layer.0.attention.self.query`` becomes ``e.l.0.a.self.query``."""
     parts = name.split(".")
-    return ".".join([p if p.isdigit() else p[: 2 if p.startswith("_") else 1] for p in parts[:-1]] + parts[-1:])
+    head, tail = parts[:-2], parts[-2:]
+    return ".".join([p if p.isdigit() else p[: 2 if p.startswith("_") else 1] for p in head] + tail)
 
 
 def _middle(text: str, n: int) -> str:
@@ -103,17 +112,17 @@ def layer_rows(report: dict) -> tuple[list[str], list[list[str]]]:
     rows = []
     for e in report["layers"]:
         row = [e["name"], e["kind"], "x".join(str(v) for v in e["matrix_shape"]),
-               "dense" if e["rank"] is None else str(e["rank"]), str(e["break_even_rank"]),
-               f"{e['params_before']:,}", f"{e['params_after']:,}", f"{100 * e['energy_kept']:.2f}%",
-               f"{e['weight_error']:.4g}"]
+               fmt_rank(e["rank"]), str(e["break_even_rank"]), fmt_count(e["params_before"]),
+               fmt_count(e["params_after"]), fmt_kept(e["energy_kept"], e["rank"]), fmt_error(e["weight_error"], e["rank"])]
         if has_out:
-            row.append("" if e.get("output_error") is None else f"{e['output_error']:.4g}")
+            row.append(fmt_error(e.get("output_error"), e["rank"]))
         rows.append(row)
     return head, rows
 
 
-def summary(report: dict, out=None, files: list[str] | None = None) -> list[str]:
-    """The few lines after the table: budget, parameters and size, metric, latency, files."""
+def summary(report: dict, out=None, files: list[str] | None = None, hints: tuple[str, ...] = ()) -> list[str]:
+    """The few lines after the table: budget, parameters and size, metric, latency, files, and
+    what next (how to load the result, whether it is faster; ``hints`` from the caller)."""
     t, b = report["totals"], report["budget"]
     lines = []
     if b["limit"] is not None:
@@ -121,28 +130,46 @@ def summary(report: dict, out=None, files: list[str] | None = None) -> list[str]
                      f"{b['units']} allowed)")
     else:
         lines.append(f"budget {b['given']}: every layer within it")
-    mb = 4 / 1e6  # float32 bytes, in MB
     whole = t["model_params_after"] / t["model_params_before"] if t["model_params_before"] else 1.0
     # each count beside its own share: the selected layers' (what the budget is of) and the whole model's
-    lines.append(f"parameters: selected layers {t['params_before']:,} -> {t['params_after']:,} "
-                 f"({100 * t['params_ratio']:.1f}%); whole model {t['model_params_before']:,} -> "
-                 f"{t['model_params_after']:,} ({100 * whole:.1f}%); float32 "
-                 f"{t['model_params_before'] * mb:.2f} -> {t['model_params_after'] * mb:.2f} MB")
+    lines.append(f"parameters: selected layers {fmt_count(t['params_before'])} -> {fmt_count(t['params_after'])} "
+                 f"({fmt_share(t['params_ratio'])}); whole model {fmt_count(t['model_params_before'])} -> "
+                 f"{fmt_count(t['model_params_after'])} ({fmt_share(whole)}); float32 "
+                 f"{fmt_mb(4 * t['model_params_before'])} -> {fmt_mb(4 * t['model_params_after'])}")
     m = report.get("metric")
     if m:
         lines.append(f"held-out {m['name']} {fmt_value(m['name'], m['before'])} -> {fmt_value(m['name'], m['after'])} "
                      f"({fmt_change(m['name'], m['before'], m['after'], m['higher_is_better'])}; {counted(m)})")
     lat = report.get("latency")
     if lat:
-        lines.append(f"latency {lat['before_ms']:.3g} -> {lat['after_ms']:.3g} ms (x{lat['speedup']:.2f}; FLOPs predict "
-                     f"x{lat['predicted_speedup'] or 1:.2f}; {lat['runtime']}, batch {lat['batch']}, "
+        lines.append(f"latency {fmt_ms(lat['before_ms'])} -> {fmt_ms(lat['after_ms'])} ({fmt_ratio(lat['speedup'])}; "
+                     f"FLOPs predict {fmt_ratio(lat['predicted_speedup'] or 1)}; {lat['runtime']}, batch {lat['batch']}, "
                      f"{lat['threads']} thread{'s' if lat['threads'] != 1 else ''})"
                      + ("; SLOWER than the original on this CPU" if lat["speedup"] < 1 else ""))
+    q = report.get("int8")
+    if q:
+        lines += int8_lines(q)
+    steps = next_steps(report, out) + list(hints)
+    if out is not None:
+        lines.append(f"wrote {str(out).rstrip('/')}/ ({', '.join(files or [])})")
+    if steps:
+        lines += ["next:"] + [f"  {s}" for s in steps]
     if out is None:
         lines.append("nothing was written (no --out)")
-    else:
-        lines.append(f"wrote {str(out).rstrip('/')}/ ({', '.join(files or [])})")
     return lines
+
+
+def int8_lines(q: dict) -> list[str]:
+    """The int8 comparison as a small aligned table (it is what most edge deployments decide on)."""
+    head = ["variant", "size", q["metric"], "change", "median ms"]
+    rows = []
+    for v in q["variants"]:
+        before = v["metric"] - v["delta"]
+        rows.append([v["name"], fmt_mb(v["size_bytes"]), fmt_value(q["metric"], v["metric"]),
+                     fmt_change(q["metric"], before, v["metric"], q["metric"] not in ("mse",)),
+                     "—" if v["latency_ms"] is None else fmt_ms(v["latency_ms"])[:-3]])
+    return [f"int8 ({q['quantization']}; {q['runtime']}, batch {q['batch']}, {q['threads']} thread(s)):"] + \
+        ["  " + line for line in table(head, rows, right_from=1)]
 
 
 def counted(metric: dict) -> str:
@@ -152,3 +179,47 @@ def counted(metric: dict) -> str:
         return f"{metric['samples']} samples"
     by = f", {' and '.join(pos['masked_by'])} honoured" if pos["masked_by"] else ""
     return f"{pos['positions']} positions{by}"
+
+
+def inspect_lines(report: dict) -> list[str]:
+    """``inspect``: every layer's shape, break-even rank and the ranks that keep 90% / 99% of its
+    energy, in the same aligned table as ``compress``."""
+    head = ["layer", "kind", "matrix", "params", "break-even", "rank 90% energy", "rank 99% energy", "top singular value"]
+    rows = [[e["name"], e["kind"], "x".join(map(str, e["matrix_shape"])), fmt_count(e["params"]),
+             str(e["break_even_rank"]), str(e["rank_for_energy_90"]), str(e["rank_for_energy_99"]),
+             f"{e['spectrum']['singular_values'][0]:.4g}"] for e in report["layers"]]
+    lines = [f"model parameters: {fmt_count(report['model_params'])} (float32 {fmt_mb(4 * report['model_params'])})", ""]
+    lines += table(head, rows, optional=("break-even", "kind", "top singular value", "matrix"), whole="--json")
+    if report["skipped"]:
+        lines += ["", "skipped:"] + [f"  {s['name']} ({s['kind']}): {s['reason']}" for s in report["skipped"]]
+    return lines
+
+
+def sweep_lines(doc: dict) -> list[str]:
+    """``sweep``: one row per budget after the original's, aligned like the other commands."""
+    points = doc["points"]
+    name = next((p["metric"]["name"] for p in points if p["metric"]), None)
+    head = ["budget", "kept", "params after", "factorized", "weight error"]
+    head += [f"held-out {name}", "change"] if name else []
+    has_lat = any(p["latency"] for p in points)
+    head += ["latency ms"] if has_lat else []
+    rows = []
+    if points:
+        p0 = points[0]
+        row = ["original", "100.0%", fmt_count(p0["params_before"]), "0", "—"]
+        row += [fmt_value(name, p0["metric"]["before"]), ""] if name else []
+        row += [fmt_ms(p0["latency"]["before_ms"])[:-3] if p0["latency"] else "—"] if has_lat else []
+        rows.append(row)
+    for p in points:
+        m, lat = p["metric"], p["latency"]
+        row = [p["budget"], f"{p['params_ratio_pct']:.1f}%", fmt_count(p["params_after"]), str(p["layers_factorized"]),
+               f"{p['mean_weight_error']:.4g}"]
+        if name:
+            row += [fmt_value(name, m["after"]), fmt_change(name, m["before"], m["after"], m["higher_is_better"])] if m \
+                else ["—", ""]
+        if has_lat:
+            row += [fmt_ms(lat["after_ms"])[:-3] if lat else "—"]
+        rows.append(row)
+    secs = doc["wall_seconds"]
+    return [f"sweep, method {doc['method']}: spectra and calibration once ({secs['prepare']:.2f} s), "
+            f"all points {secs['points']:.2f} s", ""] + table(head, rows, right_from=1, whole="sweep.md")

@@ -87,7 +87,9 @@ def test_compress_prints_the_table_and_json(capsys, tmp_path):
 
 def test_inspect(capsys):
     code, stdout, _ = run(capsys, "inspect", "--demo", "-q")
-    assert code == 0 and "break-even" in stdout and "`11` | linear | 256x512" in stdout
+    row = next(line for line in stdout.splitlines() if line.startswith("11 "))
+    assert code == 0 and "break-even" in stdout and row.split()[:4] == ["11", "linear", "256x512", "131,328"]
+    assert "|" not in stdout and "`" not in stdout  # the same aligned table as compress, not Markdown
     code, stdout, _ = run(capsys, "inspect", "--demo", "--json", "-q")
     layers = json.loads(stdout)["layers"]
     fc = next(e for e in layers if e["name"] == "9")
@@ -320,8 +322,12 @@ def test_layer_table_fits_a_narrow_terminal_and_keeps_whole_names_in_logs(monkey
         assert all(len(line) <= width for line in lines[:-1]), width
         shown = [line.split()[0] for line in body]
         assert len(set(shown)) == len(names)
-        assert all(s.endswith(n.split(".")[-1]) and f".{n.split('.')[2]}." in s for s, n in zip(shown, names))
-        assert lines[-1].startswith("(shortened to fit the terminal: names abbreviated; column")
+        # the last two name parts stay whole (issue 22: "b.e.l.0.a.s.query" was unreadable)
+        assert all(s.endswith(".".join(n.split(".")[-2:])) and n.split(".")[2] in s.split(".") for s, n in zip(shown, names))
+        assert lines[-1].startswith("(shortened to fit the terminal: names without their common prefix 'encoder.layer.'")
+    bert = ["bert.encoder.layer.0.attention.self.query", "bert.encoder.layer.0.output.dense", "bert.pooler.dense"]
+    lines = terminal.table(head, [[n, *rows[0][1:]] for n in bert], width=90, optional=terminal.OPTIONAL_LAYER_COLUMNS)
+    assert [line.split()[0] for line in lines[2:5]] == ["e.l.0.a.self.query", "e.l.0.output.dense", "pooler.dense"]
     plain = [[str(i), *rows[0][1:]] for i in range(3)]  # nothing to abbreviate: not said
     assert "abbreviated" not in terminal.table(head, plain, width=100, optional=terminal.OPTIONAL_LAYER_COLUMNS)[-1]
     monkeypatch.delenv("COLUMNS", raising=False)

@@ -23,7 +23,8 @@ def open_model(spec: str, *, weights: str | None = None, weights_key: str | None
         for flag, given in (("--weights", weights), ("--factory-weights", factory_weights)):
             if given:
                 raise InputError(f"{flag} is for PyTorch factories; the ONNX file {spec} holds its own weights")
-        return onnx_backend.load(spec), {"model": spec, "format": onnx_backend.FORMAT, "model_sha256": file_sha256(spec)}
+        return onnx_backend.load(spec), {"model": spec, "format": onnx_backend.FORMAT, "model_sha256": file_sha256(spec),
+                                         "open_args": {}}
     from . import torch_backend
 
     folder = Path(spec)
@@ -34,7 +35,7 @@ def open_model(spec: str, *, weights: str | None = None, weights_key: str | None
         found = next((str(p) for p in sorted(folder.glob("*.safetensors"))), None)
         sources = {"model": spec, "format": torch_backend.FORMAT, "model_sha256": file_sha256(folder / "config.json"),
                    "weights": found, "weights_sha256": file_sha256(found) if found else None,
-                   "layout": "model-folder"}
+                   "layout": "model-folder", "open_args": {}}
         return torch_backend.load_pretrained(spec), sources
     if ":" not in spec:
         raise InputError(f"--model {spec!r}: not an ONNX file, a model folder (config.json), or "
@@ -55,5 +56,8 @@ def open_model(spec: str, *, weights: str | None = None, weights_key: str | None
     target = spec.rpartition(":")[0]
     sources = {"model": spec, "format": torch_backend.FORMAT,
                "model_sha256": file_sha256(target) if Path(target).is_file() else None,
-               "weights": weights, "weights_sha256": file_sha256(weights) if weights else None}
+               "weights": weights, "weights_sha256": file_sha256(weights) if weights else None,
+               # what factorize_weights.open_model needs besides the spec to open the same model again
+               "open_args": {k: v for k, v in (("weights", weights), ("weights_key", weights_key),
+                                               ("factory_weights", factory_weights)) if v}}
     return model, sources

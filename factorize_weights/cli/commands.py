@@ -61,14 +61,14 @@ def _print_json(obj) -> None:
 
 def cmd_inspect(args) -> int:
     from ..pipeline import inspect_model
-    from ..report import render_inspect
+    from ..terminal import inspect_lines
 
     model, _ = load_model(args)
     report = inspect_model(model, _config(args, "inspect"))
     if args.json:
         _print_json(report)
     else:
-        print(render_inspect(report))
+        print("\n".join(inspect_lines(report)))
     return 0
 
 
@@ -113,7 +113,8 @@ def cmd_compress(args) -> int:
 
     from ..run import compress
     from .. import terminal
-    from ..sweep import POINT_UNITS, drop_of
+    from ..formatting import fmt_points
+    from ..sweep import drop_of
 
     if args.budget is not None and not args.budget.strip():
         raise InputError("--budget '': empty; give KIND=VALUE, e.g. --budget params=0.5")
@@ -149,19 +150,26 @@ def cmd_compress(args) -> int:
                 print(f"  {s['name']}: {s['reason']}")
         if "search" in result.report:
             sr = result.report["search"]
-            tried = ", ".join(f"{t['budget']} drop {t['drop']:.4g}" for t in sr["tried"])
+            name = result.metric.name if result.metric is not None else ""
+            tried = ", ".join(f"{t['budget']} drop {fmt_points(name, t['drop'])}" for t in sr["tried"])
             chooser = ("the selection set chose it" if sr.get("selection") else
                        "the held-out set chose it, so its figure below is optimistic (give --selection)")
-            print(f"search: {sr['chosen']} is the smallest budget within a drop of {sr['keep_within']:g} "
-                  f"{sr['unit']} ({sr['evaluations']} evaluations: {tried}); {chooser}")
+            print(f"search: {sr['chosen']} is the smallest budget within a drop of {fmt_points(name, sr['keep_within'])} "
+                  f"({sr['evaluations']} evaluations: {tried}); {chooser}")
         files = sorted(p.name for p in Path(args.out).iterdir()) if args.out else None
-        print("\n".join(terminal.summary(result.report, args.out, files)))
+        hints = ()
+        if args.demo and not args.calibration:
+            from .. import demo
+
+            hints = (f"calibrated factors: add --calibration {demo.CALIBRATION} (the demo's own calibration split)",)
+        print("\n".join(terminal.summary(result.report, args.out, files, hints)))
     if args.drop_limit is not None and result.metric is not None:
         drop = drop_of(result.metric)
         if drop > args.drop_limit:
-            print(f"{PROG}: {_colour('gate failed', '31')}: held-out {result.metric.name} dropped {drop:.4g} "
-                  f"{POINT_UNITS[result.metric.name]}, more than --drop-limit {args.drop_limit:g} "
-                  f"(by {drop - args.drop_limit:.4g})", file=sys.stderr)
+            name = result.metric.name
+            print(f"{PROG}: {_colour('gate failed', '31')}: held-out {name} dropped {fmt_points(name, drop)}, more "
+                  f"than --drop-limit {fmt_points(name, args.drop_limit)} (by {fmt_points(name, drop - args.drop_limit)})",
+                  file=sys.stderr)
             return 3
     return 0
 
@@ -179,9 +187,9 @@ def cmd_sweep(args) -> int:
     if args.json:
         _print_json(doc)
         return 0
-    from ..sweep import render_markdown
+    from ..terminal import sweep_lines
 
-    print(render_markdown(doc), end="")
+    print("\n".join(sweep_lines(doc)))
     if args.out:
         print(f"wrote {args.out}/ (sweep.json, sweep.csv, sweep.md, sweep.html"
               f"{', one folder per budget' if args.save_models else ''})")
