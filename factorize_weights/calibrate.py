@@ -182,11 +182,17 @@ def _batches(data: HeldOut, batch_size: int, config: CompressConfig, desc: str):
 STATS_SHARE = 0.5
 
 
+def _output_side_bytes(m: int, n: int) -> int:
+    """W G W^T (m x m, float64) and the float32 copy of W it multiplies the rows by."""
+    return 8 * m * m + 4 * m * n
+
+
 @dataclass
 class StatisticsPlan:
     """Which statistic each layer accumulates, decided from the shapes before any pass: the input
     Gram G (n x n) where the budget allows, else the output moment W G W^T (m x m, when m < n;
-    stats.OutputMoments), else none (the layer keeps plain factors). Sizes in bytes, float64."""
+    stats.OutputMoments, which also holds W in float32), else none (the layer keeps plain factors).
+    Sizes in bytes: the sums are float64."""
 
     budget: int
     sides: dict[str, str]  # layer name -> "input" or "output"
@@ -195,7 +201,8 @@ class StatisticsPlan:
     @staticmethod
     def make(records: list[LayerRecord], budget: int) -> "StatisticsPlan":
         need = {r.name: 8 * r.matrix_shape[1] ** 2 for r in records}
-        small = {r.name: 8 * min(r.matrix_shape) ** 2 for r in records}
+        small = {r.name: _output_side_bytes(*r.matrix_shape) if r.matrix_shape[0] < r.matrix_shape[1]
+                 else need[r.name] for r in records}
         sides = {r.name: "input" for r in records}
         total = sum(need.values())
         # the layers that save most by switching go first, so the fewest layers lose the input side
@@ -218,7 +225,7 @@ class StatisticsPlan:
 
     def bytes(self, records: list[LayerRecord]) -> int:
         by = {r.name: r for r in records}
-        return sum(8 * (by[n].matrix_shape[1] if side == "input" else by[n].matrix_shape[0]) ** 2
+        return sum(8 * by[n].matrix_shape[1] ** 2 if side == "input" else _output_side_bytes(*by[n].matrix_shape)
                    for n, side in self.sides.items())
 
     def summary(self) -> dict:
@@ -243,8 +250,8 @@ def input_moments(backend, model, records: list[LayerRecord], batches,
     ``plan`` puts on the output side ``W G W^T``; and the sample count."""
     sides = plan.sides if plan is not None else {r.name: "input" for r in records}
     records = [r for r in records if r.name in sides]
-    acc = {r.name: Moments(r.matrix_shape[1]) if sides[r.name] == "input" else OutputMoments(backend.weight_matrix(r))
-           for r in records}
+    acc = {r.name: Moments(r.matrix_shape[1]) if sides[r.name] == "input"
+           else OutputMoments(backend.weight_matrix(r).astype(np.float32)) for r in records}
     samples = backend.stream_inputs(model, records, batches, lambda name, rows: acc[name].add(rows))
     return acc, samples
 

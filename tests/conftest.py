@@ -61,3 +61,21 @@ def validate_every_report(monkeypatch):
     monkeypatch.setattr(store, "write_run_files", write_run_files)
     monkeypatch.setattr(cli.commands, "_print_json", print_json)
     monkeypatch.setattr(sweep, "_write_sweep", write_sweep)
+
+
+def assert_float32_products_close(actual, expected, rows: int):
+    """A Gram-like matrix formed from float32 rows (stats.py: products in float32 over at most
+    PRODUCT_ROWS rows, sums in float64) against its float64 value: by the inner-product bound
+    |fl(x^T y) - x^T y| <= gamma_k |x|^T |y| (Higham, "Accuracy and Stability of Numerical
+    Algorithms", 2nd ed., eq. 3.5, gamma_k = k u / (1 - k u), u = 2^-24) and Cauchy-Schwarz, every
+    entry is within gamma_k sqrt(G_ii G_jj), k = rows per product."""
+    import numpy as np
+
+    from factorize_weights.stats import PRODUCT_ROWS
+
+    k = min(rows, PRODUCT_ROWS)
+    u = 2.0 ** -24
+    gamma = k * u / (1 - k * u)
+    d = np.sqrt(np.abs(np.diag(expected)))
+    assert np.all(np.abs(actual - expected) <= gamma * np.outer(d, d) + 1e-300), \
+        float(np.max(np.abs(actual - expected) / np.maximum(np.outer(d, d), 1e-300)))

@@ -59,10 +59,11 @@ def test_the_plan_switches_the_widest_layers_first_and_drops_only_what_cannot_fi
     records = [_record("narrow", 64, 64), _record("wide", 16, 4096), _record("square", 2048, 2048)]
     roomy = StatisticsPlan.make(records, 1 << 40)
     assert roomy.sides == {"narrow": "input", "wide": "input", "square": "input"} and roomy.dropped == {}
-    tight = StatisticsPlan.make(records, 8 * (64**2 + 16**2 + 2048**2))
+    wide_output = 8 * 16**2 + 4 * 16 * 4096  # W G W^T in float64 and the float32 copy of W it multiplies by
+    tight = StatisticsPlan.make(records, 8 * (64**2 + 2048**2) + wide_output)
     assert tight.sides == {"narrow": "input", "wide": "output", "square": "input"}
     assert tight.bytes(records) <= tight.budget
-    tiny = StatisticsPlan.make(records, 8 * (64**2 + 16**2))
+    tiny = StatisticsPlan.make(records, 8 * 64**2 + wide_output)
     assert tiny.dropped == {"square": 8 * 2048**2} and tiny.sides == {"narrow": "input", "wide": "output"}
 
 
@@ -107,12 +108,13 @@ def test_a_layer_too_wide_for_any_statistic_keeps_plain_factors_with_a_warning(t
     (tmp_path / "wide.py").write_text(WIDE)
     np.savez(tmp_path / "cal.npz", inputs=RNG.standard_normal((8, 1024, 80)).astype(np.float32))
     code = main(["compress", "--model", f"{tmp_path}/wide.py:build", "--factory-weights", "--budget", "params=0.8",
-                 "--calibration", str(tmp_path / "cal.npz"), "--stats-memory", "0.000001", "-q", "--json"])
+                 "--calibration", str(tmp_path / "cal.npz"), "--stats-memory", "0.00002", "-q", "--json"])
     out, err = capsys.readouterr()
     assert code == 0, err
     report = json.loads(out)
-    # 1,073 bytes: the classifier fits on its output side (10 x 10), the convolution (16 x 16) does not
-    assert report["calibration"]["not_calibrated"] == {"0": 8 * 16**2}
+    # 21,474 bytes: the classifier fits on its output side (10 x 10 in float64 and its 10 x 272
+    # weight in float32: 11,680 bytes), the convolution (16 x 16 and 16 x 65,536: 4.2 MB) does not
+    assert report["calibration"]["not_calibrated"] == {"0": 8 * 16**2 + 4 * 16 * 65536}
     assert report["calibration"]["output_side"] == ["3"]
     assert next(r for r in report["layers"] if r["name"] == "0")["method"] in ("svd", "dense")
     assert any("--stats-memory" in w for w in report["calibration"]["warnings"])

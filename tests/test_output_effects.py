@@ -65,6 +65,67 @@ def test_probe_measurements_equal_a_direct_rewrite():
         np.testing.assert_array_equal(model(torch.from_numpy(x)).double().numpy(), ref)
 
 
+class Block(nn.Module):
+    """A residual block that changes its input in place and returns a tuple, as transformer blocks do."""
+
+    calls = 0
+
+    def __init__(self):
+        super().__init__()
+        self.fc, self.out = nn.Linear(16, 24), nn.Linear(24, 16)
+
+    def forward(self, h, mask=None):
+        Block.calls += 1
+        h = torch.relu_(h)  # in place: a replayed output must be a copy
+        return (h + self.out(torch.tanh(self.fc(h))), mask)
+
+
+class Chain(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Linear(12, 16)
+        self.blocks = nn.ModuleList(Block() for _ in range(4))
+        self.head = nn.Linear(16, 5)
+
+    def forward(self, x):
+        h, mask = self.stem(x), torch.ones(1)
+        for block in self.blocks:
+            h, mask = block(h, mask)
+        return self.head(h)
+
+
+def test_probes_on_a_chain_skip_the_blocks_before_the_layer_and_measure_the_same():
+    # oracle: torch itself, the model rewritten (a copy) with one layer at one rank and run whole
+    torch.manual_seed(2)
+    model = Chain().eval()
+    x = np.random.default_rng(2).standard_normal((48, 12)).astype(np.float32)
+    prep = pipeline.prepare(model, fw.CompressConfig(quiet=True, allocation="output", method="svd",
+                                                     effect_samples=48, batch_size=16), None, _data(x, "cal"))
+    probes = sum(len(e.ranks) for e in prep.effects.values())
+    with torch.no_grad():
+        ref = model(torch.from_numpy(x)).double().numpy()
+    for name, effect in prep.effects.items():
+        for rank, measured in zip(effect.ranks, effect.errors):
+            small = tb.rewrite(model, prep.records, {name: prep.decompositions[name].factors(rank)})
+            with torch.no_grad():
+                out = small(torch.from_numpy(x)).double().numpy()
+            direct = float(np.sum((out - ref) ** 2) / np.sum(ref ** 2))
+            assert measured == pytest.approx(direct, rel=1e-5, abs=1e-12), (name, rank)
+    # every probe pass of a layer in block b runs blocks b..3 only (3 batches of 16 samples); the
+    # stem and head layers, outside the chain, run all four
+    owned = {name: int(name.split(".")[1]) if name.startswith("blocks.") else 0 for name in prep.effects}
+    expected_probe_calls = sum(3 * (4 - owned[n]) * len(e.ranks) for n, e in prep.effects.items())
+    assert probes > 8 and expected_probe_calls < 0.7 * 3 * 4 * probes  # fewer than whole passes
+    Block.calls = 0
+    list(tb.replacement_errors(model, {r.name: r for r in prep.records},
+                               [(n, *prep.decompositions[n].factors(e.ranks[0])) for n, e in prep.effects.items()],
+                               [torch.from_numpy(x[i:i + 16]) for i in range(0, 48, 16)]))
+    first = sum(3 * (4 - owned[n]) for n in prep.effects)
+    assert Block.calls == 4 + 3 * 4 + first  # find_chain's one-sample pass, the reference, then the probes
+    with torch.no_grad():  # nothing left behind: the blocks run their own forward again
+        np.testing.assert_array_equal(model(torch.from_numpy(x)).double().numpy(), ref)
+
+
 def test_effect_curve_passes_through_its_measured_points_and_scales_between():
     e = Effect("l", [2, 8], [0.4, 0.01], [0.2, 0.02])  # gains 2 and 0.5
     ranks = np.array([1, 2, 4, 8, 16])

@@ -9,6 +9,7 @@ import pytest
 import torch
 from torch import nn
 
+from conftest import assert_float32_products_close
 from factorize_weights.backends import onnx_backend as ob
 from factorize_weights.backends import torch_backend as tb
 from factorize_weights.calibrate import input_moments, paired_moments
@@ -58,7 +59,8 @@ def test_torch_conv_moments_equal_numpy_on_explicit_patches(conv):
                                expected_out.reshape(x.shape[0], conv.out_channels, -1).transpose(0, 2, 1),
                                rtol=1e-5, atol=1e-5)  # float32 convolution
     assert samples == 5 and stats["0"].rows == p.shape[0]
-    np.testing.assert_allclose(stats["0"].gram, p.T @ p, rtol=1e-10, atol=1e-10)  # numpy as the oracle
+    p64 = p.astype(np.float64)  # numpy in float64 as the oracle; the rows were float32 (stats.py)
+    assert_float32_products_close(stats["0"].gram, p64.T @ p64, p.shape[0])
 
 
 @pytest.mark.parametrize("conv", [g for g in GEOMETRIES if isinstance(g, nn.Conv2d) and g.padding_mode == "zeros"],
@@ -74,7 +76,8 @@ def test_onnx_conv_moments_equal_numpy_on_explicit_patches(conv, tmp_path):
     stats, _ = input_moments(ob, onnx_model, [rec], [x.numpy()])
     p = patches(conv, x)
     assert stats[rec.name].rows == p.shape[0]
-    np.testing.assert_allclose(stats[rec.name].gram, p.T @ p, rtol=1e-10, atol=1e-10)  # numpy as the oracle
+    p64 = p.astype(np.float64)  # numpy in float64 as the oracle; the rows were float32 (stats.py)
+    assert_float32_products_close(stats[rec.name].gram, p64.T @ p64, p.shape[0])
 
 
 def test_accumulators_equal_one_product_over_all_rows(rng):
@@ -84,7 +87,8 @@ def test_accumulators_equal_one_product_over_all_rows(rng):
         g.add(x[start:start + 64].astype(np.float32))
         c.add(x[start:start + 64], y[start:start + 64])
     x32 = x.astype(np.float32).astype(np.float64)
-    np.testing.assert_allclose(g.gram, x32.T @ x32, rtol=1e-12)  # numpy as the oracle, float64 sums
+    assert_float32_products_close(g.gram, x32.T @ x32, 64)  # numpy as the oracle: float32 rows, float64 sums
+    # float64 rows are multiplied in float64: exact to rounding
     np.testing.assert_allclose(c.cross, x.T @ y, rtol=1e-12, atol=1e-12)
     np.testing.assert_allclose(c.gram, y.T @ y, rtol=1e-12)
     assert g.rows == c.rows == 300

@@ -51,10 +51,11 @@ def _conv_rows(record: LayerRecord, x: np.ndarray) -> Iterator[np.ndarray]:
     dil = list(o.get("dilations", [1] * nd))
     pads = _conv_pads(record, x.shape[2:])
     n = record.matrix_shape[1]
-    per_sample = max(n * 8 * int(np.prod(x.shape[2:])), 1)
+    dtype = _row_dtype(x)
+    per_sample = max(n * dtype.itemsize * int(np.prod(x.shape[2:])), 1)
     step = max(1, UNFOLD_CHUNK_BYTES // per_sample)
     for start in range(0, x.shape[0], step):
-        chunk = np.pad(x[start : start + step].astype(np.float64), [(0, 0), (0, 0)] + pads)
+        chunk = np.pad(x[start : start + step].astype(dtype, copy=False), [(0, 0), (0, 0)] + pads)
         span = [(k - 1) * d + 1 for k, d in zip(kernel, dil)]
         win = np.lib.stride_tricks.sliding_window_view(chunk, span, axis=tuple(range(2, 2 + nd)))
         # win: (N, C, out..., span...) -> take dilated taps, then stride the output positions
@@ -65,18 +66,25 @@ def _conv_rows(record: LayerRecord, x: np.ndarray) -> Iterator[np.ndarray]:
         yield np.ascontiguousarray(taps.transpose(order)).reshape(-1, n)
 
 
+def _row_dtype(x: np.ndarray) -> np.dtype:
+    """Rows keep the model's precision: float64 stays, anything else is float32 (stats.py says why
+    products in float32 are safe)."""
+    return np.dtype(np.float64 if x.dtype == np.float64 else np.float32)
+
+
 def layer_rows(record: LayerRecord, x: np.ndarray) -> Iterator[np.ndarray]:
-    """The node's activation input as rows of the matrix view's input space (float64)."""
+    """The node's activation input as rows of the matrix view's input space (float32, or float64
+    for a float64 model)."""
     o = record.options
     x = np.asarray(x)
     if o["op"] == "Conv":
         yield from _conv_rows(record, x)
     elif o["op"] == "Gemm":
-        yield (x.T if o["transA"] else x).astype(np.float64)
+        yield (x.T if o["transA"] else x).astype(_row_dtype(x), copy=False)
     elif o["side"] == "left":  # W @ X: X (..., in, cols) holds one sample per column
-        yield np.swapaxes(x, -1, -2).reshape(-1, x.shape[-2]).astype(np.float64)
+        yield np.swapaxes(x, -1, -2).reshape(-1, x.shape[-2]).astype(_row_dtype(x), copy=False)
     else:
-        yield x.reshape(-1, x.shape[-1]).astype(np.float64)
+        yield x.reshape(-1, x.shape[-1]).astype(_row_dtype(x), copy=False)
 
 
 

@@ -4,6 +4,7 @@ refit groups, and output errors of single-layer replacements."""
 
 from __future__ import annotations
 
+import contextlib
 from typing import Iterator
 
 import numpy as np
@@ -14,13 +15,25 @@ from .layers import _factor_pair
 from .running import _run_once, call, inference, rows, select_output
 from ...records import LayerRecord
 
+#: Memory for the outputs of the blocks that probes skip (:class:`_BlockReplay`); past it, the later
+#: blocks are run again in every probe pass, as without a chain.
+PROBE_CACHE_BYTES = 512 * 2**20
+
+
 def replacement_errors(model: nn.Module, records: dict, trials, batches: list, output: str | None = None):
     """For each ``(name, a, x)`` in ``trials``: the model's output with layer ``name`` alone replaced
     by the factor pair (A, X), everything else exact, against the original output on ``batches``.
     Yields ``(squared error, squared norm of the original output)`` per trial. The layer is not
-    copied or rewritten: a forward hook on it returns the pair's output instead of its own."""
+    copied or rewritten: a forward hook on it returns the pair's output instead of its own.
+
+    On a chain of blocks (:func:`find_chain`), the blocks before the probed layer's own block
+    compute exactly what they computed in the reference pass, so they are not run again: each
+    returns its recorded output (:class:`_BlockReplay`), and a probe pass costs the blocks from the
+    layer's on (about half a forward pass on average, the same numbers)."""
     with inference(model):
-        reference = [select_output(call(model, b), output).double() for b in batches]
+        replay = _BlockReplay(model, list(records.values()), batches)
+        with replay.recording():
+            reference = [select_output(call(model, b), output).double() for b in batches]
         energy = float(sum(float((r * r).sum()) for r in reference))
         for name, a, x in trials:
             record = records[name]
@@ -29,12 +42,92 @@ def replacement_errors(model: nn.Module, records: dict, trials, batches: list, o
             handle = record.handle.register_forward_hook(lambda m, args, out, pair=pair: pair(args[0]))
             try:
                 err = 0.0
-                for b, ref in zip(batches, reference):
-                    diff = select_output(call(model, b), output).double() - ref
+                for i, (b, ref) in enumerate(zip(batches, reference)):
+                    with replay.before(name, i):
+                        diff = select_output(call(model, b), output).double() - ref
                     err += float((diff * diff).sum())
             finally:
                 handle.remove()
             yield err, energy
+
+
+def _clone(value):
+    if isinstance(value, torch.Tensor):
+        return value.clone()
+    if isinstance(value, (tuple, list)):
+        return type(value)(_clone(v) for v in value)
+    return value
+
+
+def _nbytes(value) -> int:
+    if isinstance(value, torch.Tensor):
+        return value.numel() * value.element_size()
+    if isinstance(value, (tuple, list)):
+        return sum(_nbytes(v) for v in value)
+    return 0
+
+
+class _BlockReplay:
+    """The outputs of a chain's blocks recorded in the reference pass, per batch, and replayed in
+    later passes for the blocks before a given layer's own: such a block's ``forward`` returns a
+    copy of what it returned on that batch (a copy, as a later block may change its input in
+    place). Blocks and what they receive are those :func:`find_chain` accepts (called once per
+    pass, fed the previous block's output, stateless arguments), so a replayed block returns
+    exactly what running it would. Only the first blocks whose outputs fit
+    :data:`PROBE_CACHE_BYTES` are recorded; without a chain nothing is."""
+
+    def __init__(self, model: nn.Module, records: list[LayerRecord], batches: list):
+        found = find_chain(model, records, batches[0]) if batches and len(records) > 1 else None
+        self.blocks, self.block_of = (found[0], found[1]) if found else ([], {})
+        self.modules = [model.get_submodule(b) for b in self.blocks]
+        self.outputs: list[list] = [[] for _ in self.blocks]  # [block][batch]
+        self.usable = 0  # blocks 0..usable-1 are recorded for every batch
+        self.batches = len(batches)
+
+    @contextlib.contextmanager
+    def recording(self):
+        if not self.blocks:
+            yield
+            return
+        used = [0]
+        full = [False]
+
+        def keep(module, args, output, j):
+            if full[0]:
+                return
+            size = _nbytes(output)
+            if used[0] + size > PROBE_CACHE_BYTES:
+                full[0] = True
+                return
+            used[0] += size
+            self.outputs[j].append(_clone(output))
+
+        hooks = [m.register_forward_hook(lambda m, a, o, j=j: keep(m, a, o, j)) for j, m in enumerate(self.modules)]
+        try:
+            yield
+        finally:
+            for h in hooks:
+                h.remove()
+        counts = [len(o) for o in self.outputs]
+        self.usable = next((j for j, c in enumerate(counts) if c != self.batches), len(counts))
+
+    @contextlib.contextmanager
+    def before(self, name: str, batch: int):
+        """Within: the blocks before ``name``'s own return their outputs recorded on ``batch``."""
+        upto = min(self.block_of.get(name, 0), self.usable)
+        saved = []
+        for j in range(upto):
+            module = self.modules[j]
+            saved.append(module.__dict__.get("forward"))
+            out = self.outputs[j][batch]
+            module.forward = lambda *a, out=out, **k: _clone(out)
+        try:
+            yield
+        finally:
+            for j, previous in enumerate(saved):
+                del self.modules[j].forward
+                if previous is not None:
+                    self.modules[j].forward = previous
 
 
 def stream_layer_outputs(original: nn.Module, factorized: nn.Module, names: list[str], batches, sink) -> None:
@@ -64,13 +157,15 @@ UNFOLD_CHUNK_BYTES = 64 * 2**20
 
 
 def layer_rows(record: LayerRecord, x: torch.Tensor) -> Iterator[torch.Tensor]:
-    """The layer's input as rows of its matrix view's input space, float64, in chunks:
+    """The layer's input as rows of its matrix view's input space, in chunks, float32 (float64 for
+    a float64 model; stats.py says why products in float32 are safe):
     (rows, in) for a linear layer, (rows, in_channels*kh*kw) unfolded patches for a convolution
     (geometry from the original module, ``record.handle``). Patch columns are ordered
     (channel, kh, kw) like ``weight.reshape(out, -1)``."""
     x = x.detach()
+    x = x if x.dtype == torch.float64 else x.float()
     if record.kind == "linear":
-        yield x.reshape(-1, x.shape[-1]).double()
+        yield x.reshape(-1, x.shape[-1])
         return
     module = record.handle
     conv2d = record.kind == "conv2d"
@@ -84,17 +179,17 @@ def layer_rows(record: LayerRecord, x: torch.Tensor) -> Iterator[torch.Tensor]:
         pads = list(pads) + [0, 0]
     mode = "constant" if module.padding_mode == "zeros" else module.padding_mode
     n = record.matrix_shape[1]
-    per_sample = max(n * 8 * max(x[:1].numel() // max(x.shape[1], 1), 1), 1)
+    per_sample = max(n * x.element_size() * max(x[:1].numel() // max(x.shape[1], 1), 1), 1)
     step = max(1, UNFOLD_CHUNK_BYTES // per_sample)
     for start in range(0, x.shape[0], step):
-        chunk = torch.nn.functional.pad(x[start : start + step].double(), list(pads), mode=mode)
+        chunk = torch.nn.functional.pad(x[start : start + step], list(pads), mode=mode)
         cols = torch.nn.functional.unfold(chunk, kernel, dilation=dilation, stride=stride)  # (N, n, L)
         yield cols.transpose(1, 2).reshape(-1, n)
 
 
 def stream_inputs(model: nn.Module, records: list[LayerRecord], batches, sink) -> int:
     """Run ``model`` on every batch; at each call of each record's layer, ``sink(name, rows)`` for
-    every block of its input rows (float64 numpy, see :func:`layer_rows`). Nothing is kept between
+    every block of its input rows (numpy, see :func:`layer_rows`). Nothing is kept between
     calls. Returns the number of samples."""
     hooks = []
     for record in records:
