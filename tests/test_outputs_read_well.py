@@ -122,3 +122,27 @@ def test_terminal_and_report_share_the_formatter():
     # one source: the terminal re-exports the formatter's functions rather than its own copies
     assert terminal.fmt_change is formatting.fmt_change and terminal.fmt_value is formatting.fmt_value
     assert report_mod.fmt_metric is formatting.fmt_value
+
+
+def test_every_command_help_starts_with_examples(capsys):
+    # the one-line usage keeps the examples on the first screen (they came after 25 lines of flags)
+    for command in ("inspect", "compress", "sweep", "evaluate"):
+        try:
+            main([command, "--help"])
+        except SystemExit:
+            pass
+        lines = capsys.readouterr().out.splitlines()
+        assert lines[0].startswith(f"usage: factorize-weights {command} ")
+        start = lines.index("examples:")
+        assert start < 6 and lines[start + 1].strip().startswith(f"factorize-weights {command} "), command
+
+
+def test_the_readme_gives_a_cpu_install_command_for_other_machines():
+    # PyTorch's own CPU wheel index is how a CPU build is installed elsewhere (pytorch.org's
+    # install selector; common practice); the README must say it as a command to copy
+    from pathlib import Path
+
+    text = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
+    blocks = text.split("```sh")[1:]
+    commands = [line.strip() for b in blocks for line in b.split("```")[0].splitlines()]
+    assert any(c.endswith("pip install torch --index-url https://download.pytorch.org/whl/cpu") for c in commands)

@@ -142,7 +142,9 @@ def _run_file_option(p: argparse.ArgumentParser) -> None:
 
 
 def _command(sub, name: str, help: str, func) -> argparse.ArgumentParser:
+    # a one-line usage, so the examples come right after it (argparse would list every flag first)
     p = sub.add_parser(name, help=help, description=f"{help}\n\n{EXAMPLES[name]}", epilog=EPILOG,
+                       usage=f"{PROG} {name} [MODEL] [options]  (every option below)",
                        formatter_class=argparse.RawDescriptionHelpFormatter)
     p.set_defaults(func=func, command=name)
     _model_options(p)
