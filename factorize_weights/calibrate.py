@@ -182,6 +182,19 @@ def _batches(data: HeldOut, batch_size: int, config: CompressConfig, desc: str):
 STATS_SHARE = 0.5
 
 
+#: The input Gram of a layer costs n^2 per row (flops) and 8 n^2 bytes, its output moment about
+#: m^2 + m n and 8 m^2 + 4 m n: where the first is this many times the second (n above about 9 m)
+#: the layer keeps the output moment whatever the memory budget, losing only its sequential refit.
+#: Transformer blocks (n <= 4 m) and MobileNet-style projections (n <= 6 m) stay on the input side;
+#: wide convolutions that unfold many channels times a long kernel (CREPE: n = 32-512 m, whose
+#: 8k-16k-wide input Grams took 0.5-2 GiB each and most of a calibrated run) do not.
+WIDE_RATIO = 8
+
+
+def _much_wider(m: int, n: int) -> bool:
+    return m < n and n * n >= WIDE_RATIO * (m * m + m * n)
+
+
 def _output_side_bytes(m: int, n: int) -> int:
     """W G W^T (m x m, float64) and the float32 copy of W it multiplies the rows by."""
     return 8 * m * m + 4 * m * n
@@ -203,14 +216,16 @@ class StatisticsPlan:
         need = {r.name: 8 * r.matrix_shape[1] ** 2 for r in records}
         small = {r.name: _output_side_bytes(*r.matrix_shape) if r.matrix_shape[0] < r.matrix_shape[1]
                  else need[r.name] for r in records}
-        sides = {r.name: "input" for r in records}
-        total = sum(need.values())
+        # a layer far wider than it is tall keeps its output moment even when the budget would allow
+        # the input Gram: the same factors (G non-singular) for a fraction of the work per row
+        sides = {r.name: "output" if _much_wider(*r.matrix_shape) else "input" for r in records}
+        total = sum(small[n] if side == "output" else need[n] for n, side in sides.items())
         # the layers that save most by switching go first, so the fewest layers lose the input side
         for r in sorted(records, key=lambda r: need[r.name] - small[r.name], reverse=True):
             if total <= budget:
                 break
             m, n = r.matrix_shape
-            if m < n:
+            if m < n and sides[r.name] == "input":
                 sides[r.name] = "output"
                 total -= need[r.name] - small[r.name]
         dropped = {}

@@ -323,3 +323,46 @@ def test_a_hugging_face_model_folder_compresses_end_to_end(tmp_path, capsys):
     again = torch_backend.load_pretrained(tmp_path / "out")
     with torch.no_grad():
         assert torch.equal(again(**x).last_hidden_state, small(**x).last_hidden_state)
+
+
+def test_a_folder_whose_config_names_a_head_its_weights_lack_loads_the_base_model(tmp_path, capsys):
+    # common practice: sentence-embedding folders are saved from the base model with a config
+    # naming a masked-LM class; transformers would initialize that head at random. Oracle: torch,
+    # the base model saved by transformers itself, computes what the loaded model computes.
+    transformers = pytest.importorskip("transformers")
+    config = transformers.BertConfig(vocab_size=60, hidden_size=32, num_hidden_layers=1, num_attention_heads=2,
+                                     intermediate_size=64, max_position_embeddings=16)
+    torch.manual_seed(0)
+    base = transformers.BertModel(config).eval()
+    base.save_pretrained(str(tmp_path / "enc"))
+    cfg = json.loads((tmp_path / "enc" / "config.json").read_text())
+    cfg["architectures"] = ["BertForMaskedLM"]
+    (tmp_path / "enc" / "config.json").write_text(json.dumps(cfg))
+    capsys.readouterr()  # transformers' own saving bars
+    code, out, err = run_cli(capsys, "inspect", "--model", tmp_path / "enc", "-q", "--json")
+    assert code == 0, err
+    names = [e["name"] for e in json.loads(out)["layers"]]
+    assert not any("cls." in n or "lm_head" in n for n in names)  # no random head among the layers
+    assert "config.json names BertForMaskedLM, but the weights hold no" in err and "loaded the base model" in err
+    from factorize_weights.backends import torch_backend
+
+    loaded = torch_backend.load_pretrained(tmp_path / "enc")
+    ids = torch.tensor([[1, 5, 7, 2]])
+    with torch.no_grad():
+        assert torch.equal(loaded(input_ids=ids).last_hidden_state, base(input_ids=ids).last_hidden_state)
+
+
+def test_a_folder_missing_weights_of_its_base_model_is_refused(tmp_path, capsys):
+    transformers = pytest.importorskip("transformers")
+    from safetensors.torch import load_file, save_file
+
+    config = transformers.BertConfig(vocab_size=60, hidden_size=32, num_hidden_layers=1, num_attention_heads=2,
+                                     intermediate_size=64, max_position_embeddings=16)
+    transformers.BertModel(config).eval().save_pretrained(str(tmp_path / "enc"))
+    weights = tmp_path / "enc" / "model.safetensors"
+    state = load_file(str(weights))
+    dropped = [k for k in state if "intermediate.dense.weight" in k]
+    save_file({k: v for k, v in state.items() if k not in dropped}, str(weights), metadata={"format": "pt"})
+    capsys.readouterr()  # transformers' own saving bars
+    code, _, err = run_cli(capsys, "inspect", "--model", tmp_path / "enc", "-q")
+    _one_line_exit_2(code, err, f"--model {tmp_path / 'enc'}", "the weights hold no", "would be random")

@@ -58,7 +58,11 @@ def _record(name, m, n):
 def test_the_plan_switches_the_widest_layers_first_and_drops_only_what_cannot_fit():
     records = [_record("narrow", 64, 64), _record("wide", 16, 4096), _record("square", 2048, 2048)]
     roomy = StatisticsPlan.make(records, 1 << 40)
-    assert roomy.sides == {"narrow": "input", "wide": "input", "square": "input"} and roomy.dropped == {}
+    # 4096 inputs for 16 outputs: its input Gram (8 x 4096^2 bytes, 4096^2 flops per row) is over
+    # WIDE_RATIO times its output moment, so it keeps the output side whatever the budget
+    assert roomy.sides == {"narrow": "input", "wide": "output", "square": "input"} and roomy.dropped == {}
+    bert = [_record("ffn-down", 768, 3072), _record("proj", 160, 960)]  # n = 4 m, n = 6 m: input side
+    assert StatisticsPlan.make(bert, 1 << 40).sides == {"ffn-down": "input", "proj": "input"}
     wide_output = 8 * 16**2 + 4 * 16 * 4096  # W G W^T in float64 and the float32 copy of W it multiplies by
     tight = StatisticsPlan.make(records, 8 * (64**2 + 2048**2) + wide_output)
     assert tight.sides == {"narrow": "input", "wide": "output", "square": "input"}
@@ -97,8 +101,9 @@ def test_a_65536_wide_convolution_calibrates_in_bounded_memory(tmp_path, capsys)
     out, err = capsys.readouterr()
     assert code == 0, err
     cal = json.loads(out)["calibration"]
-    assert cal["output_side"] == ["0"] and cal["not_calibrated"] == {}
-    assert cal["memory_budget_bytes"] == 2**30 and cal["gram_bytes"] == 8 * (16**2 + 272**2)
+    # both layers are far wider than tall (65,536 and 272 inputs for 16 and 10 outputs): output side
+    assert cal["output_side"] == ["0", "3"] and cal["not_calibrated"] == {}
+    assert cal["memory_budget_bytes"] == 2**30 and cal["gram_bytes"] == 8 * (16**2 + 10**2)
     assert peak < 2**30  # numpy's allocations, traced: far below the 32 GiB input Gram
 
 

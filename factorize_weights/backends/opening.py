@@ -36,7 +36,13 @@ def open_model(spec: str, *, weights: str | None = None, weights_key: str | None
         sources = {"model": spec, "format": torch_backend.FORMAT, "model_sha256": file_sha256(folder / "config.json"),
                    "weights": found, "weights_sha256": file_sha256(found) if found else None,
                    "layout": "model-folder", "open_args": {}}
-        return torch_backend.load_pretrained(spec), sources
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", torch_backend.CheckpointNotice)
+            model = torch_backend.load_pretrained(spec)
+        for w in caught:
+            if issubclass(w.category, torch_backend.CheckpointNotice):
+                warn(str(w.message))
+        return model, sources
     if ":" not in spec:
         raise InputError(f"--model {spec!r}: not an ONNX file, a model folder (config.json), or "
                          "FILE.py:FACTORY or package.module:FACTORY")

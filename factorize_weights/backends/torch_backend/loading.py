@@ -6,6 +6,7 @@ from __future__ import annotations
 import importlib
 import importlib.util
 import sys
+import warnings
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Callable
@@ -85,7 +86,9 @@ def load_pretrained(folder: str | Path) -> nn.Module:
         if (folder / "plan.json").is_file():  # a folder this tool wrote: the architecture from the config,
             model = cls(config) if cls is not None else transformers.AutoModel.from_config(config)
         else:
-            model = (cls or transformers.AutoModel).from_pretrained(str(folder), local_files_only=True)
+            model = _with_all_weights(transformers, cls, folder, names)
+    except InputError:
+        raise
     except Exception as exc:
         raise InputError(f"--model {folder}: not a loadable model folder ({_describe(exc)})") from exc
     if (folder / "plan.json").is_file():  # then its factor pairs and every weight from model.safetensors
@@ -94,6 +97,41 @@ def load_pretrained(folder: str | Path) -> nn.Module:
 
         return rebuild(model.eval(), folder, plan_layers(folder))
     return model.eval()
+
+
+def _with_all_weights(transformers, cls, folder: Path, names: list[str]) -> nn.Module:
+    """The config's class with every weight from the folder. A folder whose config names a class
+    with a head its weights do not hold (a sentence-embedding folder saved from a masked-LM config:
+    ``lm_head`` missing) would get that head randomly initialized; the base model (``AutoModel``)
+    is loaded instead when it finds every weight, with a notice, and a folder that lacks weights
+    even for that is refused: compressing or scoring random weights means nothing."""
+    quiet = transformers.logging.get_verbosity()
+    bars = transformers.utils.logging.is_progress_bar_enabled()
+    transformers.logging.set_verbosity_error()  # the missing keys are said here, in one line
+    transformers.utils.logging.disable_progress_bar()  # the tool's own bars say what runs
+    try:
+        model, info = (cls or transformers.AutoModel).from_pretrained(str(folder), local_files_only=True,
+                                                                      output_loading_info=True)
+        missing = list(info.get("missing_keys") or [])
+        if missing and cls is not None:
+            base, base_info = transformers.AutoModel.from_pretrained(str(folder), local_files_only=True,
+                                                                     output_loading_info=True)
+            if not base_info.get("missing_keys"):
+                warnings.warn(CheckpointNotice(
+                    f"--model {folder}: config.json names {names[0]}, but the weights hold no {missing[0]}"
+                    + (f" (and {len(missing) - 1} more of its parameters)" if len(missing) > 1 else "")
+                    + ": loaded the base model "
+                    + f"{type(base).__name__} instead, without that head"))
+                return base
+    finally:
+        transformers.logging.set_verbosity(quiet)
+        if bars:
+            transformers.utils.logging.enable_progress_bar()
+    if missing:
+        more = f" and {len(missing) - 1} more of its parameters" if len(missing) > 1 else ""
+        raise InputError(f"--model {folder}: the weights hold no {missing[0]}{more} ({type(model).__name__}); they "
+                         "would be random, so nothing is compressed")
+    return model
 
 
 class CheckpointNotice(UserWarning):
