@@ -31,11 +31,11 @@ def fmt_mb(nbytes: float) -> str:
     return f"{mb:.1f} MB" if mb >= 10 else f"{mb:.2f} MB"
 
 
-def fmt_ms(ms: float) -> str:
-    """``0.425 ms``, ``12.3 ms``, ``1,234 ms`` (three significant digits)."""
-    if ms >= 1000:
-        return f"{ms:,.0f} ms"
-    return f"{ms:.3g} ms" if ms >= 1 else f"{ms:.3f} ms"
+def fmt_ms(ms: float, unit: bool = True) -> str:
+    """``0.425 ms``, ``12.3 ms``, ``1,234 ms`` (three significant digits); without the unit for a
+    column headed in ms."""
+    text = f"{ms:,.0f}" if ms >= 1000 else (f"{ms:.3g}" if ms >= 1 else f"{ms:.3f}")
+    return f"{text} ms" if unit else text
 
 
 def fmt_ratio(x: float | None) -> str:
@@ -87,3 +87,25 @@ def fmt_kept(value: float, rank) -> str:
 
 def fmt_rank(rank) -> str:
     return DENSE if rank is None else str(rank)
+
+
+def common_prefix(names: list[str], keep: int = 2) -> str:
+    """The dotted prefix (whole parts, ending in ".") that every name shares, leaving each name at
+    least its last ``keep`` parts: ``bert.encoder.layer.0.attention.self.query`` and
+    ``bert.encoder.layer.1.output.dense`` share ``bert.encoder.layer.``."""
+    if len(names) < 2:
+        return ""
+    split = [n.split(".") for n in names]
+    most = min(len(p) for p in split) - keep
+    n = 0
+    while n < most and len({p[n] for p in split}) == 1:
+        n += 1
+    return ".".join(split[0][:n]) + "." if n else ""
+
+
+def abbreviate(name: str) -> str:
+    """Every part but the last two to its first letter (two when it starts with "_"), indices
+    kept: ``encoder.layer.0.attention.self.query`` becomes ``e.l.0.a.self.query``."""
+    parts = name.split(".")
+    head, tail = parts[:-2], parts[-2:]
+    return ".".join([p if p.isdigit() else p[: 2 if p.startswith("_") else 1] for p in head] + tail)

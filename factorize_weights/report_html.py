@@ -243,7 +243,7 @@ def sweep_suggestion(sweep: dict, allowed_drop: float | None = None):
 
 
 def _ms(median: float, spread) -> str:
-    return f"{fmt_ms(median)} [{fmt_ms(spread[0])[:-3]}–{fmt_ms(spread[1])}]"
+    return f"{fmt_ms(median)} [{fmt_ms(spread[0], unit=False)}–{fmt_ms(spread[1])}]"
 
 
 def _sweep_baseline(points: list[dict]) -> list[list[str]]:

@@ -23,7 +23,7 @@ from typing import NamedTuple
 
 import numpy as np
 
-from .formatting import fmt_count, fmt_ms, fmt_points, fmt_share
+from .formatting import abbreviate, common_prefix, fmt_count, fmt_ms, fmt_points, fmt_share
 from .metrics import PERCENT
 
 # Okabe & Ito, "Color Universal Design" (2008): safe for protanopia, deuteranopia, tritanopia
@@ -63,33 +63,11 @@ def svg(fig, titles: dict[str, str] | None = None) -> str:
 LABEL_CHARS = 16
 
 
-def common_prefix(names: list[str]) -> str:
-    """The dotted prefix (whole parts, ending in ".") every name shares, leaving each name at least
-    its last part: ``bert.encoder.layer.0.attention.self.query`` and ``bert.encoder.layer.1.output.dense``
-    share ``bert.encoder.layer.``."""
-    if len(names) < 2:
-        return ""
-    split = [n.split(".") for n in names]
-    keep = min(len(p) for p in split) - 1
-    n = 0
-    while n < keep and len({p[n] for p in split}) == 1:
-        n += 1
-    return ".".join(split[0][:n]) + "." if n else ""
-
-
-def abbreviate(name: str) -> str:
-    """Every part but the last two to its first letter (two when it starts with "_"), numeric
-    indices kept: ``bert.encoder.layer.0.attention.self.query`` becomes ``b.e.l.0.a.self.query``."""
-    parts = name.split(".")
-    head, tail = parts[:-2], parts[-2:]
-    return ".".join([p if p.isdigit() else p[: 2 if p.startswith("_") else 1] for p in head] + tail)
-
-
 def layer_labels(names: list[str]) -> tuple[list[str], str]:
     """Distinct chart labels for layer names, in order, and the prefix they all lost: the common
     prefix goes, then labels longer than LABEL_CHARS are abbreviated (:func:`abbreviate`) unless
     that would make two labels equal (those stay whole)."""
-    prefix = common_prefix(names)
+    prefix = common_prefix(names, keep=1)  # a chart label may be the last part alone
     rest = [n[len(prefix):] for n in names]
     short = [abbreviate(r) if len(r) > LABEL_CHARS else r for r in rest]
     counts = Counter(short)

@@ -10,8 +10,8 @@ import shutil
 import sys
 
 from .report import next_steps
-from .formatting import (fmt_change, fmt_count, fmt_error, fmt_kept, fmt_mb, fmt_ms, fmt_rank, fmt_ratio,
-                         fmt_share, fmt_value)
+from .formatting import (abbreviate, common_prefix, fmt_change, fmt_count, fmt_error, fmt_kept, fmt_mb, fmt_ms,
+                         fmt_rank, fmt_ratio, fmt_share, fmt_value, NOT_APPLICABLE)
 
 __all__ = ["fmt_change", "fmt_value", "table", "layer_rows", "summary", "counted"]
 #: columns of the layer table left out first on a narrow terminal (report.md keeps them)
@@ -77,28 +77,6 @@ def table(head: list[str], rows: list[list[str]], width: int | None = None, righ
 
     note = [f"(shortened to fit the terminal: {'; '.join(said)}; {whole} has the whole table)"] if said else []
     return [line(head), line(["-" * w for w in widths])] + [line(r) for r in rows] + note
-
-
-def common_prefix(names: list[str]) -> str:
-    """The dotted prefix (whole parts, ending in ".") that every name shares, leaving each name at
-    least its last two parts: ``bert.encoder.layer.0.attention.self.query`` and
-    ``bert.encoder.layer.1.output.dense`` share ``bert.encoder.layer.``."""
-    if len(names) < 2:
-        return ""
-    split = [n.split(".") for n in names]
-    keep = min(len(p) for p in split) - 2
-    n = 0
-    while n < keep and len({p[n] for p in split}) == 1:
-        n += 1
-    return ".".join(split[0][:n]) + "." if n else ""
-
-
-def abbreviate(name: str) -> str:
-    """Every part but the last two to its first letter (two when it starts with "_"), indices
-    kept: ``encoder.layer.0.attention.self.query`` becomes ``e.l.0.a.self.query``."""
-    parts = name.split(".")
-    head, tail = parts[:-2], parts[-2:]
-    return ".".join([p if p.isdigit() else p[: 2 if p.startswith("_") else 1] for p in head] + tail)
 
 
 def _middle(text: str, n: int) -> str:
@@ -167,7 +145,7 @@ def int8_lines(q: dict) -> list[str]:
         before = v["metric"] - v["delta"]
         rows.append([v["name"], fmt_mb(v["size_bytes"]), fmt_value(q["metric"], v["metric"]),
                      fmt_change(q["metric"], before, v["metric"], q["metric"] not in ("mse",)),
-                     "—" if v["latency_ms"] is None else fmt_ms(v["latency_ms"])[:-3]])
+                     NOT_APPLICABLE if v["latency_ms"] is None else fmt_ms(v["latency_ms"], unit=False)])
     return [f"int8 ({q['quantization']}; {q['runtime']}, batch {q['batch']}, {q['threads']} thread(s)):"] + \
         ["  " + line for line in table(head, rows, right_from=1)]
 
@@ -208,7 +186,7 @@ def sweep_lines(doc: dict) -> list[str]:
         p0 = points[0]
         row = ["original", "100.0%", fmt_count(p0["params_before"]), "0", "—"]
         row += [fmt_value(name, p0["metric"]["before"]), ""] if name else []
-        row += [fmt_ms(p0["latency"]["before_ms"])[:-3] if p0["latency"] else "—"] if has_lat else []
+        row += [fmt_ms(p0["latency"]["before_ms"], unit=False) if p0["latency"] else "—"] if has_lat else []
         rows.append(row)
     for p in points:
         m, lat = p["metric"], p["latency"]
@@ -218,7 +196,7 @@ def sweep_lines(doc: dict) -> list[str]:
             row += [fmt_value(name, m["after"]), fmt_change(name, m["before"], m["after"], m["higher_is_better"])] if m \
                 else ["—", ""]
         if has_lat:
-            row += [fmt_ms(lat["after_ms"])[:-3] if lat else "—"]
+            row += [fmt_ms(lat["after_ms"], unit=False) if lat else "—"]
         rows.append(row)
     secs = doc["wall_seconds"]
     return [f"sweep, method {doc['method']}: spectra and calibration once ({secs['prepare']:.2f} s), "
