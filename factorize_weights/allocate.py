@@ -10,6 +10,10 @@ the plan by a bounded local search (lower one layer, spend the freed room). All 
 O(N log N) for N options in all, never quadratic in the number of layers. The result never
 exceeds the budget, and no layer is ever factorized at or above its break-even rank, because
 such ranks are not on the menu.
+
+A latency budget is the same knapsack with measured costs: each option's cost is its fitted time
+(costs.CostTable, whole nanoseconds), ranks no faster than the dense layer are not on the menu
+(break-even by time), and the time of everything that is not a selected layer is the fixed cost.
 """
 
 from __future__ import annotations
@@ -35,7 +39,8 @@ class Plan:
     ranks : dict of str to int or None
         ``None`` means the layer stays dense.
     units : str
-        ``"params"`` or ``"flops"``: what ``cost_before``, ``cost_after`` and ``limit`` count.
+        ``"params"``, ``"flops"`` or ``"ms"`` (a latency budget: predicted milliseconds of the
+        whole model): what ``cost_before``, ``cost_after`` and ``limit`` count.
     cost_before, cost_after : float
         Total cost of the selected layers before and after.
     limit : float or None
@@ -84,10 +89,13 @@ def _fixed_cost(record: LayerRecord, units: str) -> int:
     return record.bias_params if units == "params" else 0
 
 
-def _options(record, spectrum, units, rank_step, min_rank, effect=None, objective="error-sum"):
+NS = 1e6  # nanoseconds per millisecond: latency costs are whole nanoseconds, like the other counts
+
+
+def _options(record, spectrum, units, rank_step, min_rank, effect=None, objective="error-sum", latency=None):
     """(ranks, costs, errors) for one layer; the last option (rank -1) is "stay dense"."""
     m, n = record.matrix_shape
-    w = _cost_weight(record, units)
+    w = 1 if units == "ms" else _cost_weight(record, units)
     ranks = allowed_ranks(m, n, rank_step=rank_step, min_rank=min_rank)
     if spectrum is not None:
         ranks = ranks[ranks <= spectrum.max_rank]
@@ -98,18 +106,43 @@ def _options(record, spectrum, units, rank_step, min_rank, effect=None, objectiv
             errors = -np.log(np.maximum(1.0 - errors, 1e-12))
     else:
         errors = np.zeros(len(ranks))
-    costs = np.concatenate([ranks * (m + n) * w, [m * n * w]]).astype(float)
+    if units == "ms":
+        ranks, costs, dense = _timed(record, ranks, latency)
+        errors = errors[: len(ranks)]  # the faster ranks are a prefix (the fitted curve rises)
+        costs = np.concatenate([costs, [dense]])
+    else:
+        costs = np.concatenate([ranks * (m + n) * w, [m * n * w]]).astype(float)
     errors = np.concatenate([np.maximum(errors, 0.0), [0.0]])
     return np.concatenate([ranks, [-1]]), costs, errors
 
 
+def _timed(record, ranks: np.ndarray, latency) -> tuple[np.ndarray, np.ndarray, float]:
+    """The ranks faster than dense, their fitted times and the dense time, in whole nanoseconds
+    (strictly rising, so no two options cost the same)."""
+    table = latency.tables.get(record.name)
+    if table is None:  # not reached by the timed batch: it costs nothing, so it stays dense
+        return ranks[:0], np.zeros(0), 0.0
+    scale = latency.layer_scale
+    dense = float(np.round(table.dense_ms * scale * NS))
+    t = np.round(table.time_ms(ranks) * scale * NS)
+    steps = np.arange(len(t))
+    t = np.maximum.accumulate(t - steps) + steps  # rising by at least 1 ns per option
+    keep = int(np.searchsorted(t, dense, side="left"))  # strictly below dense
+    return ranks[:keep], t[:keep].astype(float), dense
+
+
 def units_of(budget: Budget) -> str:
-    return "flops" if budget.kind == "flops" else "params"
+    return {"flops": "flops", "latency": "ms"}.get(budget.kind, "params")
 
 
-def budget_limit(records: list[LayerRecord], budget: Budget) -> tuple[float, float]:
-    """``(cost_before, limit)`` of a shared budget over the selected layers."""
+def budget_limit(records: list[LayerRecord], budget: Budget, latency=None) -> tuple[float, float]:
+    """``(cost_before, limit)`` of a shared budget over the selected layers (for latency: of the
+    whole model's measured time, in nanoseconds)."""
     units = units_of(budget)
+    if units == "ms":
+        before = float(np.round(latency.whole_ms * NS))
+        limit = budget.value * NS if budget.absolute else budget.value * before
+        return before, float(np.floor(limit + 1e-9))
     before = float(
         sum(r.weight_params * _cost_weight(r, units) + _fixed_cost(r, units) for r in records)
     )
@@ -119,14 +152,19 @@ def budget_limit(records: list[LayerRecord], budget: Budget) -> tuple[float, flo
 
 
 def check_feasible(
-    records: list[LayerRecord], budget: Budget, *, rank_step: int = 1, min_rank: int = 1
+    records: list[LayerRecord], budget: Budget, *, rank_step: int = 1, min_rank: int = 1, latency=None
 ) -> None:
-    """Refuse a shared budget that even the smallest plan cannot meet, before any SVD runs."""
+    """Refuse a shared budget that even the smallest plan cannot meet, before any SVD runs (a
+    latency budget once its costs are measured: without them it is not checked here)."""
     if not budget.is_global:
         return
     if not records:
         raise InputError("no layers are selected for factorization (check --only/--skip)")
     units = units_of(budget)
+    if units == "ms":
+        if latency is not None:
+            _check_latency(records, budget, rank_step, min_rank, latency)
+        return
     before, limit = budget_limit(records, budget)
     smallest = 0.0
     for r in records:
@@ -140,6 +178,22 @@ def check_feasible(
         )
 
 
+def _fixed_ns(latency) -> float:
+    return float(np.round(latency.rest_ms * NS))
+
+
+def _check_latency(records, budget, rank_step, min_rank, latency) -> None:
+    before, limit = budget_limit(records, budget, latency)
+    fastest = _fixed_ns(latency) + sum(
+        float(_options(r, None, "ms", rank_step, min_rank, latency=latency)[1][0]) for r in records)
+    if fastest > limit:
+        raise InputError(
+            f"--budget {budget.text}: allows {limit / NS:.3f} ms but the fastest plan (every layer at its fastest "
+            f"rank, those no rank speeds up dense) is predicted at {fastest / NS:.3f} ms, "
+            f"{fastest / before:.2f} of the original's measured {before / NS:.3f} ms; everything that is not a "
+            f"selected layer takes {latency.rest_ms:.3f} ms ({latency.source})")
+
+
 def allocate(
     records: list[LayerRecord],
     spectra: list[Spectrum],
@@ -149,6 +203,7 @@ def allocate(
     min_rank: int = 1,
     effects: list | None = None,
     objective: str = "error-sum",
+    latency=None,
 ) -> Plan:
     """Choose a rank (or dense) for every record so the selected layers meet ``budget``.
 
@@ -168,6 +223,8 @@ def allocate(
         ``"energy-product"`` minimises the summed -log(1 - e_l), i.e. keeps the most of the product
         of kept energy fractions. Both agree for small errors; the product refuses to crush one
         layer (e_l -> 1 costs without bound) to spare a little in many.
+    latency : costs.LatencyProfile or None, optional
+        Measured costs; required by a latency budget (and read only by one).
 
     Returns
     -------
@@ -180,12 +237,16 @@ def allocate(
             f"--rank-step and --min-rank must be at least 1; got {rank_step}, {min_rank}"
         )
     units = units_of(budget)
+    if units == "ms" and latency is None:
+        raise InputError(f"--budget {budget.text}: a latency budget needs measured costs: give --heldout (a batch "
+                         "to time) or --latency-profile")
     effects = effects if effects is not None else [None] * len(records)
-    menus = [_options(r, s, units, rank_step, min_rank, e, objective) for r, s, e in zip(records, spectra, effects)]
-    fixed = sum(_fixed_cost(r, units) for r in records)
+    menus = [_options(r, s, units, rank_step, min_rank, e, objective, latency)
+             for r, s, e in zip(records, spectra, effects)]
+    fixed = _fixed_ns(latency) if units == "ms" else sum(_fixed_cost(r, units) for r in records)
     if budget.is_global:
-        check_feasible(records, budget, rank_step=rank_step, min_rank=min_rank)
-        before, limit = budget_limit(records, budget)
+        check_feasible(records, budget, rank_step=rank_step, min_rank=min_rank, latency=latency)
+        before, limit = budget_limit(records, budget, latency)
         chosen = _plan(menus, limit - fixed)
     else:
         before, limit = float(sum(r.params for r in records)), None
@@ -196,6 +257,8 @@ def allocate(
         rank = int(opt_ranks[idx])
         ranks[record.name] = None if rank < 0 else rank
         cost_after += float(costs[idx])
+    if units == "ms":  # nanoseconds were for exact room arithmetic; the plan states milliseconds
+        before, cost_after, limit = before / NS, cost_after / NS, limit / NS
     return Plan(budget, ranks, units, float(before), cost_after, limit, rank_step, min_rank)
 
 

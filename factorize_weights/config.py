@@ -88,6 +88,10 @@ class CompressConfig:
     latency_warmup: int = opt(5, "untimed runs first", group=ADVANCED, low=0, metavar="N",
                               commands=("compress", "sweep"))
     latency_repeats: int = opt(30, "timed runs per model (0: off)", group=LATENCY, low=0, metavar="N")
+    # None: a latency budget's cost tables are measured on this CPU (and cached in the user's cache folder)
+    latency_profile: str | None = opt(None, "with --budget latency=...: per-layer cost tables written by the "
+                                      "profile command on the target CPU (default: measured here, cached)",
+                                      group=LATENCY, metavar="FILE", commands=("compress", "sweep"))
     # refit layers in forward order to the original outputs; None: on for whitened (it won or tied
     # every row of reports/accuracy.md), off otherwise
     sequential: bool | None = opt(None, "refit layers in forward order to the original outputs (reduced-rank "

@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from . import effects as effects_mod
-from . import methods
+from . import latency_budget, methods
 from . import report as report_mod
 from .allocate import Plan, allocate, check_feasible
 from .backends import backend_for, backend_of
@@ -174,6 +174,7 @@ class Prepared:
     effects: dict = field(default_factory=dict)  # {name: effects.Effect} when allocating by output effect
     allocation: str = "error-sum"  # the resolved config.allocation
     bn_inputs: bool = False  # the resolved config.bn_inputs: BatchNorm input statistics weight plain factors
+    latency: object = None  # costs.LatencyProfile when a budget is a latency
 
     @property
     def backend(self):
@@ -224,6 +225,13 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
             raise InputError(f"{where}nothing to factorize: {len(records)} layer(s) found, all skipped")
     for budget in parsed:
         check_feasible(chosen, budget, rank_step=config.rank_step, min_rank=config.min_rank)
+    profile = None
+    if any(b.kind == "latency" for b in parsed):  # measured (or read) before any SVD, and checked
+        t1 = time.perf_counter()
+        profile = latency_budget.costs_for(model, chosen, heldout, config)
+        timings["latency_tables"] = time.perf_counter() - t1
+        for budget in parsed:
+            check_feasible(chosen, budget, rank_step=config.rank_step, min_rank=config.min_rank, latency=profile)
     sequential = run.sequential
     cal, order = None, [[r.name] for r in chosen]
     if calibration is not None:
@@ -250,7 +258,7 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
             reference.append((backend.predict(model, inputs, output=config.output), labels))
     timings["prepare"] = time.perf_counter() - t0
     return Prepared(model, config, records, decompositions, method, sequential, heldout, cal, metric_name,
-                    reference, timings, size, order, effects, allocation, bn_inputs)
+                    reference, timings, size, order, effects, allocation, bn_inputs, profile)
 
 
 def measure_effects(model, chosen: list[LayerRecord], decompositions: dict, calibration: HeldOut,
@@ -288,7 +296,7 @@ def plan_budget(prep: Prepared, budget: str) -> Plan:
     return allocate(chosen, [prep.decompositions[r.name].spectrum for r in chosen], parse_budget(budget),
                     rank_step=prep.config.rank_step, min_rank=prep.config.min_rank,
                     effects=[prep.effects.get(r.name) for r in chosen] if prep.effects else None,
-                    objective=prep.allocation)
+                    objective=prep.allocation, latency=prep.latency)
 
 
 def plan_for(model, config: CompressConfig, heldout: HeldOut | None = None, calibration: HeldOut | None = None):
@@ -306,6 +314,16 @@ def realize(prep: Prepared, budget: str, *, sources: dict | None = None, latency
     t0 = time.perf_counter()
     plan = plan_budget(prep, budget)
     timings["plan"] = time.perf_counter() - t0
+    latency_plan = None
+    if plan.budget.kind == "latency":  # checked end to end on this CPU, tightened while it misses
+        t0 = time.perf_counter()
+        def plain(p: Plan):  # time depends on the ranks only: plain factors of them will do
+            return backend.rewrite(model, prep.records, PlannedFactors(prep.records, p.ranks, prep.decompositions,
+                                                                       config.split))
+
+        plan, latency_plan = latency_budget.check_plan(
+            prep, plan, latency_budget.replanner(prep, plan.budget, plan.limit), plain)
+        timings["latency_check"] = time.perf_counter() - t0
     t0 = time.perf_counter()
     factors = PlannedFactors(prep.records, plan.ranks, prep.decompositions, config.split)
     fits, measured = {}, factors.weight_errors
@@ -343,7 +361,7 @@ def realize(prep: Prepared, budget: str, *, sources: dict | None = None, latency
         timings=timings, latency=lat, error_samples=min(config.error_samples, len(heldout)) if heldout is not None else 0,
         method=prep.method, calibration=prep.calibration, fits=fits, recovery=recovery, sequential=prep.sequential,
         decompositions=prep.decompositions, effects=prep.effects, allocation=prep.allocation,
-        bn_inputs=prep.bn_inputs,
+        bn_inputs=prep.bn_inputs, latency_profile=prep.latency, latency_plan=latency_plan,
     )
     return CompressResult(factorized, plan, prep.records, prep.spectra, metric, report, errors)
 

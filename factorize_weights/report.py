@@ -83,6 +83,8 @@ def build_report(
     effects: dict | None = None,
     allocation: str = "error-sum",
     bn_inputs: bool = False,
+    latency_profile=None,
+    latency_plan: dict | None = None,
 ) -> dict:
     """The content of ``report.json``."""
     chosen = [r for r in records if r.skip_reason is None]
@@ -111,6 +113,8 @@ def build_report(
             entry["input_statistics_from"] = record.input_from
         if effects and record.name in effects:
             entry["output_effect"] = effects[record.name].to_dict()
+        if latency_profile is not None:
+            entry["time_ms"] = _layer_time(latency_profile, record.name, entry["rank"])
         layers.append(entry)
     params_before = sum(e["params_before"] for e in layers)
     params_after = sum(e["params_after"] for e in layers)
@@ -158,12 +162,24 @@ def build_report(
             "output_error_samples": error_samples,
         },
         "latency": _latency_entry(latency, layers),
+        "latency_plan": latency_plan,
         "skipped": [{"name": r.name, "kind": r.kind, "reason": r.skip_reason} for r in records if r.skip_reason],
         "layers": layers,
         "config": config.to_dict(),
         "environment": {"python": platform.python_version(), "machine": platform.machine(), **_versions()},
         "wall_seconds": {k: round(v, 3) for k, v in timings.items()},
     }
+
+
+def _layer_time(profile, name: str, rank) -> dict | None:
+    """A layer's time in the plan: dense and as planned (fitted from its cost table, scaled as the
+    allocator scales it), or None when the timed batch does not reach it."""
+    table = profile.tables.get(name)
+    if table is None:
+        return None
+    s = profile.layer_scale
+    dense = table.dense_ms * s
+    return {"dense": dense, "planned": dense if rank is None else float(table.time_ms([rank])[0]) * s}
 
 
 def _latency_entry(latency: dict | None, layers: list[dict]) -> dict | None:

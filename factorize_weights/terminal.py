@@ -85,8 +85,9 @@ def _middle(text: str, n: int) -> str:
 
 def layer_rows(report: dict) -> tuple[list[str], list[list[str]]]:
     has_out = any(e.get("output_error") is not None for e in report["layers"])
+    has_time = any(e.get("time_ms") for e in report["layers"])  # a latency budget: its measured costs
     head = ["layer", "kind", "matrix", "rank", "break-even", "params before", "params after", "energy kept",
-            "weight error"] + (["output error"] if has_out else [])
+            "weight error"] + (["output error"] if has_out else []) + (["ms dense", "ms planned"] if has_time else [])
     rows = []
     for e in report["layers"]:
         row = [e["name"], e["kind"], "x".join(str(v) for v in e["matrix_shape"]),
@@ -94,8 +95,30 @@ def layer_rows(report: dict) -> tuple[list[str], list[list[str]]]:
                fmt_count(e["params_after"]), fmt_kept(e["energy_kept"], e["rank"]), fmt_error(e["weight_error"], e["rank"])]
         if has_out:
             row.append(fmt_error(e.get("output_error"), e["rank"]))
+        if has_time:
+            t = e.get("time_ms")
+            row += [fmt_ms(t["dense"], unit=False), fmt_ms(t["planned"], unit=False)] if t else [NOT_APPLICABLE] * 2
         rows.append(row)
     return head, rows
+
+
+def latency_budget_lines(report: dict) -> list[str]:
+    """A latency budget: what was predicted from the cost tables, and what the check measured."""
+    b, lp = report["budget"], report.get("latency_plan") or {}
+    lines = [f"budget {b['given']}: predicted {fmt_ms(b['used'])} of {fmt_ms(b['limit'])} allowed (original "
+             f"{fmt_ms(b['before'])}; cost tables {lp.get('source', 'measured here')})"]
+    rounds = lp.get("rounds") or []
+    if rounds:
+        r = next((r for r in reversed(rounds) if r["predicted_ms"] == b["used"]), rounds[-1])
+        verdict = "met" if lp.get("met") else "NOT met"
+        share = lp.get("delivered_share")
+        lines.append(f"checked on this CPU: {verdict}, measured {fmt_ms(r['measured_ms'])} against the original's "
+                     f"{fmt_ms(r['original_measured_ms'])} ({fmt_share(r['measured_ratio'])})"
+                     + (f"; {fmt_share(share)} of the predicted saving delivered" if share is not None else "")
+                     + (f"; {len(rounds)} timing rounds" if len(rounds) > 1 else ""))
+    elif lp.get("why_unchecked"):
+        lines.append(f"not checked on this CPU: {lp['why_unchecked']}")
+    return lines
 
 
 def summary(report: dict, out=None, files: list[str] | None = None, hints: tuple[str, ...] = ()) -> list[str]:
@@ -103,7 +126,9 @@ def summary(report: dict, out=None, files: list[str] | None = None, hints: tuple
     what next (how to load the result, whether it is faster; ``hints`` from the caller)."""
     t, b = report["totals"], report["budget"]
     lines = []
-    if b["limit"] is not None:
+    if b["units"] == "ms":
+        lines += latency_budget_lines(report)
+    elif b["limit"] is not None:
         lines.append(f"budget {b['given']}: {'met' if b['met'] else 'NOT met'} ({b['used']:,.0f} of {b['limit']:,.0f} "
                      f"{b['units']} allowed)")
     else:

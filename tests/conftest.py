@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import os
+
 import numpy as np
 import pytest
 import torch
@@ -30,6 +32,19 @@ def run_cli(capsys, *argv):
 @pytest.fixture
 def rng():
     return np.random.default_rng(12345)
+
+
+@pytest.fixture(autouse=True, scope="session")
+def private_cache(tmp_path_factory):
+    """Latency cost tables measured by a test are cached in a folder of the test session, never in
+    the user's cache (costs.cache_path reads XDG_CACHE_HOME)."""
+    old = os.environ.get("XDG_CACHE_HOME")
+    os.environ["XDG_CACHE_HOME"] = str(tmp_path_factory.mktemp("cache"))
+    yield
+    if old is None:
+        os.environ.pop("XDG_CACHE_HOME", None)
+    else:
+        os.environ["XDG_CACHE_HOME"] = old
 
 
 @pytest.fixture(autouse=True)

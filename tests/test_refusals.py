@@ -67,6 +67,7 @@ def w(tmp_path_factory):
     (d / "junk.safetensors.index.json").write_text("not json")
     (d / "folder.safetensors").mkdir()
     rng = np.random.default_rng(0)
+    _profiles(d)
     np.savez(d / "held.npz", inputs=rng.standard_normal((40, 20)).astype(np.float32), labels=rng.integers(0, 5, 40))
     np.savez(d / "cal.npz", inputs=rng.standard_normal((40, 20)).astype(np.float32))
     np.savez(d / "nolabels.npz", inputs=rng.standard_normal((40, 20)).astype(np.float32))
@@ -104,6 +105,38 @@ def w(tmp_path_factory):
 def compress(w, *extra, weights="net.safetensors"):
     head = ["compress", "--model", f"{w}/net.py:build", "--budget", "params=0.5", "--out", w / "out"]
     return head + (["--weights", w / weights] if weights else []) + list(extra)
+
+
+def latency(w, *extra, budget="latency=0.7"):
+    return swap(compress(w, "--heldout", w / "held.npz", *extra), "--budget", budget)
+
+
+def _profiles(d) -> None:
+    """Profile files for the workspace's model (layers 0, 2, 4 of 20 -> 64 -> 64 -> 5), each wrong
+    in one way, plus a damaged one and one with a field cut."""
+    import json
+
+    layers = [{"name": "0", "kind": "linear", "matrix": [64, 20]}, {"name": "2", "kind": "linear", "matrix": [64, 64]},
+              {"name": "4", "kind": "linear", "matrix": [5, 64]}]
+    tables = [{"name": l["name"], "input_shape": [1, l["matrix"][1]], "ranks": [1, 2], "factor_ms": [0.01, 0.02],
+               "dense_ms": 0.03, "spread": 0.1} for l in layers]
+    good = {"kind": "factorize-weights latency profile", "version": 1, "created": "", "machine": {"cpu": "x", "cores": 1},
+            "runtime": {"name": "torch", "version": "2"}, "threads": 1, "batch": 1, "input_shapes": {"inputs": [1, 20]},
+            "model": {"fingerprint": "", "layers": layers}, "whole_ms": 0.2, "whole_spread_ms": [0.1, 0.3],
+            "seconds": 1.0, "tables": tables}
+    variants = {
+        "threads": {"threads": 4},
+        "batch": {"batch": 8, "input_shapes": {"inputs": [8, 20]}},
+        "ort": {"runtime": {"name": "onnxruntime", "version": "1"}},
+        "other": {"model": {"fingerprint": "", "layers": layers[:2] + [{"name": "5", "kind": "linear", "matrix": [5, 64]}]},
+                  "tables": tables[:2] + [dict(tables[2], name="5")]},
+    }
+    for name, change in variants.items():
+        (d / f"{name}.profile.json").write_text(json.dumps({**good, **change}))
+    cut = dict(good)
+    del cut["whole_ms"]
+    (d / "cut.profile.json").write_text(json.dumps(cut))
+    (d / "junk.profile.json").write_text('{"kind": "factorize-weights latency profile", "version": 1,')
 
 
 def swap(argv, flag, value):
@@ -261,6 +294,35 @@ CASES = [
      ["--int8 quantizes ONNX models", "--export-onnx"]),
     ("keep-within without data", lambda w: without(compress(w, "--keep-within", "1"), "--budget"), 2,
      ["--keep-within needs --heldout"]),
+    # latency budgets (costs.py, latency_budget.py)
+    ("latency without data", lambda w: swap(compress(w), "--budget", "latency=0.7"), 2,
+     ["a latency budget needs --heldout"]),
+    ("latency with timing off", lambda w: latency(w, "--latency-repeats", "0"), 2, ["--latency-repeats 0"]),
+    ("profile without a latency budget", lambda w: compress(w, "--heldout", w / "held.npz", "--latency-profile",
+                                                            w / "threads.profile.json"), 2,
+     ["--latency-profile holds the cost tables of a latency budget"]),
+    ("latency fraction above one", lambda w: swap(compress(w), "--budget", "latency=2"), 2,
+     ["latency fraction must be in (0, 1]", "latency=2ms"]),
+    ("latency not a number", lambda w: swap(compress(w), "--budget", "latency=fast"), 2,
+     ["latency takes a fraction", "'fast'"]),
+    ("latency out of reach", lambda w: latency(w, budget="latency=0.01"), 2,
+     ["--budget latency=0.01", "the fastest plan", "predicted at"]),
+    ("profile missing", lambda w: latency(w, "--latency-profile", w / "gone.profile.json"), 2,
+     ["gone.profile.json", "no such file", "factorize-weights profile"]),
+    ("profile damaged", lambda w: latency(w, "--latency-profile", w / "junk.profile.json"), 2,
+     ["junk.profile.json", "not a readable profile"]),
+    ("profile of another kind", lambda w: latency(w, "--latency-profile", w / "run.toml"), 2,
+     ["run.toml", "not a readable profile"]),
+    ("profile with a field missing", lambda w: latency(w, "--latency-profile", w / "cut.profile.json"), 2,
+     ["cut.profile.json", "damaged profile"]),
+    ("profile of another model", lambda w: latency(w, "--latency-profile", w / "other.profile.json"), 2,
+     ["other.profile.json", "made for another model", "'4'"]),
+    ("profile for other threads", lambda w: latency(w, "--latency-profile", w / "threads.profile.json"), 2,
+     ["threads.profile.json", "measured with 4 thread(s)", "--latency-threads 4"]),
+    ("profile for other shapes", lambda w: latency(w, "--latency-profile", w / "batch.profile.json"), 2,
+     ["batch.profile.json", "inputs 8x20", "profile again"]),
+    ("profile for another runtime", lambda w: latency(w, "--latency-profile", w / "ort.profile.json"), 2,
+     ["ort.profile.json", "measured in onnxruntime", "runs in torch"]),
 ]
 
 
@@ -306,6 +368,9 @@ RULE_CASES = {
     "int8-needs-onnx": "int8 of a pytorch model",
     "keep-within-needs-heldout": "keep-within without data",
     "selection-needs-keep-within": "selection without search",
+    "latency-needs-heldout": "latency without data",
+    "latency-needs-timing": "latency with timing off",
+    "profile-needs-latency-budget": "profile without a latency budget",
 }
 
 

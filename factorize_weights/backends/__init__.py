@@ -87,6 +87,12 @@ class Backend(Protocol):
     def timer(self, model, inputs, threads: int) -> Callable[[], object]:
         """A callable that runs one forward pass and nothing else."""
 
+    def layer_timers(self, model, records: list[LayerRecord], inputs, threads: int) -> dict:
+        """``{name: {"shape", "make", "calls", "baseline"}}`` for each layer ``inputs`` reach: the
+        input shape it sees, ``make(None)`` running the dense layer alone once and ``make(k)`` its
+        factor pair of rank k, how often a forward pass calls it, and optionally a callable with the
+        same call overhead and no work (subtracted; costs.measure_table)."""
+
     def save_model(self, model, folder: Path) -> list[str]:
         """Write the model into ``folder``; the file names written."""
 

@@ -14,13 +14,14 @@ spatial work (same pads/strides/dilations/auto_pad), the second holds A (m x k) 
 
 One concern per file: ``model`` (the model in memory, loading), ``layers`` (discovery, matrix
 views, rewrite, save), ``running`` (onnxruntime sessions, feeds, timing, int8), ``paired`` (layer
-inputs for calibration).
+inputs for calibration), ``layer_timing`` (each node and its factor pair run alone, for latency).
 """
 
 from __future__ import annotations
 
 from pathlib import Path
 
+from .layer_timing import input_shapes, layer_timers  # noqa: F401
 from .layers import check, count_params, discover, rewrite, save, size_bytes, weight_matrix  # noqa: F401
 from .model import TWO_GB, OnnxModel, load, looks_like_onnx  # noqa: F401
 from .paired import (  # noqa: F401

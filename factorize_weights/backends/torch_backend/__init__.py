@@ -12,6 +12,7 @@ concern per file:
 - ``paired``    layer inputs for calibration, one model or two side by side; replacement errors
 - ``attention`` ``nn.MultiheadAttention`` as four splittable projections
 - ``recovery``  fine-tuning of the factor pairs
+- ``layer_timing`` each layer's input shape, and its dense and factorized forms run alone (latency)
 """
 
 from __future__ import annotations
@@ -20,6 +21,7 @@ from .layers import (  # noqa: F401
     OVERRIDE_MISMATCH, OVERRIDE_REASON, FactorPair, count_params, discover, load_saved_weights, normalize, rebuild,
     rewrite, save_weights, skeleton, weight_matrix,
 )
+from .layer_timing import input_shapes, layer_timers  # noqa: F401
 from .loading import (  # noqa: F401
     NESTED_KEYS, CheckpointNotice, ShardedCheckpoint, build_model, load_factory, load_pretrained, load_weights,
     read_checkpoint,

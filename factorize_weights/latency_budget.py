@@ -1,0 +1,203 @@
+"""Latency budgets end to end: the cost tables a run plans with (a profile file made on the target
+CPU, the cache, or measured here) and the check of a plan on this CPU, tightened until the
+rewritten model meets the budget in a side-by-side timing with the original.
+
+The time a plan takes depends on its ranks and shapes only, never on the factor values, so the
+check times plain factors of the planned ranks; the calibrated factors (refits, recovery) are
+made once, for the plan that passed.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import importlib.metadata
+import time
+
+import numpy as np
+
+from . import costs
+from . import latency as latency_mod
+from .allocate import Plan, allocate
+from .backends import backend_for
+from .budget import Budget
+from .config import CompressConfig
+from .errors import InputError
+from .progress import bar
+from .records import LayerRecord
+
+#: Rounds of the end-to-end check: the plan is re-made at most this many times after the first.
+CHECK_ROUNDS = 3
+#: Each tightening aims this much below what the last measurement asks for, so that one round
+#: usually suffices (the measured/predicted ratio itself moves when ranks change).
+MARGIN = 0.98
+
+
+def runtime_of(backend) -> dict:
+    name = backend.RUNTIME
+    try:
+        version = importlib.metadata.version(name)
+    except importlib.metadata.PackageNotFoundError:
+        version = "unknown"
+    return {"name": name, "version": version}
+
+
+def shapes_of(batch) -> dict:
+    """``{input name: shape}`` of a timed batch (``"inputs"`` for a single array)."""
+    if isinstance(batch, dict):
+        return {str(k): [int(d) for d in v.shape] for k, v in sorted(batch.items())}
+    return {"inputs": [int(d) for d in batch.shape]}
+
+
+def measure_profile(model, records: list[LayerRecord], batch, config: CompressConfig) -> costs.LatencyProfile:
+    """Cost tables of ``records`` and the whole model's time on ``batch``, in the model's runtime,
+    with ``config.latency_threads`` threads; one layer at a time."""
+    backend = backend_for(model)
+    threads = config.latency_threads
+    t0 = time.perf_counter()
+    with backend.timing([model], threads):
+        (whole, p10, p90), = costs.time_side_by_side([backend.timer(model, batch, threads)],
+                                                     warmup=config.latency_warmup, repeats=max(config.latency_repeats, 1))
+        timers = backend.layer_timers(model, records, batch, threads)
+        tables = {}
+        for r in bar(records, config, "cost tables"):
+            if r.name not in timers:
+                continue  # not reached by this input: it costs nothing at run time
+            t = timers[r.name]
+            ranks = costs.grid_ranks(*r.matrix_shape, rank_step=config.rank_step, min_rank=config.min_rank)
+            tables[r.name] = costs.measure_table(r.name, t["shape"], t["make"], ranks, baseline=t.get("baseline"),
+                                                 calls=t.get("calls", 1))
+    return costs.LatencyProfile(
+        runtime=runtime_of(backend), threads=threads, batch=config.latency_batch, input_shapes=shapes_of(batch),
+        layers=costs.structure(records), whole_ms=whole * 1e3, whole_spread_ms=[p10 * 1e3, p90 * 1e3],
+        tables=tables, created=costs.now(), seconds=time.perf_counter() - t0)
+
+
+def _cache_key(profile_fields: dict) -> dict:
+    return {**profile_fields, "machine": costs.machine(), "profile_version": costs.PROFILE_VERSION}
+
+
+def costs_for(model, records: list[LayerRecord], heldout, config: CompressConfig) -> costs.LatencyProfile:
+    """The cost tables a latency budget plans with: ``config.latency_profile`` checked against this
+    model and run, else tables cached from an earlier run on this CPU, else measured now (and
+    cached)."""
+    backend = backend_for(model)
+    batch = latency_mod.batch_of(heldout.inputs, config.latency_batch)
+    layers = costs.structure(records)
+    runtime = runtime_of(backend)
+    what = {"layers": layers, "runtime": runtime, "threads": config.latency_threads, "batch": config.latency_batch,
+            "input_shapes": shapes_of(batch), "rank_step": config.rank_step, "min_rank": config.min_rank}
+    if config.latency_profile:
+        profile = costs.load_profile(config.latency_profile)
+        costs.check_profile(profile, layers=layers, runtime=runtime["name"], threads=config.latency_threads,
+                            batch=config.latency_batch, input_shapes=what["input_shapes"],
+                            where=f"--latency-profile {config.latency_profile}")
+        return profile
+    path = costs.cache_path(_cache_key(what))
+    if path.is_file():
+        try:
+            profile = costs.load_profile(path, flag="cached profile")
+            profile.source = f"cached from an earlier run ({path})"
+            return profile
+        except InputError:
+            pass  # a damaged cache entry is measured again
+    profile = measure_profile(model, records, batch, config)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        profile.save(path)
+    except OSError:
+        pass  # a cache that cannot be written only costs the next run a measurement
+    return profile
+
+
+def _time_plan(prep, plan: Plan, batch, config: CompressConfig, rewrite) -> dict:
+    """The original and ``rewrite(plan)`` (any factors of the plan's ranks), timed side by side
+    (samples of several calls for a fast model, so the medians are tight)."""
+    backend = prep.backend
+    candidate = rewrite(plan)
+    threads = config.latency_threads
+    with backend.timing([prep.model, candidate], threads):
+        before, after = costs.time_side_by_side(
+            [backend.timer(prep.model, batch, threads), backend.timer(candidate, batch, threads)],
+            warmup=config.latency_warmup, repeats=config.latency_repeats)
+    ms = [[v * 1e3 for v in t] for t in (before, after)]
+    return {"before_ms": ms[0][0], "after_ms": ms[1][0], "before_spread_ms": ms[0][1:], "after_spread_ms": ms[1][1:],
+            "repeats": config.latency_repeats}
+
+
+def _median_error(spread_ms: list, repeats: int) -> float:
+    """Standard error of a median of ``repeats`` timings from their 10th-90th percentile width:
+    sigma ~ width / 2.563 for a normal spread, and the median's error is 1.2533 sigma / sqrt(n)
+    (asymptotic efficiency of the median; common statistics, e.g. Kendall & Stuart)."""
+    return 1.2533 * (spread_ms[1] - spread_ms[0]) / 2.563 / np.sqrt(max(repeats, 1))
+
+
+def check_plan(prep, plan: Plan, replan, rewrite) -> tuple[Plan, dict]:
+    """Time the plan's rewrite (``rewrite(plan)``: a model with factors of its ranks) against the
+    original on this CPU; while it misses the budget by more than the measured spread, re-plan
+    for a proportionally smaller predicted time (``replan(aim_ms)`` gives the plan for an
+    absolute aim) and time again, at most
+    :data:`CHECK_ROUNDS` times. Returns the plan kept and what was measured."""
+    config, profile, budget = prep.config, prep.latency, plan.budget
+    summary = {"source": profile.source, "profile_machine": profile.machine, "limit_ms": plan.limit,
+               "original_ms": profile.whole_ms, "rest_ms": profile.rest_ms, "layer_scale": profile.layer_scale,
+               "rounds": [], "checked": False}
+    if not profile.same_machine():
+        summary["why_unchecked"] = (f"the profile was made on another CPU ({profile.machine.get('cpu')}); time the "
+                                    "result there (factorize-weights evaluate ... on that machine)")
+        return plan, _finish(summary, plan, None)
+    batch = latency_mod.batch_of(prep.heldout.inputs, config.latency_batch)
+    aim = plan.limit
+    best = None
+    for i in range(CHECK_ROUNDS + 1):
+        t = _time_plan(prep, plan, batch, config, rewrite)
+        ratio = t["after_ms"] / t["before_ms"]
+        se_after, se_before = _median_error(t["after_spread_ms"], t["repeats"]), _median_error(t["before_spread_ms"], t["repeats"])
+        if budget.absolute:  # milliseconds as measured
+            achieved, goal, slack = t["after_ms"], budget.value, 2 * se_after
+        else:  # a fraction of the original's time, both measured now
+            achieved, goal = ratio, budget.value
+            slack = 2 * ratio * float(np.hypot(se_after / t["after_ms"], se_before / t["before_ms"]))
+        met = achieved <= goal + slack
+        summary["rounds"].append({"predicted_ms": plan.cost_after, "measured_ms": t["after_ms"],
+                                  "original_measured_ms": t["before_ms"], "measured_ratio": ratio,
+                                  "spread_ms": t["after_spread_ms"], "tolerance": slack, "met": met})
+        if best is None or met or achieved < best[1]:
+            best = (plan, achieved, met)
+        if met or i == CHECK_ROUNDS:
+            break
+        aim = aim * goal / achieved * MARGIN
+        try:
+            plan = replan(aim)
+        except InputError:  # no plan is predicted that fast: keep the fastest one measured
+            summary["stopped"] = "no faster plan exists"
+            break
+    plan, _, met = best
+    summary["checked"] = True
+    return plan, _finish(summary, plan, met)
+
+
+def _finish(summary: dict, plan: Plan, met) -> dict:
+    summary["met"] = met
+    summary["predicted_ms"] = plan.cost_after
+    kept = [r for r in summary["rounds"] if r["predicted_ms"] == plan.cost_after]
+    if kept:
+        r = kept[-1]
+        # the share of the predicted saving the CPU delivered, both as fractions of the original
+        predicted_saving = 1 - plan.cost_after / plan.cost_before
+        measured_saving = 1 - r["measured_ratio"]
+        summary["delivered_share"] = measured_saving / predicted_saving if predicted_saving > 0 else None
+    return summary
+
+
+def replanner(prep, budget: Budget, limit_ms: float, allocate_fn=allocate):
+    """``aim_ms -> Plan``: the prepared run allocated for an absolute predicted time (the plan
+    still states the user's budget and its limit)."""
+    def replan(aim_ms: float) -> Plan:
+        chosen = prep.selected
+        inner = dataclasses.replace(budget, value=aim_ms, absolute=True, text=f"latency={aim_ms:.4f}ms")
+        plan = allocate_fn(chosen, [prep.decompositions[r.name].spectrum for r in chosen], inner,
+                           rank_step=prep.config.rank_step, min_rank=prep.config.min_rank,
+                           effects=[prep.effects.get(r.name) for r in chosen] if prep.effects else None,
+                           objective=prep.allocation, latency=prep.latency)
+        return dataclasses.replace(plan, budget=budget, limit=limit_ms)
+    return replan
