@@ -14,6 +14,7 @@ without one, the tables are measured on this machine and cached (:func:`cache_pa
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import json
 import math
@@ -231,6 +232,14 @@ class LatencyProfile:
         total = sum(t.dense_ms for t in self.tables.values())
         return min(1.0, self.whole_ms / total) if total > 0 else 1.0
 
+    def restricted(self, names) -> "LatencyProfile":
+        """The profile for a run that selects only ``names``: the other layers' time joins the rest."""
+        names = set(names)
+        if names >= set(self.tables):
+            return self
+        return dataclasses.replace(self, tables={n: t for n, t in self.tables.items() if n in names},
+                                   layers=[d for d in self.layers if d["name"] in names])
+
     def same_machine(self) -> bool:
         here = machine()
         return self.machine.get("cpu") == here["cpu"] and self.machine.get("cores") == here["cores"]
@@ -295,7 +304,7 @@ def check_profile(profile: LatencyProfile, *, layers: list[dict], runtime: str, 
         raise InputError(f"{where}: measured in {profile.runtime.get('name')}, but this model runs in {runtime}")
     have = {d["name"]: d for d in profile.layers}
     want = {d["name"]: d for d in layers}
-    missing = [n for n in want if n not in have or n not in profile.tables]
+    missing = [n for n in want if n not in have]
     if missing:
         raise InputError(f"{where}: made for another model: it has no table for layer {missing[0]!r}"
                          + (f" (and {len(missing) - 1} more)" if len(missing) > 1 else ""))

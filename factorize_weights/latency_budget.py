@@ -91,7 +91,7 @@ def costs_for(model, records: list[LayerRecord], heldout, config: CompressConfig
         costs.check_profile(profile, layers=layers, runtime=runtime["name"], threads=config.latency_threads,
                             batch=config.latency_batch, input_shapes=what["input_shapes"],
                             where=f"--latency-profile {config.latency_profile}")
-        return profile
+        return profile.restricted(r.name for r in records)
     path = costs.cache_path(_cache_key(what))
     if path.is_file():
         try:
@@ -151,14 +151,15 @@ def check_plan(prep, plan: Plan, replan, rewrite) -> tuple[Plan, dict]:
     for i in range(CHECK_ROUNDS + 1):
         t = _time_plan(prep, plan, batch, config, rewrite)
         ratio = t["after_ms"] / t["before_ms"]
-        se_after, se_before = _median_error(t["after_spread_ms"], t["repeats"]), _median_error(t["before_spread_ms"], t["repeats"])
+        se_after = _median_error(t["after_spread_ms"], t["repeats"])
+        se_before = _median_error(t["before_spread_ms"], t["repeats"])
         if budget.absolute:  # milliseconds as measured
             achieved, goal, slack = t["after_ms"], budget.value, 2 * se_after
         else:  # a fraction of the original's time, both measured now
             achieved, goal = ratio, budget.value
             slack = 2 * ratio * float(np.hypot(se_after / t["after_ms"], se_before / t["before_ms"]))
         met = achieved <= goal + slack
-        summary["rounds"].append({"predicted_ms": plan.cost_after, "measured_ms": t["after_ms"],
+        summary["rounds"].append({"ranks": dict(plan.ranks), "predicted_ms": plan.cost_after, "measured_ms": t["after_ms"],
                                   "original_measured_ms": t["before_ms"], "measured_ratio": ratio,
                                   "spread_ms": t["after_spread_ms"], "tolerance": slack, "met": met})
         if best is None or met or achieved < best[1]:

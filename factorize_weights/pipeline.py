@@ -366,6 +366,23 @@ def realize(prep: Prepared, budget: str, *, sources: dict | None = None, latency
     return CompressResult(factorized, plan, prep.records, prep.spectra, metric, report, errors)
 
 
+def profile_latency(model, heldout: HeldOut, config: CompressConfig | None = None):
+    """The cost tables a latency budget plans with, measured on this CPU (the ``profile``
+    command): the selected layers as ``compress`` would find them, timed on a batch of
+    ``config.latency_batch`` samples of ``heldout`` with ``config.latency_threads`` threads."""
+    config = config or CompressConfig()
+    backend = backend_for(model)
+    model = backend.normalize(model)
+    check_fits(model, heldout, "--heldout", config.output)
+    records = backend.discover(model, only=config.only, skip=config.skip)
+    backend.measure_positions(model, records, heldout.inputs)  # overridden forward()s are checked here, as in compress
+    chosen = selected(records)
+    if not chosen:
+        raise InputError(f"nothing to profile: {len(records)} layer(s) found, none can be factorized")
+    batch = latency_budget.latency_mod.batch_of(heldout.inputs, config.latency_batch)
+    return latency_budget.measure_profile(model, chosen, batch, config)
+
+
 def inspect_model(model, config: CompressConfig | None = None) -> dict:
     """Spectra and break-even ranks of every layer, no rewrite (the ``inspect`` command)."""
     config = config or CompressConfig()

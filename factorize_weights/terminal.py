@@ -102,6 +102,29 @@ def layer_rows(report: dict) -> tuple[list[str], list[list[str]]]:
     return head, rows
 
 
+def latency_line(lat: dict) -> str:
+    """The side-by-side timing of the original and the result, in one line."""
+    flops = f"FLOPs predict {fmt_ratio(lat['predicted_speedup'] or 1)}; " if lat.get("predicted_speedup") else ""
+    return (f"latency {fmt_ms(lat['before_ms'])} -> {fmt_ms(lat['after_ms'])} ({fmt_ratio(lat['speedup'])}; {flops}"
+            f"{lat['runtime']}, batch {lat['batch']}, {lat['threads']} thread{'s' if lat['threads'] != 1 else ''})"
+            + ("; SLOWER than the original on this CPU" if lat["speedup"] < 1 else ""))
+
+
+def profile_rows(profile) -> tuple[list[str], list[list[str]]]:
+    """A profile's tables: per layer its input, dense time, the fastest factor pair measured and
+    the largest timed rank still faster than dense (break-even by time)."""
+    head = ["layer", "input", "dense ms", "fastest ms", "at rank", "faster up to rank", "ranks timed"]
+    rows = []
+    for t in profile.tables.values():
+        i = min(range(len(t.factor_ms)), key=t.factor_ms.__getitem__) if t.factor_ms else None
+        faster = [k for k, ms in zip(t.ranks, t.factor_ms) if ms < t.dense_ms]
+        rows.append([t.name, "x".join(str(d) for d in t.input_shape), fmt_ms(t.dense_ms, unit=False),
+                     NOT_APPLICABLE if i is None else fmt_ms(t.factor_ms[i], unit=False),
+                     NOT_APPLICABLE if i is None else str(t.ranks[i]),
+                     str(max(faster)) if faster else "none (stays dense)", str(len(t.ranks))])
+    return head, rows
+
+
 def latency_budget_lines(report: dict) -> list[str]:
     """A latency budget: what was predicted from the cost tables, and what the check measured."""
     b, lp = report["budget"], report.get("latency_plan") or {}
@@ -145,10 +168,7 @@ def summary(report: dict, out=None, files: list[str] | None = None, hints: tuple
                      f"({fmt_change(m['name'], m['before'], m['after'], m['higher_is_better'])}; {counted(m)})")
     lat = report.get("latency")
     if lat:
-        lines.append(f"latency {fmt_ms(lat['before_ms'])} -> {fmt_ms(lat['after_ms'])} ({fmt_ratio(lat['speedup'])}; "
-                     f"FLOPs predict {fmt_ratio(lat['predicted_speedup'] or 1)}; {lat['runtime']}, batch {lat['batch']}, "
-                     f"{lat['threads']} thread{'s' if lat['threads'] != 1 else ''})"
-                     + ("; SLOWER than the original on this CPU" if lat["speedup"] < 1 else ""))
+        lines.append(latency_line(lat))
     q = report.get("int8")
     if q:
         lines += int8_lines(q)

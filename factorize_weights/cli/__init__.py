@@ -1,4 +1,4 @@
-"""Command line: ``factorize-weights inspect | compress | sweep | evaluate``.
+"""Command line: ``factorize-weights inspect | compress | sweep | evaluate | profile``.
 
 Exit codes: 0 success; 1 internal error (a bug: please report it); 2 bad input or usage (one line
 on stderr naming the file or flag and what is wrong; ``--debug`` adds the traceback); 3 the
@@ -19,7 +19,7 @@ from .options import PROG, build_parser as _build
 from .runfile import apply_run_file
 
 COMMANDS = {"inspect": commands.cmd_inspect, "compress": commands.cmd_compress, "sweep": commands.cmd_sweep,
-            "evaluate": commands.cmd_evaluate}
+            "evaluate": commands.cmd_evaluate, "profile": commands.cmd_profile}
 
 
 def build_parser():

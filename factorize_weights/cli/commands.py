@@ -205,16 +205,65 @@ def cmd_evaluate(args) -> int:
         raise InputError("--heldout is required for evaluate")
     heldout = _heldout(args)
     factorized = load_factorized(model, args.factorized)
-    result = evaluate(model, factorized, heldout, args.metric, CompressConfig(
-        quiet=args.quiet, batch_size=args.batch_size, output=args.output))
+    config = CompressConfig(quiet=args.quiet, batch_size=args.batch_size, output=args.output,
+                            latency_batch=args.latency_batch, latency_threads=args.latency_threads,
+                            latency_repeats=args.latency_repeats)
+    result = evaluate(model, factorized, heldout, args.metric, config)
+    lat = None
+    if args.latency_repeats > 0:  # the check of a plan made elsewhere happens here, on the device
+        from ..evaluation import measure_latency
+
+        lat = measure_latency(model, factorized, heldout, config)
     if args.json:
-        _print_json({"metric": result.to_dict(), "factorized": args.factorized, "heldout": heldout.source})
+        _print_json({"metric": result.to_dict(), "factorized": args.factorized, "heldout": heldout.source,
+                     "latency": lat})
     else:
         from .. import terminal
 
         change = terminal.fmt_change(result.name, result.before, result.after, result.higher_is_better)
         print(f"held-out {result.name} {terminal.fmt_value(result.name, result.before)} -> "
               f"{terminal.fmt_value(result.name, result.after)} ({change}; {result.samples} samples)")
+        if lat:
+            print(terminal.latency_line(lat))
+    return 0
+
+
+def cmd_profile(args) -> int:
+    from pathlib import Path
+
+    from ..pipeline import profile_latency
+    from .. import terminal
+
+    if not args.out:
+        raise InputError("--out is required: the profile file to write (e.g. --out cpu-profile.json)")
+    out = Path(args.out)
+    if out.is_dir():
+        raise InputError(f"--out {out}: is a folder; give the profile file's name (e.g. {out}/cpu-profile.json)")
+    if out.exists() and not args.force:
+        raise InputError(f"--out {out}: exists; give --force to replace it")
+    if not out.parent.is_dir():
+        raise InputError(f"--out {out}: folder {out.parent} does not exist")
+    model, _ = load_model(args)
+    if not args.heldout:
+        raise InputError("--heldout is required: the inputs the layers are timed on (their shapes are what counts)")
+    fields = ("only", "skip", "rank_step", "min_rank", "latency_batch", "latency_threads", "latency_warmup",
+              "latency_repeats", "output")
+    config = CompressConfig(quiet=args.quiet, **{k: getattr(args, k) for k in fields})
+    if config.latency_repeats < 1:
+        raise InputError("--latency-repeats must be at least 1 for a profile (it is all timing)")
+    profile = profile_latency(model, _heldout(args), config)
+    profile.save(out)
+    if args.json:
+        _print_json(profile.to_dict())
+    else:
+        head, rows = terminal.profile_rows(profile)
+        print("\n".join(terminal.table(head, rows, whole=str(out))))
+        print(f"whole model {terminal.fmt_ms(profile.whole_ms)} ({profile.runtime['name']} {profile.runtime['version']}, "
+              f"batch {profile.batch}, {profile.threads} thread{'s' if profile.threads != 1 else ''}, "
+              f"{profile.machine['cpu']}); measured in {profile.seconds:.1f} s")
+        print(f"wrote {out}")
+        print(f"next: compress ... --budget latency=0.7 --latency-profile {out} (same --latency-batch and "
+              "--latency-threads, same input shapes)")
     return 0
 
 

@@ -16,7 +16,8 @@ PROG = "factorize-weights"
 EPILOG = """\
 exit codes: 0 success, 1 internal error, 2 bad input or usage, 3 gate failed (--drop-limit)
 budgets:    params=0.3 (fraction of the selected layers' parameters), params=1.2M (absolute),
-            flops=0.5 (needs --heldout), energy=0.9 (per layer), error=0.1 (per layer)
+            flops=0.5 (needs --heldout), energy=0.9 (per layer), error=0.1 (per layer),
+            latency=0.7 or latency=12ms (measured on this CPU or read from --latency-profile; needs --heldout)
 model:      MODEL.onnx, a model folder (config.json), or --model FILE.py:FACTORY or
             package.module:FACTORY (a callable returning the nn.Module) with --weights CHECKPOINT
             (.safetensors; .pt/.pth read with weights_only=True), or --demo [torch|onnx]
@@ -39,6 +40,12 @@ examples:
 examples:
   factorize-weights sweep --demo --budgets params=0.8,0.6,0.4,0.2 --out demo-sweep
   factorize-weights sweep model.onnx --budgets params=0.9,0.7,0.5 --heldout held.npz --calibration cal.npz""",
+    "profile": """\
+examples:
+  factorize-weights profile --demo --out cpu-profile.json          # on the target CPU
+  factorize-weights profile model.onnx --heldout held.npz --latency-threads 2 --out board.json
+  factorize-weights compress model.onnx --heldout held.npz --latency-threads 2 --budget latency=0.7 \\
+      --latency-profile board.json --out small/                          # anywhere""",
     "evaluate": """\
 examples:
   factorize-weights evaluate --demo --factorized demo-run
@@ -196,4 +203,18 @@ def build_parser(commands: dict) -> argparse.ArgumentParser:
     g = p.add_argument_group("evaluation")
     for name in ("metric", "output", "batch_size"):
         add_field(g, by_name[name])
+    g = p.add_argument_group("latency (0 repeats: not timed)")
+    for name in ("latency_batch", "latency_threads", "latency_repeats"):
+        add_field(g, by_name[name])
+
+    p = _command(sub, "profile", "time every layer, dense and factorized at a grid of ranks, on this CPU; write "
+                 "the cost tables a latency budget plans with", commands["profile"])
+    g = p.add_argument_group("what is timed")
+    g.add_argument("--heldout", metavar="DATA", help="inputs to time on (.npz or FILE.py:FUNCTION; the first "
+                   "--latency-batch samples; default with --demo: its own)")
+    for name in ("only", "skip", "rank_step", "min_rank", "latency_batch", "latency_threads", "latency_warmup",
+                 "latency_repeats", "output"):
+        add_field(g, by_name[name])
+    g.add_argument("--out", metavar="FILE", help="the profile file to write (JSON; atomically)")
+    g.add_argument("--force", action="store_true", help="replace an existing --out file")
     return parser

@@ -72,7 +72,7 @@ def _maker(module: nn.Module, record: LayerRecord, shape: list[int]):
 
         def run():
             with torch.inference_mode():
-                layer(x)
+                return layer(x)
         return run
 
     return make
