@@ -308,7 +308,9 @@ def summary_line(report: dict) -> str:
     if "flops_before" in t:
         text += (f"; multiply-adds per sample {fmt_int(t['flops_before'])} -> {fmt_int(t['flops_after'])} "
                  f"({100 * t['flops_ratio']:.1f}%)")
-    if b["limit"] is not None:
+    if b["units"] == "ms":
+        text += f"; predicted {fmt_ms(b['used'])} of {fmt_ms(b['limit'])} allowed (original {fmt_ms(b['before'])})"
+    elif b["limit"] is not None:
         text += f"; limit {fmt_int(b['limit'])} {b['units']}, under by {fmt_int(b['under_by'])}"
     lat = report.get("latency")
     if lat:
@@ -327,9 +329,12 @@ def summary_line(report: dict) -> str:
 
 def layer_table(report: dict) -> list[str]:
     has_out = any("output_error" in e for e in report["layers"])
+    has_time = any(e.get("time_ms") for e in report["layers"])
     head = ["layer", "kind", "matrix", "rank", "break-even", "params before", "params after", "energy kept", "weight error"]
     if has_out:
         head.append("output error")
+    if has_time:
+        head += ["ms dense", "ms planned"]
     rows = ["| " + " | ".join(head) + " |", "|" + "|".join(["---"] * 3 + ["---:"] * (len(head) - 3)) + "|"]
     for e in report["layers"]:
         cells = [
@@ -340,6 +345,9 @@ def layer_table(report: dict) -> list[str]:
         ]
         if has_out:
             cells.append(fmt_error(e.get("output_error"), e["rank"]))
+        if has_time:
+            t = e.get("time_ms")
+            cells += [f"{t['dense']:.4f}", f"{t['planned']:.4f}"] if t else ["—", "—"]
         rows.append("| " + " | ".join(cells) + " |")
     return rows
 
@@ -419,6 +427,7 @@ def render_markdown(report: dict) -> str:
                   "", f"Measured speedup x{lat['speedup']:.2f}; the plan's FLOP ratio "
                   f"{lat['flop_ratio'] if lat['flop_ratio'] is None else round(lat['flop_ratio'], 3)} predicts "
                   f"x{lat['predicted_speedup'] or 1:.2f}."]
+    lines += latency_plan_lines(report)
     cal = report.get("calibration")
     if cal:
         lines += ["", f"Calibration: {cal['samples']} samples from `{cal['source']}` (SHA-256 "
@@ -447,6 +456,33 @@ def render_markdown(report: dict) -> str:
         lines += [f"| `{s['name']}` | {s['kind']} | {s['reason']} |" for s in report["skipped"]]
     lines += ["", f"factorize-weights {report['tool_version']}, {report['created']}", ""]
     return "\n".join(lines)
+
+
+def latency_plan_lines(report: dict) -> list[str]:
+    """report.md: where a latency plan's costs came from, and each round of its end-to-end check."""
+    lp = report.get("latency_plan")
+    if not lp:
+        return []
+    b = report["budget"]
+    m = lp.get("profile_machine") or {}
+    lines = ["", "## Latency plan", "",
+             f"Cost tables {lp['source']} (CPU {m.get('cpu', '?')}, {m.get('cores', '?')} cores): the original "
+             f"{lp['original_ms']:.4f} ms, of which {lp['rest_ms']:.4f} ms outside the selected layers"
+             + (f" (layer times scaled by {lp['layer_scale']:.3f} to fit the whole)" if lp["layer_scale"] < 1 else "")
+             + f". Budget `{b['given']}`: at most {lp['limit_ms']:.4f} ms; the plan kept is predicted at "
+             f"{lp['predicted_ms']:.4f} ms."]
+    if lp.get("why_unchecked"):
+        lines += ["", f"Not checked on this CPU: {lp['why_unchecked']}."]
+    if lp["rounds"]:
+        lines += ["", "Checked on this CPU, the rewrite at the planned ranks against the original, side by side:", "",
+                  "| round | predicted ms | measured ms | original measured ms | ratio | tolerance | met |",
+                  "|---:|---:|---:|---:|---:|---:|---|"]
+        lines += [f"| {i} | {r['predicted_ms']:.4f} | {r['measured_ms']:.4f} | {r['original_measured_ms']:.4f} | "
+                  f"{r['measured_ratio']:.3f} | {r['tolerance']:.3f} | {'yes' if r['met'] else 'no'} |"
+                  for i, r in enumerate(lp["rounds"], 1)]
+        if lp.get("delivered_share") is not None:
+            lines += ["", f"The CPU delivered {100 * lp['delivered_share']:.0f}% of the predicted saving."]
+    return lines
 
 
 def worst_classes(metric: dict, n: int = 5) -> list[dict]:

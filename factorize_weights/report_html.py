@@ -11,7 +11,8 @@ from .formatting import (NOT_APPLICABLE, fmt_change, fmt_count, fmt_error, fmt_k
                          fmt_rank, fmt_ratio, fmt_share, fmt_value)
 from .metrics import HIGHER_IS_BETTER
 from .report import summary_line
-from .report_plots import layer_tooltip, overview_fig, params_fig, spectrum_fig, suggest_budget, svg, sweep_fig
+from .report_plots import (latency_rounds_fig, layer_time_fig, layer_tooltip, overview_fig, params_fig, spectrum_fig,
+                           suggest_budget, svg, sweep_fig)
 
 CSS = """
 body { font-family: system-ui, -apple-system, "Segoe UI", sans-serif; margin: 2rem auto; max-width: 1100px;
@@ -118,6 +119,41 @@ def _review_sections(report: dict) -> list[str]:
     return out
 
 
+#: Layers whose cost tables are plotted (the slowest dense ones): enough to review the plan's big moves.
+TIME_FIGURES = 8
+
+
+def _latency_section(report: dict) -> list[str]:
+    """A latency plan: the check's rounds, and time against rank for the slowest layers."""
+    lp = report.get("latency_plan")
+    if not lp:
+        return []
+    esc = html.escape
+    out = ["<section id=\"latency-plan\"><h2>Latency plan</h2>",
+           f"<p>Cost tables {esc(lp['source'])}; the original {fmt_ms(lp['original_ms'])}, of which "
+           f"{fmt_ms(lp['rest_ms'])} outside the selected layers; plan predicted at {fmt_ms(lp['predicted_ms'])} "
+           f"(limit {fmt_ms(lp['limit_ms'])}).</p>"]
+    if lp["rounds"]:
+        out.append(f"<figure class=\"chart\">{svg(latency_rounds_fig(lp))}<figcaption>Each round of the check on "
+                   "this CPU: the plan's predicted time and the rewrite's measured time, both as a share of the "
+                   "original's; vermillion line: the budget.</figcaption></figure>")
+    elif lp.get("why_unchecked"):
+        out.append(f"<p class=\"bad\">Not checked on this CPU: {esc(lp['why_unchecked'])}.</p>")
+    tables = {t["name"]: t for t in lp.get("tables", [])}
+    ranked = sorted((e for e in report["layers"] if e["name"] in tables), key=lambda e: -tables[e["name"]]["dense_ms"])
+    if ranked:
+        out.append(f"<p>Time against rank of the {min(len(ranked), TIME_FIGURES)} slowest layers (dense), as the "
+                   "plan counts it: circles measured, line fitted (never falling with rank), dashed line the dense "
+                   "layer, vermillion line the chosen rank.</p><div class=\"grid\">")
+        for e in ranked[:TIME_FIGURES]:
+            caption = f"<code>{esc(e['name'])}</code> {_shape(e)}: " + (
+                "stays dense" if e["rank"] is None else f"rank {e['rank']}")
+            out.append(f"<figure>{svg(layer_time_fig(tables[e['name']], e['rank'], lp['layer_scale']))}"
+                       f"<figcaption>{caption}</figcaption></figure>")
+        out.append("</div>")
+    return out + ["</section>"]
+
+
 def _table(head: list[str] | None, rows: list[list[str]], cls: str = "", row_classes: list[str] | None = None) -> str:
     out = [f'<table class="{cls}">' if cls else "<table>"]
     if head:
@@ -173,6 +209,7 @@ def render_report_html(report: dict, spectra: dict) -> str:
             "<section><h2>Summary</h2>", _table(None, _summary_rows(report), "summary"), "</section>"]
     body += _int8_section(report)
     body += _review_sections(report)
+    body += _latency_section(report)
     body += ["<section id=\"overview\"><h2>All layers</h2>", f"<figure>{overview_figure(report['layers'])}"
              "<figcaption>Bars, one per layer in model order and labelled by its name (hover for the full name): the "
              "share of parameters each layer keeps; grey bars: layers left dense (100%). Vermillion diamonds: output "

@@ -390,3 +390,55 @@ def sweep_fig(points: list[dict], *, latency: bool = False, suggested: str | Non
     ax.legend(handles=handles, frameon=False, fontsize=8, loc="lower left", bbox_to_anchor=(0, 1.0), ncol=3)
     fig.tight_layout()
     return fig, notes
+
+
+# ---------------------------------------------------------------- latency plans
+
+
+def layer_time_fig(table: dict, rank, scale: float = 1.0):
+    """One layer's cost table: the factor pair's measured time at each timed rank (circles), the
+    non-decreasing fit the plan reads (line), the dense layer's time (dashed) and the chosen rank
+    (vertical line; none when the layer stays dense). Times as the allocator counts them (scaled)."""
+    plt = pyplot()
+    fig, ax = plt.subplots(figsize=(3.6, 2.4))
+    ranks = np.asarray(table["ranks"], dtype=float)
+    measured = np.asarray(table["factor_ms"], dtype=float) * scale
+    from .costs import isotonic
+
+    if len(ranks):
+        ax.plot(ranks, isotonic(measured), color=BLUE, lw=1.4, label="fitted")
+        ax.plot(ranks, measured, "o", color=BLUE, mfc="white", ms=4, label="factor pair, measured")
+    dense = table["dense_ms"] * scale
+    ax.axhline(dense, color=GREY, ls="--", lw=1, label=f"dense {fmt_ms(dense)}")
+    if rank is not None:
+        ax.axvline(rank, color=VERMILLION, lw=1.6, label=f"chosen rank {rank}")
+    top = max([dense] + measured.tolist())
+    ax.set_ylim(0, top * 1.15)
+    ax.set_xlim(0, (ranks.max() if len(ranks) else 1) * 1.05)
+    ax.set_xlabel("rank")
+    ax.set_ylabel("ms per forward pass")
+    ax.legend(fontsize=7, frameon=False, loc="lower right")
+    fig.subplots_adjust(left=0.2, right=0.97, bottom=0.19, top=0.95)
+    return fig
+
+
+def latency_rounds_fig(latency_plan: dict):
+    """The end-to-end check: each round's predicted and measured time of the rewrite, as a share of
+    the original's (measured in the same loop), against the budget's limit."""
+    plt = pyplot()
+    fig, ax = plt.subplots(figsize=(4.2, 2.4))
+    rounds = latency_plan["rounds"]
+    x = np.arange(1, len(rounds) + 1)
+    predicted = [r["predicted_ms"] / latency_plan["original_ms"] for r in rounds]
+    measured = [r["measured_ratio"] for r in rounds]
+    ax.bar(x - 0.18, predicted, 0.36, color=LIGHT, edgecolor=GREY, label="predicted")
+    ax.bar(x + 0.18, measured, 0.36, color=BLUE, hatch="//", edgecolor="white", label="measured")
+    limit = latency_plan["limit_ms"] / latency_plan["original_ms"]
+    ax.axhline(limit, color=VERMILLION, lw=1.4, label=f"limit {fmt_share(limit)}")
+    ax.set_xticks(x)
+    ax.set_xlabel("check round")
+    ax.set_ylabel("time / original's")
+    ax.set_ylim(0, max(predicted + measured + [limit, 1.0]) * 1.1)
+    ax.legend(fontsize=7, frameon=False, loc="upper right", ncol=3)
+    fig.subplots_adjust(left=0.16, right=0.97, bottom=0.2, top=0.88)
+    return fig

@@ -6,8 +6,9 @@ reports/latency_budget.md.
 For each model, runtime (eager torch; onnxruntime on the model's ONNX export) and batch size:
 
 1. ``--budget latency=F`` is planned from cost tables measured on this CPU (the time that takes is
-   a column) and checked end to end, as ``compress`` does; its model is built with plain SVD
-   factors (no calibration: both plans get the same factors, only the ranks differ).
+   a column) and checked end to end, as ``compress`` does.
+   The pretrained models are calibrated (whitened factors, output-effect allocation, no refits);
+   the demo uses plain SVD. Both plans of a row share one preparation, so only the ranks differ.
 2. The params budget whose rewrite takes the same measured time is found by bisection on the
    params fraction (each step timed side by side with the original).
 3. Original, latency plan and params plan are then timed side by side in one loop; the held-out
@@ -22,14 +23,13 @@ photographs from registry packages; metric: top-1 agreement with the original).
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import os
 import platform
 import sys
 import tempfile
 import time
 from pathlib import Path
-
-import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
@@ -45,22 +45,24 @@ REPEATS = 30
 
 
 def models(names):
-    """(name, torch model, held-out HeldOut, metric) per name."""
+    """(name, torch model, held-out HeldOut, calibration HeldOut or None, metric) per name."""
     for name in names:
         if name == "demo":
             spec, weights = demo.spec("torch")
-            yield "demo CNN", fw.open_model(spec, weights=weights)[0], fw.load_heldout(str(demo.HELDOUT)), "top1"
+            yield "demo CNN", fw.open_model(spec, weights=weights), fw.load_heldout(str(demo.HELDOUT)), None, "top1"
         elif name == "minilm":
             import pretrained
 
-            folder, held, _ = pretrained.minilm()
-            model, _ = fw.open_model(str(folder))
-            yield "all-MiniLM-L6-v2", model, fw.load_heldout(str(held)), "cosine"
+            folder, held, cal = pretrained.minilm()
+            model = fw.open_model(str(folder))
+            yield ("all-MiniLM-L6-v2", model, fw.load_heldout(str(held)),
+                   fw.load_heldout(str(cal), flag="--calibration"), "cosine")
         elif name == "lite0":
             import pretrained
 
-            model, held, _ = pretrained.efficientnet_lite0()
-            yield "EfficientNet-Lite0", model, fw.load_heldout(str(held)), "agreement"
+            model, held, cal = pretrained.efficientnet_lite0()
+            yield ("EfficientNet-Lite0", model, fw.load_heldout(str(held)),
+                   fw.load_heldout(str(cal), flag="--calibration"), "agreement")
 
 
 def to_onnx(model, heldout, folder: Path):
@@ -104,16 +106,40 @@ def matching_params(prep, target: float, batch, steps: int = 7):
     return best[0]
 
 
-def row(name, model, heldout, metric, runtime, batch, fraction, folder):
-    config = fw.CompressConfig(budget=f"latency={fraction}", metric=metric, latency_batch=batch, latency_threads=1,
-                               latency_repeats=REPEATS, method="svd", allocation="error-sum", quiet=True,
-                               error_samples=0)
+def prepared(model, heldout, calibration, metric):
+    """One preparation per model and runtime (calibration, decompositions, output effects), shared by
+    the batch sizes: only the cost tables differ (:func:`at_batch`)."""
+    kw = {"sequential": False} if calibration is not None else {"method": "svd", "allocation": "error-sum"}
+    config = fw.CompressConfig(budget="params=0.5", metric=metric, latency_threads=1, latency_repeats=REPEATS,
+                               quiet=True, error_samples=0, **kw)
     t0 = time.perf_counter()
-    prep = fw.prepare(model, config, heldout=heldout, budgets=[config.budget])
-    lat = fw.realize(prep, config.budget, latency=False, layer_errors=False)
+    prep = fw.prepare(model, config, heldout=heldout, calibration=calibration)
+    return prep, time.perf_counter() - t0
+
+
+def at_batch(prep, batch: int):
+    """The preparation with the cost tables of ``batch`` (measured now, in a fresh cache)."""
+    from factorize_weights import latency_budget
+
+    config = dataclasses.replace(prep.config, latency_batch=batch)
+    profile = latency_budget.costs_for(prep.model, prep.selected, prep.heldout, config)
+    return dataclasses.replace(prep, config=config, latency=profile)
+
+
+def row(name, base, metric, runtime, batch, fraction, prep_seconds):
+    t0 = time.perf_counter()
+    prep = at_batch(base, batch)
+    budget = f"latency={fraction}"
+    from factorize_weights.allocate import check_feasible
+    from factorize_weights.budget import parse_budget
+
+    check_feasible(prep.selected, parse_budget(budget), latency=prep.latency)
+    heldout = prep.heldout
+    lat = fw.realize(prep, budget, latency=False, layer_errors=False)
     plan_seconds = time.perf_counter() - t0
     lp = lat.report["latency_plan"]
-    target = lp["rounds"][-1]["measured_ratio"]
+    kept = [r for r in lp["rounds"] if r["ranks"] == lat.plan.ranks] or lp["rounds"]
+    target = kept[-1]["measured_ratio"]
     p = matching_params(prep, target, latency_mod.batch_of(heldout.inputs, batch))
     par = fw.realize(prep, f"params={p:.4f}", latency=False, layer_errors=False)
     b = latency_mod.batch_of(heldout.inputs, batch)
@@ -123,7 +149,8 @@ def row(name, model, heldout, metric, runtime, batch, fraction, folder):
                                         repeats=REPEATS, warmup=5)
     (t_orig, _, _), (t_lat, l10, l90), (t_par, p10, p90) = times
     return {
-        "model": name, "runtime": backend.RUNTIME, "batch": batch, "budget": config.budget,
+        "model": name, "runtime": backend.RUNTIME, "batch": batch, "budget": budget, "method": prep.method,
+        "allocation": prep.allocation, "prep_s": prep_seconds,
         "profile_s": prep.latency.seconds, "plan_s": plan_seconds, "rounds": len(lp["rounds"]),
         "orig_ms": t_orig * 1e3, "lat_ms": t_lat * 1e3, "par_ms": t_par * 1e3,
         "predicted_ms": lat.plan.cost_after, "predicted_ratio": lat.plan.cost_after / lat.plan.cost_before,
@@ -153,14 +180,15 @@ def main() -> None:
     rows = []
     t_start = time.perf_counter()
     with tempfile.TemporaryDirectory() as tmp:
-        for name, model, heldout, metric in models(args.models.split(",")):
+        for name, model, heldout, calibration, metric in models(args.models.split(",")):
             for runtime in args.runtimes.split(","):
                 m = model if runtime == "torch" else to_onnx(model, heldout, Path(tmp))
+                base, prep_seconds = prepared(m, heldout, calibration, metric)
                 for batch in (int(b) for b in args.batches.split(",")):
                     fraction = args.budget
                     while True:  # a budget below the fastest plan is refused: the next one up, said so
                         try:
-                            r = row(name, m, heldout, metric, runtime, batch, round(fraction, 2), Path(tmp))
+                            r = row(name, base, metric, runtime, batch, round(fraction, 2), prep_seconds)
                             break
                         except fw.InputError as exc:
                             if fraction >= 0.9:
@@ -174,8 +202,10 @@ def main() -> None:
         "",
         f"`python scripts/bench_latency_budget.py` ({platform.processor() or platform.machine()}, "
         f"{os.cpu_count()} cores, 1 thread for every timing, {time.strftime('%Y-%m-%d')}; "
-        f"{time.perf_counter() - t_start:.0f} s in all). Plain SVD factors for both plans (only the ranks "
-        "differ); the params budget is the one whose rewrite takes the latency plan's measured time "
+        f"{time.perf_counter() - t_start:.0f} s in all). Both plans of a row share one preparation, so only the "
+        "ranks differ: the demo with plain SVD factors and error-sum allocation (no data beyond the held-out set), "
+        "the pretrained models calibrated (whitened factors and output-effect allocation on their calibration "
+        "sets, no sequential refits). The params budget is the one whose rewrite takes the latency plan's measured time "
         "(bisection, each step timed side by side with the original); the three times below come from one "
         f"side-by-side loop of {REPEATS} rounds after the plans were made (medians).",
         "",
@@ -192,6 +222,9 @@ def main() -> None:
             f" / **{fmt_metric(r['metric'], r['lat_after'])}** / {fmt_metric(r['metric'], r['par_after'])} | "
             f"{r['lat_params']:.2f} / {r['par_params']:.2f} | {r['lat_dense']} of {r['layers']} | "
             f"{r['profile_s']:.1f} s tables, {r['plan_s']:.1f} s in all, {r['rounds']} check round(s) |")
+    lines += ["", "Preparation (calibration, decompositions, output-effect probes; once per model and runtime): "
+              + "; ".join(sorted({f"{r['model']} {r['runtime']} {r['prep_s']:.0f} s ({r['method']}, {r['allocation']})"
+                                  for r in rows}))]
     lines += [
         "",
         f"Budget: `latency={args.budget}` of the original's time measured at the start of each row (where it is "
