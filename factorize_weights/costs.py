@@ -240,6 +240,15 @@ class LatencyProfile:
         return dataclasses.replace(self, tables={n: t for n, t in self.tables.items() if n in names},
                                    layers=[d for d in self.layers if d["name"] in names])
 
+    def layer_time(self, name: str, rank) -> dict | None:
+        """A layer's time in a plan: dense and at ``rank`` (None: dense), fitted from its table and
+        scaled as the allocator scales it; None when the timed batch does not reach the layer."""
+        table = self.tables.get(name)
+        if table is None:
+            return None
+        dense = table.dense_ms * self.layer_scale
+        return {"dense": dense, "planned": dense if rank is None else float(table.time_ms([rank])[0]) * self.layer_scale}
+
     def same_machine(self) -> bool:
         here = machine()
         return self.machine.get("cpu") == here["cpu"] and self.machine.get("cores") == here["cores"]

@@ -65,7 +65,7 @@ def measure_profile(model, records: list[LayerRecord], batch, config: CompressCo
         for r in bar(records, config, "cost tables"):
             if r.name not in timers:
                 continue  # not reached by this input: it costs nothing at run time
-            t = timers[r.name]
+            t = timers.pop(r.name)  # its input and sessions are released once it is measured
             ranks = costs.grid_ranks(*r.matrix_shape, rank_step=config.rank_step, min_rank=config.min_rank)
             tables[r.name] = costs.measure_table(r.name, t["shape"], t["make"], ranks, baseline=t.get("baseline"),
                                                  calls=t.get("calls", 1))

@@ -14,6 +14,7 @@ from .data import HeldOut
 from .metrics import MetricResult
 from .records import LayerRecord
 from .spectra import Spectrum
+from .report_latency import latency_plan_lines
 from .formatting import (fmt_change, fmt_count, fmt_error, fmt_kept, fmt_mb, fmt_ms, fmt_points, fmt_rank,
                          fmt_ratio, fmt_value)
 
@@ -114,7 +115,7 @@ def build_report(
         if effects and record.name in effects:
             entry["output_effect"] = effects[record.name].to_dict()
         if latency_profile is not None:
-            entry["time_ms"] = _layer_time(latency_profile, record.name, entry["rank"])
+            entry["time_ms"] = latency_profile.layer_time(record.name, entry["rank"])
         layers.append(entry)
     params_before = sum(e["params_before"] for e in layers)
     params_after = sum(e["params_after"] for e in layers)
@@ -169,17 +170,6 @@ def build_report(
         "environment": {"python": platform.python_version(), "machine": platform.machine(), **_versions()},
         "wall_seconds": {k: round(v, 3) for k, v in timings.items()},
     }
-
-
-def _layer_time(profile, name: str, rank) -> dict | None:
-    """A layer's time in the plan: dense and as planned (fitted from its cost table, scaled as the
-    allocator scales it), or None when the timed batch does not reach it."""
-    table = profile.tables.get(name)
-    if table is None:
-        return None
-    s = profile.layer_scale
-    dense = table.dense_ms * s
-    return {"dense": dense, "planned": dense if rank is None else float(table.time_ms([rank])[0]) * s}
 
 
 def _latency_entry(latency: dict | None, layers: list[dict]) -> dict | None:
@@ -456,33 +446,6 @@ def render_markdown(report: dict) -> str:
         lines += [f"| `{s['name']}` | {s['kind']} | {s['reason']} |" for s in report["skipped"]]
     lines += ["", f"factorize-weights {report['tool_version']}, {report['created']}", ""]
     return "\n".join(lines)
-
-
-def latency_plan_lines(report: dict) -> list[str]:
-    """report.md: where a latency plan's costs came from, and each round of its end-to-end check."""
-    lp = report.get("latency_plan")
-    if not lp:
-        return []
-    b = report["budget"]
-    m = lp.get("profile_machine") or {}
-    lines = ["", "## Latency plan", "",
-             f"Cost tables {lp['source']} (CPU {m.get('cpu', '?')}, {m.get('cores', '?')} cores): the original "
-             f"{lp['original_ms']:.4f} ms, of which {lp['rest_ms']:.4f} ms outside the selected layers"
-             + (f" (layer times scaled by {lp['layer_scale']:.3f} to fit the whole)" if lp["layer_scale"] < 1 else "")
-             + f". Budget `{b['given']}`: at most {lp['limit_ms']:.4f} ms; the plan kept is predicted at "
-             f"{lp['predicted_ms']:.4f} ms."]
-    if lp.get("why_unchecked"):
-        lines += ["", f"Not checked on this CPU: {lp['why_unchecked']}."]
-    if lp["rounds"]:
-        lines += ["", "Checked on this CPU, the rewrite at the planned ranks against the original, side by side:", "",
-                  "| round | predicted ms | measured ms | original measured ms | ratio | tolerance | met |",
-                  "|---:|---:|---:|---:|---:|---:|---|"]
-        lines += [f"| {i} | {r['predicted_ms']:.4f} | {r['measured_ms']:.4f} | {r['original_measured_ms']:.4f} | "
-                  f"{r['measured_ratio']:.3f} | {r['tolerance']:.3f} | {'yes' if r['met'] else 'no'} |"
-                  for i, r in enumerate(lp["rounds"], 1)]
-        if lp.get("delivered_share") is not None:
-            lines += ["", f"The CPU delivered {100 * lp['delivered_share']:.0f}% of the predicted saving."]
-    return lines
 
 
 def worst_classes(metric: dict, n: int = 5) -> list[dict]:

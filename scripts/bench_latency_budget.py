@@ -7,8 +7,8 @@ For each model, runtime (eager torch; onnxruntime on the model's ONNX export) an
 
 1. ``--budget latency=F`` is planned from cost tables measured on this CPU (the time that takes is
    a column) and checked end to end, as ``compress`` does.
-   The pretrained models are calibrated (whitened factors, output-effect allocation, no refits);
-   the demo uses plain SVD. Both plans of a row share one preparation, so only the ranks differ.
+   Every model is calibrated (whitened factors, output-effect allocation, no refits) on its own
+   calibration set. Both plans of a row share one preparation, so only the ranks differ.
 2. The params budget whose rewrite takes the same measured time is found by bisection on the
    params fraction (each step timed side by side with the original).
 3. Original, latency plan and params plan are then timed side by side in one loop; the held-out
@@ -42,6 +42,10 @@ from factorize_weights.backends import onnx_backend, torch_backend  # noqa: E402
 from factorize_weights.pipeline import PlannedFactors, plan_budget  # noqa: E402
 
 REPEATS = 30
+#: The latency budget per model where the default does not fit it: at latency=0.7 (and 0.8 at batch
+#: 1) no plan of either kind kept any of EfficientNet-Lite0's top-1 agreement (0.0-0.4%, measured by
+#: this script's first runs), so rows there compare nothing.
+MODEL_BUDGET = {"EfficientNet-Lite0": 0.9}
 
 
 def models(names):
@@ -49,7 +53,8 @@ def models(names):
     for name in names:
         if name == "demo":
             spec, weights = demo.spec("torch")
-            yield "demo CNN", fw.open_model(spec, weights=weights), fw.load_heldout(str(demo.HELDOUT)), None, "top1"
+            yield ("demo CNN", fw.open_model(spec, weights=weights), fw.load_heldout(str(demo.HELDOUT)),
+                   fw.load_heldout(str(demo.CALIBRATION), flag="--calibration"), "top1")
         elif name == "minilm":
             import pretrained
 
@@ -185,7 +190,7 @@ def main() -> None:
                 m = model if runtime == "torch" else to_onnx(model, heldout, Path(tmp))
                 base, prep_seconds = prepared(m, heldout, calibration, metric)
                 for batch in (int(b) for b in args.batches.split(",")):
-                    fraction = args.budget
+                    fraction = MODEL_BUDGET.get(name, args.budget)
                     while True:  # a budget below the fastest plan is refused: the next one up, said so
                         try:
                             r = row(name, base, metric, runtime, batch, round(fraction, 2), prep_seconds)
@@ -203,9 +208,8 @@ def main() -> None:
         f"`python scripts/bench_latency_budget.py` ({platform.processor() or platform.machine()}, "
         f"{os.cpu_count()} cores, 1 thread for every timing, {time.strftime('%Y-%m-%d')}; "
         f"{time.perf_counter() - t_start:.0f} s in all). Both plans of a row share one preparation, so only the "
-        "ranks differ: the demo with plain SVD factors and error-sum allocation (no data beyond the held-out set), "
-        "the pretrained models calibrated (whitened factors and output-effect allocation on their calibration "
-        "sets, no sequential refits). The params budget is the one whose rewrite takes the latency plan's measured time "
+        "ranks differ: calibrated (whitened factors and output-effect allocation on each model's calibration "
+        "set, no sequential refits). The params budget is the one whose rewrite takes the latency plan's measured time "
         "(bisection, each step timed side by side with the original); the three times below come from one "
         f"side-by-side loop of {REPEATS} rounds after the plans were made (medians).",
         "",
@@ -227,7 +231,8 @@ def main() -> None:
                                   for r in rows}))]
     lines += [
         "",
-        f"Budget: `latency={args.budget}` of the original's time measured at the start of each row (where it is "
+        f"Budget: `latency={args.budget}` (EfficientNet-Lite0: 0.9, see MODEL_BUDGET) of the original's time measured "
+        "at the start of each row (where it is "
         "below the fastest plan the tool refuses it, and the row is at the next 0.1 up: see its budget column). "
         "\"predicted\" is the cost model's time of the kept plan (rest of the model + the fitted time of each "
         "layer at its rank) against the time the last loop measured; the check's own rounds are in each run's "

@@ -300,3 +300,35 @@ def test_a_profile_from_another_process_plans_as_measuring_in_place(tmp_path, ca
     assert here["rounds"][0]["ranks"] == there["rounds"][0]["ranks"]
     assert here["rounds"][0]["predicted_ms"] == there["rounds"][0]["predicted_ms"]
     assert there["source"] == str(profile_file)
+
+
+def test_report_html_and_md_show_the_plan_its_rounds_and_time_against_rank(tmp_path, capsys):
+    from factorize_weights.report_plots import layer_time_fig
+
+    code, _, err = run_cli(capsys, "compress", "--demo", "onnx", "--budget", "latency=0.9", "--out", tmp_path / "r",
+                           "--latency-repeats", "10", "-q")
+    assert code == 0, err
+    report = json.loads((tmp_path / "r" / "report.json").read_text())
+    page = (tmp_path / "r" / "report.html").read_text()
+    md = (tmp_path / "r" / "report.md").read_text()
+    lp = report["latency_plan"]
+    assert "Latency plan" in page and page.count("<svg") >= 2 + min(len(lp["tables"]), 8)
+    assert "## Latency plan" in md and "| round | predicted ms |" in md and "ms planned" in md
+    section = md.split("## Latency plan")[1].split("\n## ")[0]
+    assert sum(1 for line in section.splitlines() if line[:4] in {f"| {i} " for i in range(1, 6)}) == len(lp["rounds"])
+    # the figure shows the measured points, the fitted non-decreasing curve and the dense time
+    table = max(lp["tables"], key=lambda t: t["dense_ms"])
+    entry = next(e for e in report["layers"] if e["name"] == table["name"])
+    fig = layer_time_fig(table, entry["rank"], lp["layer_scale"])
+    ax = fig.axes[0]
+    fitted, points = ax.lines[0], ax.lines[1]
+    assert list(points.get_xdata()) == table["ranks"]
+    assert np.all(np.diff(fitted.get_ydata()) >= -1e-12) and ax.get_ylim()[0] == 0
+
+
+def test_sweep_takes_latency_budgets(tmp_path, capsys):
+    code, out, err = run_cli(capsys, "sweep", "--demo", "--budgets", "latency=0.95,latency=0.9", "--out",
+                             tmp_path / "s", "--latency-repeats", "5", "-q", "--method", "svd")
+    assert code == 0, err
+    doc = json.loads((tmp_path / "s" / "sweep.json").read_text())
+    assert [p["budget"] for p in doc["points"]] == ["latency=0.95", "latency=0.9"]

@@ -57,12 +57,18 @@ def layer_timers(model: nn.Module, records: list[LayerRecord], batch, threads: i
 
 
 def _maker(module: nn.Module, record: LayerRecord, shape: list[int]):
+    """``make(rank)`` for one layer. The random input is made on the first call and shared by the
+    callables of that layer; nothing is held before (every layer's input at once would be every
+    activation of the model)."""
     w = module.weight
-    gen = torch.Generator().manual_seed(0)
-    x = torch.randn(*shape, generator=gen, dtype=torch.float32).to(dtype=w.dtype, device=w.device)
     m, n = record.matrix_shape
+    held: list = []
 
     def make(rank):
+        if not held:
+            gen = torch.Generator().manual_seed(0)
+            held.append(torch.randn(*shape, generator=gen, dtype=torch.float32).to(dtype=w.dtype, device=w.device))
+        x = held[0]
         if rank is None:
             layer = module
         else:
