@@ -325,7 +325,7 @@ def check_profile(profile: LatencyProfile, *, layers: list[dict], runtime: str, 
         raise InputError(f"{where}: measured with {profile.threads} thread(s); this run times {threads} "
                          f"(give --latency-threads {profile.threads}, or profile again)")
     if profile.batch != batch or profile.input_shapes != input_shapes:
-        raise InputError(f"{where}: measured for inputs {_shapes(profile.input_shapes)}; this run times "
+        raise InputError(f"{where}: measured for {_shapes(profile.input_shapes)}; this run times "
                          f"{_shapes(input_shapes)} (batch {batch}; profile again with these inputs)")
 
 
