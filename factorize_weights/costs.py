@@ -27,6 +27,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import InputError
+from .latency import measure_many
 from .records import LayerRecord, max_saving_rank
 
 #: Ranks timed per layer besides dense (spread geometrically over the allowed ranks); the curve
@@ -114,61 +115,31 @@ def grid_ranks(m: int, n: int, *, rank_step: int = 1, min_rank: int = 1) -> list
     return [r for r in ranks if r <= top]
 
 
-def _median_spread(samples: list[float]) -> tuple[float, float, float]:
-    a = np.asarray(samples)
-    return float(np.median(a)), float(np.percentile(a, 10)), float(np.percentile(a, 90))
-
-
-def time_side_by_side(fns: list, *, repeats: int = TABLE_REPEATS, warmup: int = TABLE_WARMUP,
-                      clock=time.perf_counter, sample_seconds: float = SAMPLE_SECONDS) -> list[tuple[float, float, float]]:
-    """(median, 10th and 90th percentile) seconds per call of each zero-argument callable, timed
-    side by side: ``warmup`` untimed rounds, then ``repeats`` rounds timing each once in rotating
-    order. A sample runs a callable ``calls`` times (the mean of those calls is one sample),
-    ``calls`` chosen once from the mean callable so a sample lasts at least ``sample_seconds``."""
-    for _ in range(max(warmup, 1)):
-        for fn in fns:
-            fn()
-    t0 = clock()
-    for fn in fns:
-        fn()
-    one = max((clock() - t0) / max(len(fns), 1), 1e-9)
-    calls = max(1, int(math.ceil(sample_seconds / one)))
-    samples: list[list[float]] = [[] for _ in fns]
-    for i in range(repeats):
-        order = list(range(len(fns)))
-        order = order[i % len(fns):] + order[: i % len(fns)]
-        for j in order:
-            fn = fns[j]
-            t = clock()
-            for _ in range(calls):
-                fn()
-            samples[j].append((clock() - t) / calls)
-    return [_median_spread(s) for s in samples]
-
-
 #: A layer timed alone is never taken as cheaper than this (seconds): a floor for what is left
 #: after the runtime's per-call overhead is subtracted.
 FLOOR_SECONDS = 1e-7
 
 
 def measure_table(name: str, input_shape, make, ranks: list[int], *, baseline=None, calls: int = 1,
-                  **timing) -> CostTable:
+                  repeats: int = TABLE_REPEATS, warmup: int = TABLE_WARMUP,
+                  clock=time.perf_counter) -> CostTable:
     """The cost table of one layer: ``make(None)`` and ``make(rank)`` for each rank of ``ranks``
-    timed side by side (:func:`time_side_by_side`). ``baseline``, when given, runs the same call
-    path with no work (an identity in the runtime): its median is subtracted from every time, so
-    a per-call overhead the layer does not pay inside the model is not counted. ``calls``: how
+    timed side by side (``latency.measure_many``, samples of at least :data:`SAMPLE_SECONDS`).
+    ``baseline``, when given, runs the same call path with no work (an identity in the runtime):
+    its median is subtracted from every time, so a per-call overhead the layer does not pay inside
+    the model is not counted. ``calls``: how
     often one forward pass runs the layer (the table is per forward pass)."""
     fns = [make(None)] + [make(int(k)) for k in ranks] + ([baseline] if baseline is not None else [])
-    results = time_side_by_side(fns, **timing)
-    base = results.pop()[0] if baseline is not None else 0.0
+    results = measure_many(fns, warmup=max(warmup, 1), repeats=repeats, sample_seconds=SAMPLE_SECONDS, clock=clock)
+    base = results.pop()["median_ms"] if baseline is not None else 0.0
     dense, factors = results[0], results[1:]
-    spread = float(np.median([(p90 - p10) / med for med, p10, p90 in results if med > 0]))
+    spread = float(np.median([(r["p90_ms"] - r["p10_ms"]) / r["median_ms"] for r in results if r["median_ms"] > 0]))
 
     def ms(t: float) -> float:
-        return max(t - base, FLOOR_SECONDS) * 1e3 * calls
+        return max(t - base, FLOOR_SECONDS * 1e3) * calls
 
     return CostTable(name, [int(d) for d in input_shape], [int(k) for k in ranks],
-                     [ms(t) for t, _, _ in factors], ms(dense[0]), spread)
+                     [ms(r["median_ms"]) for r in factors], ms(dense["median_ms"]), spread)
 
 
 # ---------------------------------------------------------------- profiles

@@ -58,8 +58,8 @@ def measure_profile(model, records: list[LayerRecord], batch, config: CompressCo
     threads = config.latency_threads
     t0 = time.perf_counter()
     with backend.timing([model], threads):
-        (whole, p10, p90), = costs.time_side_by_side([backend.timer(model, batch, threads)],
-                                                     warmup=config.latency_warmup, repeats=max(config.latency_repeats, 1))
+        (whole,) = latency_mod.measure_many([backend.timer(model, batch, threads)], warmup=config.latency_warmup,
+                                            repeats=max(config.latency_repeats, 1), sample_seconds=costs.SAMPLE_SECONDS)
         timers = backend.layer_timers(model, records, batch, threads)
         tables = {}
         for r in bar(records, config, "cost tables"):
@@ -71,7 +71,7 @@ def measure_profile(model, records: list[LayerRecord], batch, config: CompressCo
                                                  calls=t.get("calls", 1))
     return costs.LatencyProfile(
         runtime=runtime_of(backend), threads=threads, batch=config.latency_batch, input_shapes=shapes_of(batch),
-        layers=costs.structure(records), whole_ms=whole * 1e3, whole_spread_ms=[p10 * 1e3, p90 * 1e3],
+        layers=costs.structure(records), whole_ms=whole["median_ms"], whole_spread_ms=[whole["p10_ms"], whole["p90_ms"]],
         tables=tables, created=costs.now(), seconds=time.perf_counter() - t0)
 
 
@@ -119,12 +119,12 @@ def _time_plan(prep, plan: Plan, batch, config: CompressConfig, rewrite) -> dict
     candidate = rewrite(plan)
     threads = config.latency_threads
     with backend.timing([prep.model, candidate], threads):
-        before, after = costs.time_side_by_side(
+        before, after = latency_mod.measure_many(
             [backend.timer(prep.model, batch, threads), backend.timer(candidate, batch, threads)],
-            warmup=config.latency_warmup, repeats=config.latency_repeats)
-    ms = [[v * 1e3 for v in t] for t in (before, after)]
-    return {"before_ms": ms[0][0], "after_ms": ms[1][0], "before_spread_ms": ms[0][1:], "after_spread_ms": ms[1][1:],
-            "repeats": config.latency_repeats}
+            warmup=config.latency_warmup, repeats=config.latency_repeats, sample_seconds=costs.SAMPLE_SECONDS)
+    return {"before_ms": before["median_ms"], "after_ms": after["median_ms"],
+            "before_spread_ms": [before["p10_ms"], before["p90_ms"]],
+            "after_spread_ms": [after["p10_ms"], after["p90_ms"]], "repeats": config.latency_repeats}
 
 
 def _median_error(spread_ms: list, repeats: int) -> float:

@@ -305,6 +305,13 @@ def plan_for(model, config: CompressConfig, heldout: HeldOut | None = None, cali
     return prep.records, prep.spectra, plan_budget(prep, config.budget), prep.calibration
 
 
+def timing_rewrite(prep: Prepared, plan: Plan):
+    """The model at ``plan``'s ranks with the prepared decompositions' own factors, no refits: what
+    a timing needs (time depends on the ranks only), at the cost of one rewrite."""
+    return prep.backend.rewrite(prep.model, prep.records,
+                                PlannedFactors(prep.records, plan.ranks, prep.decompositions, prep.config.split))
+
+
 def realize(prep: Prepared, budget: str, *, sources: dict | None = None, latency: bool = True,
             layer_errors: bool = True) -> CompressResult:
     """Allocate ``budget`` on the prepared decompositions, factorize (refit), (recover), evaluate
@@ -317,12 +324,8 @@ def realize(prep: Prepared, budget: str, *, sources: dict | None = None, latency
     latency_plan = None
     if plan.budget.kind == "latency":  # checked end to end on this CPU, tightened while it misses
         t0 = time.perf_counter()
-        def plain(p: Plan):  # time depends on the ranks only: plain factors of them will do
-            return backend.rewrite(model, prep.records, PlannedFactors(prep.records, p.ranks, prep.decompositions,
-                                                                       config.split))
-
         plan, latency_plan = latency_budget.check_plan(
-            prep, plan, latency_budget.replanner(prep, plan.budget, plan.limit), plain)
+            prep, plan, latency_budget.replanner(prep, plan.budget, plan.limit), lambda p: timing_rewrite(prep, p))
         timings["latency_check"] = time.perf_counter() - t0
     t0 = time.perf_counter()
     factors = PlannedFactors(prep.records, plan.ranks, prep.decompositions, config.split)

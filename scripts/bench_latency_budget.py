@@ -39,7 +39,8 @@ import factorize_weights as fw  # noqa: E402
 from factorize_weights import costs, demo  # noqa: E402
 from factorize_weights import latency as latency_mod  # noqa: E402
 from factorize_weights.backends import onnx_backend, torch_backend  # noqa: E402
-from factorize_weights.pipeline import PlannedFactors, plan_budget  # noqa: E402
+from factorize_weights import latency_budget  # noqa: E402
+from factorize_weights.pipeline import plan_budget, timing_rewrite  # noqa: E402
 
 REPEATS = 30
 #: The latency budget per model where the default does not fit it: at latency=0.7 (and 0.8 at batch
@@ -76,19 +77,11 @@ def to_onnx(model, heldout, folder: Path):
     return onnx_backend.load(path)
 
 
-def rewrite(prep, plan):
-    return prep.backend.rewrite(prep.model, prep.records, PlannedFactors(prep.records, plan.ranks,
-                                                                        prep.decompositions, prep.config.split))
-
-
 def ratio_of(prep, plan, batch) -> float:
-    candidate = rewrite(prep, plan)
-    threads = prep.config.latency_threads
-    with prep.backend.timing([prep.model, candidate], threads):
-        (b, _, _), (a, _, _) = costs.time_side_by_side(
-            [prep.backend.timer(prep.model, batch, threads), prep.backend.timer(candidate, batch, threads)],
-            repeats=REPEATS // 2, warmup=3)
-    return a / b
+    """The plan's measured time over the original's, side by side (the check's own timing)."""
+    config = dataclasses.replace(prep.config, latency_repeats=REPEATS // 2, latency_warmup=3)
+    t = latency_budget._time_plan(prep, plan, batch, config, lambda p: timing_rewrite(prep, p))
+    return t["after_ms"] / t["before_ms"]
 
 
 def matching_params(prep, target: float, batch, steps: int = 7):
@@ -124,8 +117,6 @@ def prepared(model, heldout, calibration, metric):
 
 def at_batch(prep, batch: int):
     """The preparation with the cost tables of ``batch`` (measured now, in a fresh cache)."""
-    from factorize_weights import latency_budget
-
     config = dataclasses.replace(prep.config, latency_batch=batch)
     profile = latency_budget.costs_for(prep.model, prep.selected, prep.heldout, config)
     return dataclasses.replace(prep, config=config, latency=profile)
@@ -150,9 +141,10 @@ def row(name, base, metric, runtime, batch, fraction, prep_seconds):
     b = latency_mod.batch_of(heldout.inputs, batch)
     backend = prep.backend
     with backend.timing([prep.model, lat.model, par.model], 1):
-        times = costs.time_side_by_side([backend.timer(m, b, 1) for m in (prep.model, lat.model, par.model)],
-                                        repeats=REPEATS, warmup=5)
-    (t_orig, _, _), (t_lat, l10, l90), (t_par, p10, p90) = times
+        times = latency_mod.measure_many([backend.timer(m, b, 1) for m in (prep.model, lat.model, par.model)],
+                                         repeats=REPEATS, warmup=5, sample_seconds=costs.SAMPLE_SECONDS)
+    t_orig, t_lat, t_par = (t["median_ms"] / 1e3 for t in times)
+    l10, l90 = times[1]["p10_ms"] / 1e3, times[1]["p90_ms"] / 1e3
     return {
         "model": name, "runtime": backend.RUNTIME, "batch": batch, "budget": budget, "method": prep.method,
         "allocation": prep.allocation, "prep_s": prep_seconds,

@@ -9,14 +9,20 @@ import numpy as np
 from ...records import LayerRecord
 from .layers import _Names, _opset, _pair_nodes
 from .model import _FLOAT_TYPES, OnnxModel
-from .running import _activations
+from .running import _session, feed
 
 
 def input_shapes(model: OnnxModel, records: list[LayerRecord], batch) -> dict[str, list[int]]:
-    """The shape of the activation input of each record's node on ``batch``."""
-    values = _activations(model, batch)
-    return {r.name: list(np.asarray(values[r.options["activation"]]).shape)
-            for r in records if r.options["activation"] in values}
+    """The shape of the activation input of each record's node on ``batch``: one run of the probe
+    session returning those inputs alone (not every probed activation), of which only the shapes
+    are kept."""
+    session = _session(model, probe=True)
+    fed = feed(model, batch)
+    listed = {o.name for o in session.get_outputs()}
+    wanted = [a for a in dict.fromkeys(r.options["activation"] for r in records) if a in listed]
+    shapes = {a: list(v.shape) for a, v in fed.items()}
+    shapes.update({a: list(np.asarray(v).shape) for a, v in zip(wanted, session.run(wanted, fed))} if wanted else {})
+    return {r.name: shapes[r.options["activation"]] for r in records if r.options["activation"] in shapes}
 
 
 def layer_timers(model: OnnxModel, records: list[LayerRecord], batch, threads: int) -> dict:
