@@ -124,10 +124,11 @@ def _timed(record, ranks: np.ndarray, latency) -> tuple[np.ndarray, np.ndarray, 
         return ranks[:0], np.zeros(0), 0.0
     scale = latency.layer_scale
     dense = float(np.round(table.dense_ms * scale * NS))
+    ranks = table.faster_ranks(ranks)  # break-even by time: a prefix, since the fitted curve rises
     t = np.round(table.time_ms(ranks) * scale * NS)
     steps = np.arange(len(t))
     t = np.maximum.accumulate(t - steps) + steps  # rising by at least 1 ns per option
-    keep = int(np.searchsorted(t, dense, side="left"))  # strictly below dense
+    keep = int(np.searchsorted(t, dense, side="left"))  # still below dense once whole nanoseconds
     return ranks[:keep], t[:keep].astype(float), dense
 
 

@@ -8,7 +8,7 @@ import sys
 
 from ..config import CompressConfig, cli_fields
 from ..errors import InputError
-from .options import PROG
+from .options import PROFILE_FIELDS, PROG
 
 
 def load_model(args):
@@ -246,9 +246,7 @@ def cmd_profile(args) -> int:
     model, _ = load_model(args)
     if not args.heldout:
         raise InputError("--heldout is required: the inputs the layers are timed on (their shapes are what counts)")
-    fields = ("only", "skip", "rank_step", "min_rank", "latency_batch", "latency_threads", "latency_warmup",
-              "latency_repeats", "output")
-    config = CompressConfig(quiet=args.quiet, **{k: getattr(args, k) for k in fields})
+    config = CompressConfig(quiet=args.quiet, **{k: getattr(args, k) for k in PROFILE_FIELDS})
     if config.latency_repeats < 1:
         raise InputError("--latency-repeats must be at least 1 for a profile (it is all timing)")
     profile = profile_latency(model, _heldout(args), config)

@@ -53,6 +53,11 @@ examples:
 }
 
 
+#: The configuration fields the ``profile`` command offers (the layers chosen, the rank grid, the timing).
+PROFILE_FIELDS = ("only", "skip", "rank_step", "min_rank", "latency_batch", "latency_threads", "latency_warmup",
+                  "latency_repeats", "output")
+
+
 class _Once(argparse.Action):
     """A flag that may be given once: a second value is an error, not a silent override."""
 
@@ -212,8 +217,7 @@ def build_parser(commands: dict) -> argparse.ArgumentParser:
     g = p.add_argument_group("what is timed")
     g.add_argument("--heldout", metavar="DATA", help="inputs to time on (.npz or FILE.py:FUNCTION; the first "
                    "--latency-batch samples; default with --demo: its own)")
-    for name in ("only", "skip", "rank_step", "min_rank", "latency_batch", "latency_threads", "latency_warmup",
-                 "latency_repeats", "output"):
+    for name in PROFILE_FIELDS:
         add_field(g, by_name[name])
     g.add_argument("--out", metavar="FILE", help="the profile file to write (JSON; atomically)")
     g.add_argument("--force", action="store_true", help="replace an existing --out file")
