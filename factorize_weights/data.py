@@ -235,3 +235,22 @@ def _checked(inputs, labels, source: str, flag: str, sha: str | None) -> HeldOut
         if labels.dtype.kind not in "fiub":
             raise InputError(f"{flag} {source}: 'labels' has dtype {labels.dtype}; expected numbers")
     return HeldOut(inputs, labels, source, sha)
+
+
+def token_mask(batch) -> np.ndarray | None:
+    """Which positions of a batch of token sequences are real tokens: its ``attention_mask``
+    (N, T) as booleans, or None when the batch has none or every position is real. Calibration
+    statistics count only these (padding is not what the model sees in use)."""
+    mask = batch.get("attention_mask") if isinstance(batch, dict) else None
+    if mask is None or np.ndim(mask) != 2:
+        return None
+    real = np.asarray(mask) != 0
+    return None if real.all() else real
+
+
+def real_rows(x, mask):
+    """``x`` (N, T, features) at the real tokens only, as (tokens, features); ``x`` itself when
+    there is no mask or its leading shape is not the mask's (a layer that does not run per token)."""
+    if mask is None or x.ndim != 3 or tuple(x.shape[:2]) != tuple(mask.shape):
+        return x
+    return x[mask]

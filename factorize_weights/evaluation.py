@@ -21,7 +21,7 @@ ACTIVATION_BYTES = 256 * 2**20
 
 def check_fits(model, data: HeldOut, flag: str = "--heldout", output: str | None = None) -> np.ndarray:
     """Run the first batch of ``data`` through ``model``; refuse data that does not fit it."""
-    first, _ = next(data.batches(batch_size=min(len(data), 8)))
+    first = first_batch(data)
     try:
         outputs = backend_for(model).predict(model, first, source=f"{flag} {data.source}", output=output)
     except InputError:
@@ -37,11 +37,16 @@ def check_fits(model, data: HeldOut, flag: str = "--heldout", output: str | None
     return outputs
 
 
+def first_batch(data: HeldOut):
+    """The batch :func:`check_fits` runs: the first few samples."""
+    return next(data.batches(batch_size=min(len(data), 8)))[0]
+
+
 def check_heldout(model, heldout: HeldOut, metric: str | None, output: str | None = None) -> str:
     """Run the first held-out batch through ``model``; return the metric to use."""
     outputs = check_fits(model, heldout, "--heldout", output)
     name = metric or default_metric(heldout.labels, outputs)
-    check_metric(name, heldout.labels, outputs)
+    check_metric(name, heldout.labels, outputs, first_batch(heldout))
     return name
 
 
@@ -67,7 +72,7 @@ def score(metric: str, factorized, triples, total: int, config: CompressConfig) 
     predict = backend_for(factorized).predict
     for inputs, reference, labels in bar(triples, config, "evaluate", total, "batch"):
         mask = inputs.get("attention_mask") if isinstance(inputs, dict) else None  # sequence metrics count real tokens
-        acc.update(reference, predict(factorized, inputs, output=config.output), labels, mask)
+        acc.update(reference, predict(factorized, inputs, output=config.output), labels, mask, inputs)
     return acc.result()
 
 
@@ -84,6 +89,39 @@ def check_overlap(heldout: HeldOut | None, calibration: HeldOut | None, allow: b
             "would be measured on what was used to fit or choose" + (" (give --allow-overlap to do it anyway)"
                                                                      if flag == "--calibration" else "")
         )
+
+
+#: The original's held-out outputs are kept for every evaluation while they fit this; larger ones (a
+#: language model's logits: samples x positions x vocabulary floats) are recomputed batch by batch
+REFERENCE_BYTES = 512 * 2**20
+
+
+class Recomputed:
+    """The original's held-out outputs, run again at every use instead of kept (see
+    :data:`REFERENCE_BYTES`): an iterable of (outputs, labels) per batch, like the kept list."""
+
+    def __init__(self, model, heldout: HeldOut, batch_size: int, output: str | None):
+        self.model, self.heldout, self.batch_size, self.output = model, heldout, batch_size, output
+
+    def __len__(self) -> int:
+        return -(-len(self.heldout) // self.batch_size)
+
+    def __iter__(self):
+        predict = backend_for(self.model).predict
+        for inputs, labels in self.heldout.batches(self.batch_size):
+            yield predict(self.model, inputs, output=self.output), labels
+
+
+def reference_outputs(model, heldout: HeldOut, batch_size: int, output: str | None):
+    """The original's outputs on every held-out batch: kept in a list when the whole set's fit
+    :data:`REFERENCE_BYTES` (judged from the first batch), else a :class:`Recomputed`."""
+    predict = backend_for(model).predict
+    batches = heldout.batches(batch_size)
+    inputs, labels = next(batches)
+    first = predict(model, inputs, output=output)
+    if first.nbytes * -(-len(heldout) // batch_size) > REFERENCE_BYTES:
+        return Recomputed(model, heldout, batch_size, output)
+    return [(first, labels)] + [(predict(model, x, output=output), y) for x, y in batches]
 
 
 def evaluate_prepared(prep, factorized) -> MetricResult:

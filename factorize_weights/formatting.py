@@ -109,3 +109,17 @@ def abbreviate(name: str) -> str:
     parts = name.split(".")
     head, tail = parts[:-2], parts[-2:]
     return ".".join([p if p.isdigit() else p[: 2 if p.startswith("_") else 1] for p in head] + tail)
+
+
+def counted(metric: dict) -> str:
+    """What a metric was counted over: samples, or positions of sequences (and what masked them);
+    perplexity also gives the mean loss it is the exponential of."""
+    pos = metric.get("per_position")
+    if pos is None:
+        return f"{metric['samples']} samples"
+    by = f", {' and '.join(pos['masked_by'])} honoured" if pos["masked_by"] else ""
+    loss = metric.get("loss")
+    if loss is None:
+        return f"{pos['positions']} positions{by}"
+    return (f"mean loss {loss['before']:.4g} -> {loss['after']:.4g} nats per token; "
+            f"{pos['positions']} next tokens{by}")

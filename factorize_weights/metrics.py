@@ -7,10 +7,14 @@ top1, top5  share of samples whose label is among the k top logits  int labels  
 mse         mean squared error against float targets               labels      target^2
 cosine      mean cosine similarity to the original model's outputs  —           [-1, 1]
 agreement   share of samples whose argmax equals the original's     —           percent
+            (per position of a sequence: next-token agreement)
+perplexity  exp(mean next-token cross-entropy) of a causal          input_ids   perplexity
+            language model's logits (N, T, vocabulary)
 =========== ======================================================= =========== ==========
 
 ``before`` is the original model's value (1.0 for cosine and 100 for agreement by definition);
-``after`` the factorized model's; ``delta = after - before``.
+``after`` the factorized model's; ``delta = after - before``. Perplexity also reports the mean loss
+(nats per token) it is the exponential of.
 """
 
 from __future__ import annotations
@@ -21,13 +25,15 @@ import numpy as np
 
 from .errors import InputError
 
-METRICS = ("top1", "top5", "mse", "cosine", "agreement")
+METRICS = ("top1", "top5", "mse", "cosine", "agreement", "perplexity")
 #: The facts every output reads about a metric, in one place: whether higher is better, and the
 #: units of a value and of a drop (percent metrics drop in percentage points)
-HIGHER_IS_BETTER = {"top1": True, "top5": True, "mse": False, "cosine": True, "agreement": True}
+HIGHER_IS_BETTER = {"top1": True, "top5": True, "mse": False, "cosine": True, "agreement": True,
+                    "perplexity": False}
 PERCENT = ("top1", "top5", "agreement")  # values in percent, drops in percentage points
 DROP_UNITS = {"top1": "percentage points", "top5": "percentage points", "agreement": "percentage points",
-              "cosine": "cosine (absolute)", "mse": "mse (absolute increase)"}
+              "cosine": "cosine (absolute)", "mse": "mse (absolute increase)",
+              "perplexity": "perplexity (absolute increase)"}
 
 
 def default_metric(labels: np.ndarray | None, outputs: np.ndarray) -> str:
@@ -46,9 +52,10 @@ def default_metric(labels: np.ndarray | None, outputs: np.ndarray) -> str:
 IGNORE_BELOW = 0
 
 
-def check_metric(name: str, labels: np.ndarray | None, outputs: np.ndarray) -> None:
+def check_metric(name: str, labels: np.ndarray | None, outputs: np.ndarray, inputs=None) -> None:
     """Refuse a metric the data cannot support, naming what is missing. Classification metrics
-    take (N, classes) outputs with (N,) labels, or per position (N, T, classes) with (N, T)."""
+    take (N, classes) outputs with (N,) labels, or per position (N, T, classes) with (N, T);
+    perplexity takes (N, T, vocabulary) logits with the token ids of ``inputs`` (one batch)."""
     if name not in METRICS:
         raise InputError(f"--metric {name!r}: expected one of {', '.join(METRICS)}")
     if name in ("top1", "top5", "mse") and labels is None:
@@ -73,6 +80,8 @@ def check_metric(name: str, labels: np.ndarray | None, outputs: np.ndarray) -> N
             )
     if name == "mse" and labels.shape[1:] != outputs.shape[1:]:
         raise InputError(f"--metric mse: labels of shape {labels.shape[1:]} per sample do not match outputs {outputs.shape[1:]}")
+    if name == "perplexity":
+        check_perplexity(labels, outputs, inputs)
     if name == "agreement" and outputs.ndim not in (2, 3):
         raise InputError(f"--metric agreement: the model output must be (N, classes) or (N, positions, classes); "
                          f"got shape {outputs.shape}")
@@ -87,6 +96,63 @@ def positions(original: np.ndarray, factorized: np.ndarray, labels: np.ndarray |
     if labels is not None and labels.shape == original.shape[:2]:
         keep &= labels >= IGNORE_BELOW
     return original[keep], factorized[keep], (labels[keep] if labels is not None else None)
+
+
+#: Rows of logits turned into losses at once (float64): bounds the memory of a large vocabulary
+LOSS_ROWS = 256
+
+
+def _aligned_labels(labels) -> bool:
+    return labels is not None and labels.ndim == 2 and labels.dtype.kind in "iu"
+
+
+def check_perplexity(labels, outputs: np.ndarray, inputs) -> None:
+    """Perplexity needs (N, T, vocabulary) logits with T >= 2 and token ids inside the vocabulary."""
+    if outputs.ndim != 3 or outputs.shape[1] < 2:
+        raise InputError("--metric perplexity: the model output must be next-token logits of shape "
+                         f"(N, positions >= 2, vocabulary); got shape {outputs.shape}")
+    ids = labels if _aligned_labels(labels) else (inputs.get("input_ids") if isinstance(inputs, dict) else None)
+    if ids is None:
+        raise InputError("--metric perplexity: the held-out set has no 'input_ids' array (or (N, T) integer "
+                         "'labels') to read the next tokens from")
+    ids = np.asarray(ids)
+    if ids.ndim != 2 or ids.shape[1] != outputs.shape[1] or ids.dtype.kind not in "iu":
+        raise InputError(f"--metric perplexity: the token ids ({ids.dtype} {ids.shape}) must be integers of shape "
+                         f"(N, {outputs.shape[1]}), one per output position")
+    real = ids[ids >= 0]
+    if real.size and real.max() >= outputs.shape[-1]:
+        raise InputError(f"--metric perplexity: token ids reach {real.max()} but the model's vocabulary has "
+                         f"{outputs.shape[-1]} entries")
+
+
+def next_tokens(inputs, labels, mask) -> np.ndarray:
+    """The token each position t < T - 1 of a causal language model predicts (the one at t + 1),
+    -1 where nothing is scored; shape (N, T - 1). The ids are the held-out 'labels' when they are
+    (N, T) integers (the language-model training convention: aligned with the inputs, shifted here,
+    < 0 ignored), else 'input_ids'. With an attention mask a position counts only when it and the
+    next are both real tokens (no prediction from or of padding)."""
+    ids = np.asarray(labels if _aligned_labels(labels) else inputs["input_ids"]).astype(np.int64)
+    nxt = ids[:, 1:]
+    keep = nxt >= IGNORE_BELOW
+    if mask is not None and np.shape(mask) == ids.shape:
+        real = np.asarray(mask) != 0
+        keep &= real[:, :-1] & real[:, 1:]
+    return np.where(keep, nxt, -1)
+
+
+def token_losses(logits: np.ndarray, targets: np.ndarray) -> np.ndarray:
+    """Cross-entropy ``logsumexp(z) - z[target]`` (nats) of every scored position: ``logits``
+    (N, T, V), ``targets`` (N, T - 1) from :func:`next_tokens`. Float64, :data:`LOSS_ROWS` rows at once."""
+    keep = targets >= 0
+    rows = logits[:, :-1][keep]
+    want = targets[keep]
+    out = np.empty(rows.shape[0])
+    for i in range(0, rows.shape[0], LOSS_ROWS):
+        z = rows[i:i + LOSS_ROWS].astype(np.float64)
+        top = z.max(axis=1)
+        lse = top + np.log(np.exp(z - top[:, None]).sum(axis=1))
+        out[i:i + LOSS_ROWS] = lse - z[np.arange(z.shape[0]), want[i:i + LOSS_ROWS]]
+    return out
 
 
 def topk_correct(logits: np.ndarray, labels: np.ndarray, k: int) -> int:
@@ -117,6 +183,7 @@ class MetricResult:
     samples: int
     per_class: list | None = None  # top1/top5 with class labels: [{"class", "samples", "before", "after"}]
     per_position: dict | None = None  # sequence outputs: {"positions": P, "masked_by": [...]}
+    loss: dict | None = None  # perplexity: mean next-token cross-entropy, nats per token {"before", "after"}
 
     @property
     def delta(self) -> float:
@@ -139,6 +206,8 @@ class MetricResult:
             out["per_class"] = self.per_class
         if self.per_position is not None:
             out["per_position"] = self.per_position
+        if self.loss is not None:
+            out["loss"] = self.loss
         return out
 
 
@@ -156,9 +225,25 @@ class MetricAccumulator:
         self.positions: dict | None = None  # set by the first per-position batch
 
     def update(self, original: np.ndarray, factorized: np.ndarray, labels: np.ndarray | None,
-               mask: np.ndarray | None = None) -> None:
+               mask: np.ndarray | None = None, inputs=None) -> None:
         """One batch. Classification metrics on (N, T, C) outputs count every position that
-        ``mask`` (an attention mask) and the labels (< 0: ignored) keep."""
+        ``mask`` (an attention mask) and the labels (< 0: ignored) keep; perplexity reads the
+        next tokens from ``inputs`` (the batch's named arrays) or the labels."""
+        if self.name == "perplexity":
+            targets = next_tokens(inputs, labels, mask)
+            if self.positions is None:
+                self.positions = {"positions": 0, "masked_by": []}
+            by = self.positions["masked_by"]
+            if mask is not None and "attention_mask" not in by:
+                by.append("attention_mask")
+            if _aligned_labels(labels) and np.any(labels < IGNORE_BELOW) and "labels < 0" not in by:
+                by.append("labels < 0")
+            before, after = token_losses(original, targets), token_losses(factorized, targets)
+            self.positions["positions"] += before.size
+            self.n += before.size
+            self.before += float(before.sum())
+            self.after += float(after.sum())
+            return
         if self.name in ("top1", "top5", "agreement") and original.ndim == 3:
             if self.positions is None:
                 self.positions = {"positions": 0, "masked_by": []}
@@ -195,6 +280,10 @@ class MetricAccumulator:
     def result(self) -> MetricResult:
         scale = 100.0 if self.name in PERCENT else 1.0
         n = max(self.n, 1)
+        if self.name == "perplexity":
+            loss = {"before": self.before / n, "after": self.after / n}
+            return MetricResult(self.name, float(np.exp(loss["before"])), float(np.exp(loss["after"])), self.n,
+                                None, self.positions, loss)
         per_class = None
         if self.classes:
             per_class = [{"class": c, "samples": s, "before": 100.0 * b / s, "after": 100.0 * a / s}

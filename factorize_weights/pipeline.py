@@ -23,7 +23,7 @@ from .calibrate import calibrate, recover, sequential_refit
 from .config import CompressConfig
 from .data import HeldOut
 from .errors import InputError
-from .evaluation import (batch_size_for, check_fits, check_heldout, check_overlap, evaluate_prepared,
+from .evaluation import (batch_size_for, check_fits, check_heldout, check_overlap, evaluate_prepared, reference_outputs,
                          layer_output_errors, measure_latency)
 from .metrics import MetricResult
 from .progress import bar
@@ -252,10 +252,7 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
         t1 = time.perf_counter()
         effects = measure_effects(model, chosen, decompositions, calibration, config, size)
         timings["effects"] = time.perf_counter() - t1
-    reference = []
-    if heldout is not None:
-        for inputs, labels in heldout.batches(size):
-            reference.append((backend.predict(model, inputs, output=config.output), labels))
+    reference = reference_outputs(model, heldout, size, config.output) if heldout is not None else []
     timings["prepare"] = time.perf_counter() - t0
     return Prepared(model, config, records, decompositions, method, sequential, heldout, cal, metric_name,
                     reference, timings, size, order, effects, allocation, bn_inputs, profile)

@@ -15,7 +15,7 @@ from .metrics import MetricResult
 from .records import LayerRecord
 from .spectra import Spectrum
 from .report_latency import latency_plan_lines
-from .formatting import (fmt_change, fmt_count, fmt_error, fmt_kept, fmt_mb, fmt_ms, fmt_points, fmt_rank,
+from .formatting import (counted, fmt_change, fmt_count, fmt_error, fmt_kept, fmt_mb, fmt_ms, fmt_points, fmt_rank,
                          fmt_ratio, fmt_value)
 
 
@@ -312,7 +312,7 @@ def summary_line(report: dict) -> str:
         change = fmt_change(m["name"], m["before"], m["after"], m["higher_is_better"])
         text += (
             f"; held-out {m['name']} {fmt_metric(m['name'], m['before'])} -> "
-            f"{fmt_metric(m['name'], m['after'])} ({change}, {m['samples']} samples)"
+            f"{fmt_metric(m['name'], m['after'])} ({change}, {counted(m)})"
         )
     return text
 

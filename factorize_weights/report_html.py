@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import html
 
-from .formatting import (NOT_APPLICABLE, fmt_change, fmt_count, fmt_error, fmt_kept, fmt_mb, fmt_ms, fmt_points,
+from .formatting import (NOT_APPLICABLE, counted, fmt_change, fmt_count, fmt_error, fmt_kept, fmt_mb, fmt_ms, fmt_points,
                          fmt_rank, fmt_ratio, fmt_share, fmt_value)
 from .metrics import HIGHER_IS_BETTER
 from .report import summary_line
@@ -193,7 +193,7 @@ def _summary_rows(report: dict) -> list[list[str]]:
         rows.append([f"held-out {esc(m['name'])}", f"{fmt_value(m['name'], m['before'])} → {fmt_value(m['name'], m['after'])} "
                      f"<span class=\"{'bad' if worse else 'good'}\">"
                      f"({esc(fmt_change(m['name'], m['before'], m['after'], m['higher_is_better']))})</span> "
-                     f"on {fmt_count(m['samples'])} samples"])
+                     f"on {esc(counted(m))}"])
     lat = report.get("latency")
     if lat:
         rows.append(["CPU latency", f"{fmt_ms(lat['before_ms'])} → {fmt_ms(lat['after_ms'])} ({fmt_ratio(lat['speedup'])} "

@@ -13,7 +13,7 @@ from pathlib import Path
 from .backends import backend_for
 from .config import CompressConfig
 from .data import HeldOut
-from .evaluation import check_heldout, check_overlap
+from .evaluation import check_heldout, check_overlap, reference_outputs
 from .pipeline import CompressResult, Prepared, prepare, realize
 from .resolve import check, facts_for
 from .sweep import search_budget
@@ -108,8 +108,7 @@ def compress(
             "source": selection.source, "sha256": selection.sha256, "samples": len(selection)}
         if selection is not None:  # the result is measured on the held-out set, which played no part
             prep.heldout, prep.metric_name = heldout, check_heldout(model, heldout, config.metric, config.output)
-            prep.reference = [(prep.backend.predict(model, x, output=config.output), y)
-                              for x, y in heldout.batches(prep.batch_size)]
+            prep.reference = reference_outputs(model, heldout, prep.batch_size, config.output)
         prep.config = config = dataclasses.replace(config, budget=budget)
         result = realize(prep, budget, sources=sources)
         result.report["search"] = search

@@ -10,7 +10,7 @@ import shutil
 import sys
 
 from .report import next_steps
-from .formatting import (abbreviate, common_prefix, fmt_change, fmt_count, fmt_error, fmt_kept, fmt_mb, fmt_ms,
+from .formatting import (abbreviate, common_prefix, counted, fmt_change, fmt_count, fmt_error, fmt_kept, fmt_mb, fmt_ms,
                          fmt_rank, fmt_ratio, fmt_share, fmt_value, NOT_APPLICABLE)
 
 __all__ = ["fmt_change", "fmt_value", "table", "layer_rows", "summary", "counted"]
@@ -193,15 +193,6 @@ def int8_lines(q: dict) -> list[str]:
                      NOT_APPLICABLE if v["latency_ms"] is None else fmt_ms(v["latency_ms"], unit=False)])
     return [f"int8 ({q['quantization']}; {q['runtime']}, batch {q['batch']}, {q['threads']} thread(s)):"] + \
         ["  " + line for line in table(head, rows, right_from=1)]
-
-
-def counted(metric: dict) -> str:
-    """What a metric was counted over: samples, or positions of sequences (and what masked them)."""
-    pos = metric.get("per_position")
-    if pos is None:
-        return f"{metric['samples']} samples"
-    by = f", {' and '.join(pos['masked_by'])} honoured" if pos["masked_by"] else ""
-    return f"{pos['positions']} positions{by}"
 
 
 def inspect_lines(report: dict) -> list[str]:

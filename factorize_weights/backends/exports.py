@@ -47,8 +47,9 @@ def int8_comparison(original, factorized, heldout: HeldOut, metric: str, config:
     accs = {name: MetricAccumulator(metric) for name in variants}
     for inputs, labels in heldout.batches(config.batch_size):
         reference = onnx_backend.predict(original, inputs)
+        mask = inputs.get("attention_mask") if isinstance(inputs, dict) else None  # sequence metrics count real tokens
         for name, model in variants.items():
-            accs[name].update(reference, onnx_backend.predict(model, inputs), labels)
+            accs[name].update(reference, onnx_backend.predict(model, inputs), labels, mask, inputs)
     times = [None] * len(variants)
     if config.latency_repeats > 0:
         batch = latency_mod.batch_of(heldout.inputs, config.latency_batch)

@@ -8,6 +8,7 @@ from typing import Iterator
 
 import numpy as np
 
+from ...data import real_rows, token_mask
 from ...errors import InputError
 from ...records import LayerRecord
 from .layers import save
@@ -72,11 +73,14 @@ def _row_dtype(x: np.ndarray) -> np.dtype:
     return np.dtype(np.float64 if x.dtype == np.float64 else np.float32)
 
 
-def layer_rows(record: LayerRecord, x: np.ndarray) -> Iterator[np.ndarray]:
+def layer_rows(record: LayerRecord, x: np.ndarray, mask: np.ndarray | None = None) -> Iterator[np.ndarray]:
     """The node's activation input as rows of the matrix view's input space (float32, or float64
-    for a float64 model)."""
+    for a float64 model); with a token ``mask`` ((N, T) booleans, data.token_mask), the rows of a
+    per-token input (N, T, in) at real tokens only."""
     o = record.options
     x = np.asarray(x)
+    if o["op"] != "Conv" and o.get("side") != "left":
+        x = real_rows(x, mask)
     if o["op"] == "Conv":
         yield from _conv_rows(record, x)
     elif o["op"] == "Gemm":
@@ -100,8 +104,9 @@ def stream_inputs(model: OnnxModel, records: list[LayerRecord], batches, sink) -
     for batch in batches:
         values = _activations(model, batch)
         samples += _count(batch)
+        mask = token_mask(batch)
         for r in records:
-            for rows in layer_rows(r, values[r.options["activation"]]):
+            for rows in layer_rows(r, values[r.options["activation"]], mask):
                 sink(r.name, rows)
     return samples
 
@@ -114,9 +119,10 @@ def stream_paired_inputs(original: OnnxModel, current: OnnxModel, records: list[
     for batch in batches:
         before, after = _activations(original, batch), _activations(current, batch)
         samples += _count(batch)
+        mask = token_mask(batch)
         for r in records:
             act = r.options["activation"]
-            for x, y in zip(layer_rows(r, before[act]), layer_rows(r, after[act])):
+            for x, y in zip(layer_rows(r, before[act], mask), layer_rows(r, after[act], mask)):
                 sink(r.name, x, y)
     return samples
 

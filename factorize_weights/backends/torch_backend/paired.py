@@ -5,6 +5,7 @@ refit groups, and output errors of single-layer replacements."""
 from __future__ import annotations
 
 import contextlib
+import contextvars
 from typing import Iterator
 
 import numpy as np
@@ -13,6 +14,7 @@ from torch import nn
 
 from .layers import _factor_pair
 from .running import _run_once, call, inference, rows, select_output
+from ...data import real_rows, token_mask
 from ...records import LayerRecord
 
 #: Memory for the outputs of the blocks that probes skip (:class:`_BlockReplay`); past it, the later
@@ -156,16 +158,35 @@ def stream_layer_outputs(original: nn.Module, factorized: nn.Module, names: list
 UNFOLD_CHUNK_BYTES = 64 * 2**20
 
 
+#: The real-token mask ((N, T) bool tensor, data.token_mask) of the batch running now, or None:
+#: a linear layer's per-token input (N, T, in) gives rows at real tokens only
+_REAL: contextvars.ContextVar = contextvars.ContextVar("real_tokens", default=None)
+
+
+@contextlib.contextmanager
+def real_tokens(batch=None, *, mask=None):
+    """Run the body with the token mask of ``batch`` (or ``mask``) as the one :func:`layer_rows` applies."""
+    if mask is None and batch is not None:
+        found = token_mask(batch)
+        mask = None if found is None else torch.from_numpy(found)
+    token = _REAL.set(mask)
+    try:
+        yield mask
+    finally:
+        _REAL.reset(token)
+
+
 def layer_rows(record: LayerRecord, x: torch.Tensor) -> Iterator[torch.Tensor]:
     """The layer's input as rows of its matrix view's input space, in chunks, float32 (float64 for
-    a float64 model; stats.py says why products in float32 are safe):
+    a float64 model; stats.py says why products in float32 are safe), at real tokens only while
+    :func:`real_tokens` holds a mask:
     (rows, in) for a linear layer, (rows, in_channels*kh*kw) unfolded patches for a convolution
     (geometry from the original module, ``record.handle``). Patch columns are ordered
     (channel, kh, kw) like ``weight.reshape(out, -1)``."""
     x = x.detach()
     x = x if x.dtype == torch.float64 else x.float()
     if record.kind == "linear":
-        yield x.reshape(-1, x.shape[-1])
+        yield real_rows(x, _REAL.get()).reshape(-1, x.shape[-1])
         return
     module = record.handle
     conv2d = record.kind == "conv2d"
@@ -202,7 +223,8 @@ def stream_inputs(model: nn.Module, records: list[LayerRecord], batches, sink) -
     try:
         with inference(model):
             for batch in batches:
-                call(model, batch)
+                with real_tokens(batch):
+                    call(model, batch)
                 samples += rows(batch)
     finally:
         for h in hooks:
@@ -262,16 +284,17 @@ def stream_paired_inputs(original, current, records: list[LayerRecord], batches,
                 seen[:] = [0, 0]
                 if modules is None:
                     runs = [(lambda b=batch: call(original, b), ()), (lambda b=batch: call(current, b), ())]
-                    size = rows(batch)
+                    size, mask = rows(batch), real_tokens(batch)
                 else:
-                    h_orig, h_cur, (o_args, o_kwargs), (c_args, c_kwargs) = batch
+                    h_orig, h_cur, (o_args, o_kwargs), (c_args, c_kwargs), real = batch
                     runs = [(original, (h_orig, o_args, o_kwargs)), (current, (h_cur, c_args, c_kwargs))]
-                    size = h_orig.shape[0]
-                for run, run_args in runs:
-                    try:
-                        run(*run_args)
-                    except _Enough:
-                        pass
+                    size, mask = h_orig.shape[0], real_tokens(mask=real)
+                with mask:
+                    for run, run_args in runs:
+                        try:
+                            run(*run_args)
+                        except _Enough:
+                            pass
                 samples += size
     finally:
         for h in hooks:
@@ -385,7 +408,7 @@ class PairedRuns:
         self.original, self.current, self.batches = original, current, batches
         found = find_chain(original, records, batches[0]) if batches else None
         self.blocks, self.block_of, self.own = found if found else ([], {}, {})
-        self.cache = None  # [(orig hidden, current hidden, (args, kwargs) orig, (args, kwargs) current)] per batch
+        self.cache = None  # [(orig hidden, current hidden, (args, kwargs) orig, (args, kwargs) current, token mask)] per batch
         self.at = 0
         self.cache_bytes = cache_bytes
 
@@ -445,8 +468,9 @@ class PairedRuns:
             total += 2 * got[0]["a"][0].numel() * got[0]["a"][0].element_size()
             if total > self.cache_bytes:
                 return False
+            real = token_mask(batch)
             cache.append((got[0]["a"][0], got[1]["a"][0], (got[0]["a"][1:], got[0]["k"]),
-                          (got[1]["a"][1:], got[1]["k"])))
+                          (got[1]["a"][1:], got[1]["k"]), None if real is None else torch.from_numpy(real)))
         self.cache = cache
         return True
 
@@ -457,8 +481,8 @@ class PairedRuns:
         span = [(self.original.get_submodule(b), self.current.get_submodule(b), self.own.get(i))
                 for i, b in enumerate(self.blocks) if self.at <= i < to]
         with inference(self.original), inference(self.current):
-            self.cache = [(self._run(span, 0, o, *oe), self._run(span, 1, c, *ce), oe, ce)
-                          for o, c, oe, ce in self.cache]
+            self.cache = [(self._run(span, 0, o, *oe), self._run(span, 1, c, *ce), oe, ce, real)
+                          for o, c, oe, ce, real in self.cache]
         self.at = to
 
 
