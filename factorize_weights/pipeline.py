@@ -358,6 +358,7 @@ def realize(prep: Prepared, budget: str, *, sources: dict | None = None, latency
         config=cfg, plan=plan, records=prep.records, spectra=prep.spectra, metric=metric,
         layer_errors=errors, weight_errors=measured, heldout=heldout, sources=sources or {},
         model_params=(backend.count_params(model), backend.count_params(factorized)),
+        weight_dtype=backend.weight_dtype(model),
         timings=timings, latency=lat, error_samples=min(config.error_samples, len(heldout)) if heldout is not None else 0,
         method=prep.method, calibration=prep.calibration, fits=fits, recovery=recovery, sequential=prep.sequential,
         decompositions=prep.decompositions, effects=prep.effects, allocation=prep.allocation,
@@ -390,4 +391,4 @@ def inspect_model(model, config: CompressConfig | None = None) -> dict:
     model = backend.normalize(model)
     records = backend.discover(model, only=config.only, skip=config.skip)
     spectra = compute_spectra(records, config)
-    return report_mod.inspect_report(records, spectra, backend.count_params(model))
+    return report_mod.inspect_report(records, spectra, backend.count_params(model), backend.weight_dtype(model))

@@ -60,6 +60,15 @@ def spectrum_summary(spectrum: Spectrum) -> dict:
     }
 
 
+#: Storage of one weight in each floating dtype a model may keep its weights in
+BYTES_PER_PARAM = {"float64": 8, "float32": 4, "float16": 2, "bfloat16": 2}
+
+
+def weights_size(totals: dict, which: str) -> str:
+    """``float16 12.3 MB``: the whole model's weights before or after in the dtype they are kept in."""
+    return f"{fmt_mb(totals.get('bytes_per_param', 4) * totals[f'model_params_{which}'])}"
+
+
 def build_report(
     *,
     config: CompressConfig,
@@ -73,6 +82,7 @@ def build_report(
     sources: dict,
     model_params: tuple[int, int],
     timings: dict[str, float],
+    weight_dtype: str = "float32",
     error_samples: int,
     latency: dict | None = None,
     method: str = "svd",
@@ -153,6 +163,8 @@ def build_report(
             "params_ratio": params_after / params_before if params_before else 1.0,
             "model_params_before": model_params[0],
             "model_params_after": model_params[1],
+            "weight_dtype": weight_dtype,
+            "bytes_per_param": BYTES_PER_PARAM.get(weight_dtype, 4),
             "layers_selected": len(chosen),
             "layers_factorized": sum(1 for e in layers if e["rank"] is not None),
             **_flop_totals(layers),
@@ -189,7 +201,8 @@ def _flop_totals(layers: list[dict]) -> dict:
     return {"flops_before": before, "flops_after": after, "flops_ratio": after / before if before else 1.0}
 
 
-def inspect_report(records: list[LayerRecord], spectra: dict[str, Spectrum], model_params: int) -> dict:
+def inspect_report(records: list[LayerRecord], spectra: dict[str, Spectrum], model_params: int,
+                   weight_dtype: str = "float32") -> dict:
     """What ``inspect`` prints: per layer its shapes, break-even and spectrum; no plan."""
     layers = []
     for r in records:
@@ -205,6 +218,7 @@ def inspect_report(records: list[LayerRecord], spectra: dict[str, Spectrum], mod
     return {
         "tool_version": __version__,
         "model_params": model_params,
+        "weight_dtype": weight_dtype,
         "layers": layers,
         "skipped": [{"name": r.name, "kind": r.kind, "reason": r.skip_reason} for r in records if r.skip_reason],
     }
@@ -292,8 +306,8 @@ def summary_line(report: dict) -> str:
     text = (
         f"budget {b['given']}: selected layers {fmt_int(t['params_before'])} -> {fmt_int(t['params_after'])} "
         f"parameters ({100 * t['params_ratio']:.1f}%), whole model {fmt_int(t['model_params_before'])} -> "
-        f"{fmt_int(t['model_params_after'])} (float32 {fmt_mb(4 * t['model_params_before'])} -> "
-        f"{fmt_mb(4 * t['model_params_after'])})"
+        f"{fmt_int(t['model_params_after'])} ({t.get('weight_dtype', 'float32')} {weights_size(t, 'before')} -> "
+        f"{weights_size(t, 'after')})"
     )
     if "flops_before" in t:
         text += (f"; multiply-adds per sample {fmt_int(t['flops_before'])} -> {fmt_int(t['flops_after'])} "

@@ -10,7 +10,7 @@ import html
 from .formatting import (NOT_APPLICABLE, counted, fmt_change, fmt_count, fmt_error, fmt_kept, fmt_mb, fmt_ms, fmt_points,
                          fmt_rank, fmt_ratio, fmt_share, fmt_value)
 from .metrics import HIGHER_IS_BETTER
-from .report import summary_line
+from .report import summary_line, weights_size
 from .report_plots import (latency_rounds_fig, layer_time_fig, layer_tooltip, overview_fig, params_fig, spectrum_fig,
                            suggest_budget, svg, sweep_fig)
 
@@ -183,7 +183,8 @@ def _summary_rows(report: dict) -> list[list[str]]:
         ["parameters (selected layers)", f"{fmt_count(t['params_before'])} → {fmt_count(t['params_after'])} "
                                          f"({fmt_share(t['params_ratio'])})"],
         ["parameters (whole model)", f"{fmt_count(t['model_params_before'])} → {fmt_count(t['model_params_after'])}"],
-        ["size (float32 weights)", f"{fmt_mb(4 * t['model_params_before'])} → {fmt_mb(4 * t['model_params_after'])}"],
+        [f"size ({esc(t.get('weight_dtype', 'float32'))} weights)",
+         f"{weights_size(t, 'before')} → {weights_size(t, 'after')}"],
     ]
     if "flops_before" in t:
         rows.append(["multiply-adds per sample", f"{fmt_count(t['flops_before'])} → {fmt_count(t['flops_after'])} "

@@ -9,7 +9,7 @@ import os
 import shutil
 import sys
 
-from .report import next_steps
+from .report import BYTES_PER_PARAM, next_steps, weights_size
 from .formatting import (abbreviate, common_prefix, counted, fmt_change, fmt_count, fmt_error, fmt_kept, fmt_mb, fmt_ms,
                          fmt_rank, fmt_ratio, fmt_share, fmt_value, NOT_APPLICABLE)
 
@@ -160,8 +160,8 @@ def summary(report: dict, out=None, files: list[str] | None = None, hints: tuple
     # each count beside its own share: the selected layers' (what the budget is of) and the whole model's
     lines.append(f"parameters: selected layers {fmt_count(t['params_before'])} -> {fmt_count(t['params_after'])} "
                  f"({fmt_share(t['params_ratio'])}); whole model {fmt_count(t['model_params_before'])} -> "
-                 f"{fmt_count(t['model_params_after'])} ({fmt_share(whole)}); float32 "
-                 f"{fmt_mb(4 * t['model_params_before'])} -> {fmt_mb(4 * t['model_params_after'])}")
+                 f"{fmt_count(t['model_params_after'])} ({fmt_share(whole)}); {t.get('weight_dtype', 'float32')} "
+                 f"{weights_size(t, 'before')} -> {weights_size(t, 'after')}")
     m = report.get("metric")
     if m:
         lines.append(f"held-out {m['name']} {fmt_value(m['name'], m['before'])} -> {fmt_value(m['name'], m['after'])} "
@@ -202,7 +202,9 @@ def inspect_lines(report: dict) -> list[str]:
     rows = [[e["name"], e["kind"], "x".join(map(str, e["matrix_shape"])), fmt_count(e["params"]),
              str(e["break_even_rank"]), str(e["rank_for_energy_90"]), str(e["rank_for_energy_99"]),
              f"{e['spectrum']['singular_values'][0]:.4g}"] for e in report["layers"]]
-    lines = [f"model parameters: {fmt_count(report['model_params'])} (float32 {fmt_mb(4 * report['model_params'])})", ""]
+    dtype = report.get("weight_dtype", "float32")
+    size = fmt_mb(BYTES_PER_PARAM.get(dtype, 4) * report["model_params"])
+    lines = [f"model parameters: {fmt_count(report['model_params'])} ({dtype} {size})", ""]
     lines += table(head, rows, optional=("break-even", "kind", "top singular value", "matrix"), whole="--json")
     if report["skipped"]:
         lines += ["", "skipped:"] + [f"  {s['name']} ({s['kind']}): {s['reason']}" for s in report["skipped"]]

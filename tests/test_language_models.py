@@ -202,3 +202,26 @@ def test_calibration_statistics_count_real_tokens_only(make):
         assert padded[r.name].rows == alone[r.name].rows == real
         np.testing.assert_allclose(padded[r.name].gram, alone[r.name].gram, rtol=1e-4,
                                    atol=1e-5 * np.abs(alone[r.name].gram).max())
+
+
+@pytest.mark.parametrize("dtype", [torch.float16, torch.bfloat16], ids=["float16", "bfloat16"])
+def test_half_precision_folder_round_trips_in_its_dtype(dtype, tmp_path):
+    """Weights kept in half precision are read, factorized and written in it (statistics in float32
+    or float64 inside): the result folder holds no float32 tensor, reloads in that dtype and generates."""
+    from safetensors import safe_open
+
+    src = _folder(_llama(dtype=dtype), tmp_path / "src")
+    held = _save_npz(tmp_path / "held.npz", _tokens(8, 16, seed=6))
+    out = tmp_path / "out"
+    _cli("compress", "--model", src, "--heldout", held, "--metric", "perplexity", "--budget", "params=0.6",
+         "--latency-repeats", "0", "--out", str(out))
+    name = str(dtype).removeprefix("torch.")
+    totals = json.loads((out / "report.json").read_text())["totals"]
+    assert totals["weight_dtype"] == name and totals["bytes_per_param"] == 2
+    with safe_open(str(out / "model.safetensors"), "pt") as f:
+        assert {f.get_tensor(k).dtype for k in f.keys()} == {dtype}
+    small = fw.load_factorized(fw.open_model(src), str(out))
+    pairs = [m for m in small.modules() if isinstance(m, fw.FactorPair)]
+    assert pairs and all(p.dtype == dtype for m in pairs for p in m.parameters())
+    prompt = [3, 8, 21]
+    assert _generate(small, prompt, cache=True) == _generate(small, prompt, cache=False)

@@ -78,6 +78,9 @@ class Backend(Protocol):
 
     def count_params(self, model) -> int: ...
 
+    def weight_dtype(self, model) -> str:
+        """The floating dtype most weights are stored in (numpy/torch name: float32, bfloat16, ...)."""
+
     def check(self, model) -> None:
         """Raise if the rewritten model is invalid in its format (a bug, not bad input)."""
 

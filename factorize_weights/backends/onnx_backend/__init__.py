@@ -22,7 +22,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from .layer_timing import input_shapes, layer_timers  # noqa: F401
-from .layers import check, count_params, discover, rewrite, save, size_bytes, weight_matrix  # noqa: F401
+from .layers import check, count_params, discover, rewrite, save, size_bytes, weight_dtype, weight_matrix  # noqa: F401
 from .model import TWO_GB, OnnxModel, load, looks_like_onnx  # noqa: F401
 from .paired import (  # noqa: F401
     UNFOLD_CHUNK_BYTES, PairedRuns, call_stages, layer_rows, paired_runs, read_factors, save_model, stream_inputs,

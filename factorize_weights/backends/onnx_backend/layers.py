@@ -326,6 +326,16 @@ def count_params(model: OnnxModel) -> int:
     return int(sum(int(np.prod(t.dims)) for t in model.graph.initializer if t.data_type in _FLOAT_TYPES))
 
 
+def weight_dtype(model: OnnxModel) -> str:
+    """The floating dtype most of the initializers' numbers are stored in."""
+    counts: dict[str, int] = {}
+    for t in model.graph.initializer:
+        if t.data_type in _FLOAT_TYPES:
+            name = np.dtype(_FLOAT_TYPES[t.data_type]).name
+            counts[name] = counts.get(name, 0) + int(np.prod(t.dims))
+    return max(counts, key=counts.get) if counts else "float32"
+
+
 def size_bytes(model: OnnxModel) -> int:
     return int(model.proto.ByteSize())
 

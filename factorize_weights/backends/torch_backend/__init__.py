@@ -18,7 +18,7 @@ concern per file:
 from __future__ import annotations
 
 from .layers import (  # noqa: F401
-    OVERRIDE_MISMATCH, OVERRIDE_REASON, FactorPair, count_params, discover, load_saved_weights, normalize, rebuild,
+    OVERRIDE_MISMATCH, OVERRIDE_REASON, FactorPair, count_params, weight_dtype, discover, load_saved_weights, normalize, rebuild,
     rewrite, save_weights, skeleton, weight_matrix,
 )
 from .layer_timing import input_shapes, layer_timers  # noqa: F401

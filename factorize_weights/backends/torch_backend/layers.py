@@ -297,6 +297,16 @@ def count_params(model: nn.Module) -> int:
     return int(sum(seen.values()))
 
 
+def weight_dtype(model: nn.Module) -> str:
+    """The floating dtype most of the model's parameters are stored in (``"float32"``, ``"bfloat16"``, ...)."""
+    counts: dict[str, int] = {}
+    for p in {id(p): p for p in model.parameters()}.values():
+        if p.is_floating_point():
+            name = str(p.dtype).removeprefix("torch.")
+            counts[name] = counts.get(name, 0) + p.numel()
+    return max(counts, key=counts.get) if counts else "float32"
+
+
 def save_weights(model: nn.Module, path: str | Path) -> None:
     from safetensors.torch import save_model
 

@@ -132,6 +132,12 @@ class _BlockReplay:
                     self.modules[j].forward = previous
 
 
+def _numpy(t: torch.Tensor) -> np.ndarray:
+    """A layer output as numpy: bfloat16 (which numpy lacks) as float32, other dtypes as they are."""
+    t = t.detach()
+    return (t.float() if t.dtype == torch.bfloat16 else t).numpy()
+
+
 def stream_layer_outputs(original: nn.Module, factorized: nn.Module, names: list[str], batches, sink) -> None:
     """For each batch and each call of each layer in ``names``: ``sink(name, exact, approx)``, the
     original layer's output and its factor pair's output on the same inputs (numpy arrays)."""
@@ -140,7 +146,7 @@ def stream_layer_outputs(original: nn.Module, factorized: nn.Module, names: list
         pair = factorized.get_submodule(name)
 
         def hook(module, args, output, name=name, pair=pair):
-            sink(name, output.detach().numpy(), pair(args[0]).detach().numpy())
+            sink(name, _numpy(output), _numpy(pair(args[0])))
 
         hooks.append(original.get_submodule(name).register_forward_hook(hook))
     try:
