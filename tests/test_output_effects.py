@@ -158,6 +158,28 @@ def test_output_allocation_gives_the_rank_to_the_layer_that_reaches_the_output()
     assert errors["output"] < 0.5 * errors["error-sum"]
 
 
+def test_auto_allocation_probes_only_where_the_probes_are_affordable():
+    """Cost rule (effects.PROBE_PASS_LIMIT): 12 layers x up to 3 probe ranks over all 8 calibration
+    samples are over 32 passes over the set, past the limit: ``auto`` shares ranks by the layers' own errors and
+    says why; asked for by name, the probes run anyway. Few layers over the same data are probed."""
+    torch.manual_seed(2)
+    deep = nn.Sequential(*[m for _ in range(12) for m in (nn.Linear(24, 24), nn.Tanh())]).eval()
+    cal = _data(np.random.default_rng(2).standard_normal((8, 24)), "cal")
+    base = fw.CompressConfig(budget="params=0.5", quiet=True, method="svd", latency_repeats=0)
+    auto = fw.compress(deep, base, calibration=cal).report
+    import re
+    from factorize_weights.effects import PROBE_PASS_LIMIT
+
+    assert auto["allocation"]["by"] == "error-sum"
+    passes = int(re.search(r"cost (\d+) passes", auto["allocation"]["why"]).group(1))
+    assert passes > PROBE_PASS_LIMIT
+    assert auto["allocation"]["why"] in auto["warnings"]
+    forced = fw.compress(deep, dataclasses.replace(base, allocation="output"), calibration=cal).report
+    assert forced["allocation"]["by"] == "output" and "why" not in forced["allocation"]
+    shallow = nn.Sequential(nn.Linear(24, 24), nn.Tanh(), nn.Linear(24, 24)).eval()
+    assert fw.compress(shallow, base, calibration=cal).report["allocation"]["by"] == "output"
+
+
 def _layer(name, s, m=20, n=20):
     s = np.sort(np.asarray(s, dtype=float))[::-1]
     return LayerRecord(name, "linear", (m, n), (m, n), False, "float32"), Spectrum(name, (m, n), s, float(np.sum(s ** 2)))

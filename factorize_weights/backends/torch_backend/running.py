@@ -37,10 +37,28 @@ def call(model: nn.Module, batch):
     by name (``input_ids=``, ``attention_mask=``, ...), except keys ``"0"``, ``"1"``, ... which are
     positional inputs in that order (batches a data callable yielded as tuples)."""
     x = to_tensor(batch, model)
+    extra = {"use_cache": False} if _has_cache_switch(model) else {}
     if not isinstance(x, dict):
-        return model(x)
+        return model(x, **extra)
     positional = sorted((k for k in x if k.isdigit()), key=int)
-    return model(*(x[k] for k in positional), **{k: v for k, v in x.items() if not k.isdigit()})
+    named = {k: v for k, v in x.items() if not k.isdigit()}
+    return model(*(x[k] for k in positional), **{**extra, **named})
+
+
+def _has_cache_switch(model: nn.Module) -> bool:
+    """Whether ``model`` is a decoder that builds a key/value cache unless told not to (transformers'
+    causal LMs: ``use_cache`` in their forward and config). The tool runs a model for its outputs
+    only: a cache is for generation, costs memory, and is a changing object that block replays
+    (:func:`paired.find_chain`) cannot reuse."""
+    config = getattr(model, "config", None)
+    if not getattr(config, "use_cache", False):
+        return False
+    import inspect
+
+    try:
+        return "use_cache" in inspect.signature(model.forward).parameters
+    except (TypeError, ValueError):
+        return False
 
 
 def rows(batch) -> int:
