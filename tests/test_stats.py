@@ -338,18 +338,24 @@ def test_chain_cache_survives_blocks_that_change_their_input_in_place():
     assert runs.blocks  # the chain was used, not bypassed
 
 
-def test_blocks_fed_a_changing_cache_object_are_not_replayed():
-    # transformers' GPT-2 hands every block a key/value cache that changes as it runs: replaying a
-    # block with it is wrong, so the refit must use whole-model passes (and not crash with a mask)
+def test_blocks_fed_a_changing_cache_object_are_not_replayed(monkeypatch):
+    # transformers' GPT-2 run with its key/value cache hands every block a cache object that changes
+    # as it runs: replaying a block with it is wrong, so the refit must use whole-model passes (and
+    # not crash with a mask). The tool runs decoders with use_cache=False (the chain is then found,
+    # test_language_models.py); here that switch is turned off to keep the cache in.
     transformers = pytest.importorskip("transformers", reason="the optional 'transformers' package is not installed")
     from factorize_weights import CompressConfig, HeldOut, compress
+    from factorize_weights.backends.torch_backend import running
 
     torch.manual_seed(0)
     cfg = transformers.GPT2Config(vocab_size=60, n_embd=32, n_layer=3, n_head=4, n_positions=32)
     model = transformers.GPT2Model(cfg).eval()
     ids = np.random.default_rng(0).integers(0, 60, (24, 8)).astype(np.int64)
     data = {"input_ids": ids, "attention_mask": np.ones_like(ids)}
-    assert tb.find_chain(model, tb.discover(model), {k: v[:1] for k, v in data.items()}) is None
+    first = {k: v[:1] for k, v in data.items()}
+    assert tb.find_chain(model, tb.discover(model), first) is not None  # without a cache: replayed
+    monkeypatch.setattr(running, "_has_cache_switch", lambda m: False)
+    assert tb.find_chain(model, tb.discover(model), first) is None
     held = {"input_ids": ids[:8], "attention_mask": np.ones_like(ids[:8])}
     result = compress(model, CompressConfig(budget="params=0.5", quiet=True, latency_repeats=0, sequential_groups=2),
                       heldout=HeldOut(held, None, "held"), calibration=HeldOut(data, None, "cal"))

@@ -45,26 +45,46 @@ def measure_positions(model: nn.Module, records: list[LayerRecord], sample: np.n
 
 
 class _ActivationSize:
-    """Activation memory one sample needs: :data:`LIVE_OUTPUTS` times the largest module output, at
-    most the sum of all module outputs. Without gradients a module's output is freed once the next
-    ones have read it, so the sum overstates the peak many times: EfficientNet-Lite0's outputs sum to
-    391 MiB a sample while a batch of 16 (64) grew the process by 8 (14) MiB a sample, and its
-    largest output is 4.7 MiB (measured)."""
+    """Activation memory one sample needs: :data:`LIVE_OUTPUTS` times the largest module output
+    inside the model, at most the sum of all of them, plus three times the model's own output
+    (kept, and copied to float64 for the metrics). Without gradients a module's output is freed once
+    the next ones have read it, so the sum overstates the peak many times: EfficientNet-Lite0's
+    outputs sum to 391 MiB a sample while a batch of 16 (64) grew the process by 8 (14) MiB a
+    sample, and its largest output is 4.7 MiB (measured). The model's output is counted apart
+    because it is not freed: a language model's logits (positions x vocabulary) are its largest
+    tensor by far, and six of them would cut its batches to one sample."""
 
     def __init__(self):
-        self.total = self.largest = 0
+        self.sizes: list[tuple[int, int]] = []  # (data pointer, bytes) of every leaf module output
+        self.final: dict[int, int] = {}  # data pointer -> bytes of the tensors the model returns
 
     def attach(self, model: nn.Module, hooks: list) -> None:
         hooks += [m.register_forward_hook(self._count) for m in model.modules() if not list(m.children())]
+        hooks.append(model.register_forward_hook(self._returned))
 
     def _count(self, module, args, output) -> None:
         if isinstance(output, torch.Tensor):
-            size = output.numel() * output.element_size()
-            self.total += size
-            self.largest = max(self.largest, size)
+            self.sizes.append((output.data_ptr(), output.numel() * output.element_size()))
+
+    def _returned(self, module, args, output) -> None:
+        for t in _tensors(output):
+            self.final[t.data_ptr()] = t.numel() * t.element_size()
 
     def per_sample(self, rows: int) -> int:
-        return int(min(self.total, LIVE_OUTPUTS * self.largest) // max(rows, 1))
+        inner = [size for ptr, size in self.sizes if ptr not in self.final]
+        total, largest = sum(inner), max(inner, default=0)
+        return int((min(total, LIVE_OUTPUTS * largest) + 3 * sum(self.final.values())) // max(rows, 1))
+
+
+def _tensors(value) -> list:
+    """The tensors in a model's output: a tensor, or those in a tuple, list, dict or output object."""
+    if isinstance(value, torch.Tensor):
+        return [value]
+    if isinstance(value, dict) or hasattr(value, "values") and callable(value.values):
+        value = list(value.values())
+    if isinstance(value, (tuple, list)):
+        return [t for v in value for t in _tensors(v)]
+    return []
 
 
 class _ForwardCheck:
