@@ -113,7 +113,7 @@ def run_model(key: str, args, work: Path) -> dict:
                 row["totals"] = report["totals"]
                 row["seconds"] = report["wall_seconds"]
                 row["method"] = report["method"] + (" + sequential" if report.get("sequential") else "")
-                row["allocation"] = report["allocation"]["objective"] if isinstance(report.get("allocation"), dict) \
+                row["allocation"] = report["allocation"]["by"] if isinstance(report.get("allocation"), dict) \
                     else report.get("allocation")
                 code, _, _, text = spawn(child_argv("score", key, str(out)), args.threads, log.with_suffix(".score.log"))
                 row["score"] = last_json(text) if code == 0 else {"error": tail(log.with_suffix(".score.log"))}

@@ -142,7 +142,7 @@ def test_decoder_folder_compresses_reloads_and_generates(make, tmp_path):
     held = _save_npz(tmp_path / "held.npz", _tokens(8, 16, seed=5))
     out = tmp_path / "out"
     _cli("compress", "--model", src, "--heldout", held, "--metric", "perplexity", "--budget", "params=0.6",
-         "--latency-repeats", "0", "--out", str(out))
+         "--latency-repeats", "0", "--export-onnx", "--out", str(out))
     report = json.loads((out / "report.json").read_text())
     m = report["metric"]
     assert m["name"] == "perplexity" and not m["higher_is_better"] and set(m["loss"]) == {"before", "after"}
@@ -161,6 +161,15 @@ def test_decoder_folder_compresses_reloads_and_generates(make, tmp_path):
     assert with_cache == _generate(again, prompt, cache=True)
     # the reloaded model's perplexity is the report's "after"
     assert m["after"] == pytest.approx(_torch_perplexity(_logits(small, batch), batch), rel=1e-4)
+    # the ONNX export of the rewritten decoder: onnx's checker, and onnxruntime gives torch's logits
+    import onnx
+    import onnxruntime as ort
+
+    onnx.checker.check_model(str(out / "model.onnx"), full_check=True)
+    session = ort.InferenceSession(str(out / "model.onnx"), providers=["CPUExecutionProvider"])
+    names = [i.name for i in session.get_inputs()]
+    logits = session.run(None, {k: batch[k] for k in names})[0]
+    np.testing.assert_allclose(logits, _logits(small, batch), rtol=1e-3, atol=1e-4)
 
 
 def test_full_rank_factors_generate_the_original_tokens():
@@ -243,3 +252,22 @@ def test_decoders_run_without_a_cache_so_refits_replay_blocks(make):
     found = find_chain(model, records, batch)
     assert found is not None and len(found[0]) == 2  # the two decoder blocks
     np.testing.assert_allclose(backend.predict(model, batch), _logits(model, batch), rtol=1e-5, atol=1e-5)
+
+
+def test_the_logits_are_counted_once_in_the_batch_memory_estimate():
+    """The model's own output (kept, and copied to float64: three float32 sizes) is counted apart
+    from the module outputs freed as the pass moves on (six of the largest). With a vocabulary
+    far wider than the model, the estimate is about three logits' worth, not six."""
+    from factorize_weights.backends import backend_for
+    from factorize_weights.backends.torch_backend.probes import LIVE_OUTPUTS
+
+    torch.manual_seed(0)
+    cfg = transformers.LlamaConfig(vocab_size=5000, hidden_size=32, intermediate_size=64, num_hidden_layers=1,
+                                   num_attention_heads=4, num_key_value_heads=2, max_position_embeddings=64)
+    model = transformers.LlamaForCausalLM(cfg).eval()
+    backend = backend_for(model)
+    t = 16
+    per_sample = backend.measure_positions(model, backend.discover(model), _tokens(2, t, seed=0, pad=False))
+    logits = t * 5000 * 4
+    inner = t * 64 * 4  # the widest inner output: the MLP's (positions x intermediate), float32
+    assert 3 * logits <= per_sample <= 3 * logits + LIVE_OUTPUTS * inner
