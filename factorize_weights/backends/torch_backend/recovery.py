@@ -39,6 +39,9 @@ def _loss(kind: str, student: torch.Tensor, teacher: torch.Tensor) -> torch.Tens
 
 
 LR_TRIALS = (1e-3, 1e-4, 1e-5, 1e-6)
+#: The original's outputs on the calibration set are kept for the whole recovery while they fit
+#: this; larger ones (a language model's logits) are computed again for every batch instead
+TEACHER_BYTES = 512 * 2**20
 STABLE = 0.05  # a trial may end this much above the starting loss and still count as stable
 
 
@@ -94,8 +97,19 @@ def recover(
         return select_output(call(model, _take(inputs, idx)), output)
 
     with inference(original):  # the teacher's outputs, a batch at a time
-        teacher_all = torch.cat([run(original, order[i:i + batch_size]).detach() for i in range(0, n, batch_size)])
-    teacher_all = teacher_all[torch.from_numpy(np.argsort(order))]  # back in sample order
+        first = run(original, order[:batch_size]).detach()
+    if first.numel() * first.element_size() / len(first) * n > TEACHER_BYTES:
+        def teacher(idx):  # too large to keep (a language model's logits): run the original again
+            with inference(original):
+                return run(original, idx).detach()
+    else:
+        with inference(original):
+            kept = torch.cat([first] + [run(original, order[i:i + batch_size]).detach()
+                                        for i in range(batch_size, n, batch_size)])
+        kept = kept[torch.from_numpy(np.argsort(order))]  # back in sample order
+
+        def teacher(idx):
+            return kept[torch.from_numpy(idx)]
 
     def val_loss() -> float:
         if n_val == 0:
@@ -104,12 +118,12 @@ def recover(
             total = 0.0
             for i in range(0, n_val, batch_size):
                 idx = val_idx[i:i + batch_size]
-                total += float(_loss(loss, run(factorized, idx), teacher_all[torch.from_numpy(idx)])) * len(idx)
+                total += float(_loss(loss, run(factorized, idx), teacher(idx))) * len(idx)
             return total / n_val
 
     def train_step(opt, gen) -> None:
         pick = train_idx[torch.randint(len(train_idx), (min(batch_size, len(train_idx)),), generator=gen).numpy()]
-        loss_value = _loss(loss, run(factorized, pick), teacher_all[torch.from_numpy(pick)])
+        loss_value = _loss(loss, run(factorized, pick), teacher(pick))
         opt.zero_grad()
         loss_value.backward()
         opt.step()
