@@ -229,4 +229,5 @@ def check_value(f: dataclasses.Field, value) -> None:
             ok = value < high if m["open_high"] else value <= high
         if not ok:
             left = "(" if m["open_low"] else "["
-            raise InputError(f"{name} must be in {left}{low}, {high}{')' if m['open_high'] else ']'}; got {value!r}")
+            right = "inf)" if high is None else f"{high}{')' if m['open_high'] else ']'}"
+            raise InputError(f"{name} must be in {left}{low}, {right}; got {value!r}")

@@ -226,6 +226,10 @@ def _checked(inputs, labels, source: str, flag: str, sha: str | None) -> HeldOut
         if rows is not None and arr.shape[0] != rows[1]:
             raise InputError(f"{flag} {source}: {key!r} has {arr.shape[0]} rows but {rows[0]!r} has {rows[1]}")
         rows = rows or (key, arr.shape[0])
+    for key in ("attention_mask", "token_type_ids"):  # one entry per token (the convention of token inputs)
+        if key in named and "input_ids" in named and named[key].shape != named["input_ids"].shape:
+            raise InputError(f"{flag} {source}: {key!r} has shape {named[key].shape} but 'input_ids' has "
+                             f"{named['input_ids'].shape}; they need one entry per token")
     if labels is not None:
         labels = np.asarray(labels)
         if labels.shape[0] != rows[1]:

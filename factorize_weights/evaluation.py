@@ -20,21 +20,42 @@ ACTIVATION_BYTES = 256 * 2**20
 
 
 def check_fits(model, data: HeldOut, flag: str = "--heldout", output: str | None = None) -> np.ndarray:
-    """Run the first batch of ``data`` through ``model``; refuse data that does not fit it."""
-    first = first_batch(data)
-    try:
-        outputs = backend_for(model).predict(model, first, source=f"{flag} {data.source}", output=output)
-    except InputError:
-        raise
-    except Exception as exc:
-        message = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        raise InputError(
-            f"{flag} {data.source}: inputs of shape {data.sample_shape} per sample "
-            f"do not fit the model ({type(exc).__name__}: {message[:300]})"
-        ) from exc
-    if not np.all(np.isfinite(outputs)):
-        raise InputError(f"{flag} {data.source}: the original model gives NaN or Inf outputs")
-    return outputs
+    """Run the first batch of ``data`` through ``model``, then the samples holding each integer
+    input's extremes (:func:`extreme_rows`); refuse data that does not fit it. Returns the first
+    batch's outputs."""
+    found = []
+    for batch in (first_batch(data), extreme_rows(data)):
+        if batch is None:
+            continue
+        try:
+            found.append(backend_for(model).predict(model, batch, source=f"{flag} {data.source}", output=output))
+        except InputError:
+            raise
+        except Exception as exc:
+            message = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+            raise InputError(
+                f"{flag} {data.source}: inputs of shape {data.sample_shape} per sample "
+                f"do not fit the model ({type(exc).__name__}: {message[:300]})"
+            ) from exc
+        if not np.all(np.isfinite(found[-1])):
+            raise InputError(f"{flag} {data.source}: the original model gives NaN or Inf outputs")
+    return found[0]
+
+
+def extreme_rows(data: HeldOut):
+    """The samples past the first batch that hold the least or the largest value of an integer
+    input (token ids out of an embedding's range anywhere in the set are found up front, not in
+    the middle of a calibration pass), as one batch; None when there are none."""
+    named = data.inputs if isinstance(data.inputs, dict) else {"inputs": data.inputs}
+    first, rows = min(len(data), 8), set()
+    for arr in named.values():
+        if arr.dtype.kind in "iu" and arr.size and len(arr) > first:
+            flat = arr.reshape(len(arr), -1)
+            rows.update((int(flat.min(axis=1).argmin()), int(flat.max(axis=1).argmax())))
+    rows = sorted(r for r in rows if r >= first)
+    if not rows:
+        return None
+    return {k: v[rows] for k, v in data.inputs.items()} if isinstance(data.inputs, dict) else data.inputs[rows]
 
 
 def first_batch(data: HeldOut):
@@ -42,11 +63,17 @@ def first_batch(data: HeldOut):
     return next(data.batches(batch_size=min(len(data), 8)))[0]
 
 
-def check_heldout(model, heldout: HeldOut, metric: str | None, output: str | None = None) -> str:
-    """Run the first held-out batch through ``model``; return the metric to use."""
-    outputs = check_fits(model, heldout, "--heldout", output)
+def check_heldout(model, heldout: HeldOut, metric: str | None, output: str | None = None, flag: str = "--heldout") -> str:
+    """Run the first held-out batch through ``model``; return the metric to use. ``flag`` names
+    the data in errors (``--selection`` scores a metric too)."""
+    outputs = check_fits(model, heldout, flag, output)
     name = metric or default_metric(heldout.labels, outputs)
-    check_metric(name, heldout.labels, outputs, first_batch(heldout))
+    try:
+        check_metric(name, heldout.labels, outputs, first_batch(heldout))
+    except InputError as exc:
+        if flag == "--heldout":
+            raise
+        raise InputError(f"{flag} {heldout.source}: {exc}") from exc
     return name
 
 
@@ -77,7 +104,7 @@ def score(metric: str, factorized, triples, total: int, config: CompressConfig) 
 
 
 def check_overlap(heldout: HeldOut | None, calibration: HeldOut | None, allow: bool,
-                   flag: str = "--calibration") -> None:
+                   flag: str = "--calibration", against: str = "--heldout") -> None:
     if heldout is None or calibration is None or allow:
         return
     same = heldout.source == calibration.source or (heldout.sha256 is not None and heldout.sha256 == calibration.sha256)
@@ -85,7 +112,7 @@ def check_overlap(heldout: HeldOut | None, calibration: HeldOut | None, allow: b
         same = heldout.inputs.shape == calibration.inputs.shape and np.array_equal(heldout.inputs, calibration.inputs)
     if same:
         raise InputError(
-            f"{flag} {calibration.source} is the same data as --heldout {heldout.source}: the accuracy "
+            f"{flag} {calibration.source} is the same data as {against} {heldout.source}: the accuracy "
             "would be measured on what was used to fit or choose" + (" (give --allow-overlap to do it anyway)"
                                                                      if flag == "--calibration" else "")
         )

@@ -111,6 +111,10 @@ def check_perplexity(labels, outputs: np.ndarray, inputs) -> None:
     if outputs.ndim != 3 or outputs.shape[1] < 2:
         raise InputError("--metric perplexity: the model output must be next-token logits of shape "
                          f"(N, positions >= 2, vocabulary); got shape {outputs.shape}")
+    if labels is not None and not _aligned_labels(labels):  # given, but not token ids: never silently unused
+        raise InputError(f"--metric perplexity: 'labels' ({labels.dtype} {labels.shape}) are not next-token ids; give "
+                         f"(N, {outputs.shape[1]}) integer labels aligned with input_ids (< 0: ignored), or none "
+                         "(input_ids are scored)")
     ids = labels if _aligned_labels(labels) else (inputs.get("input_ids") if isinstance(inputs, dict) else None)
     if ids is None:
         raise InputError("--metric perplexity: the held-out set has no 'input_ids' array (or (N, T) integer "

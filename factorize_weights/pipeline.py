@@ -207,7 +207,7 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
     chosen = selected(records)
     checkable = heldout is not None or calibration is not None  # overridden forward()s are checked on data
     if not chosen and not (checkable and any(r.options.get("check_forward") for r in records)):
-        found = f"{len(records)} layer(s) found, all skipped" if records else "no linear or convolution layers found"
+        found = _all_skipped(records) if records else "no linear or convolution layers found"
         where = f"{model_source}: " if model_source else ""
         raise InputError(f"{where}nothing to factorize: {found}")
     _check_weights(backend, chosen)  # the weights before any data: a NaN weight is named as such, not as bad data
@@ -223,7 +223,7 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
         chosen = selected(records)
         if not chosen:
             where = f"{model_source}: " if model_source else ""
-            raise InputError(f"{where}nothing to factorize: {len(records)} layer(s) found, all skipped")
+            raise InputError(f"{where}nothing to factorize: {_all_skipped(records)}")
     for budget in parsed:
         check_feasible(chosen, budget, rank_step=config.rank_step, min_rank=config.min_rank)
     profile = None
@@ -265,6 +265,16 @@ def prepare(model, config: CompressConfig, heldout: HeldOut | None = None, calib
     timings["prepare"] = time.perf_counter() - t0
     return Prepared(model, config, records, decompositions, method, sequential, heldout, cal, metric_name,
                     reference, timings, size, order, effects, allocation, bn_inputs, profile, why)
+
+
+def _all_skipped(records: list[LayerRecord]) -> str:
+    """'N layer(s) found, all skipped' and why, the commonest reasons first (an --only or --skip
+    that leaves nothing is named)."""
+    from collections import Counter
+
+    reasons = Counter(r.skip_reason or "not selected" for r in records).most_common()
+    why = "; ".join(f"{n} {reason}" for reason, n in reasons[:2]) + ("; ..." if len(reasons) > 2 else "")
+    return f"{len(records)} layer(s) found, all skipped ({why})"
 
 
 def measure_effects(model, chosen: list[LayerRecord], decompositions: dict, calibration: HeldOut,
@@ -389,7 +399,7 @@ def profile_latency(model, heldout: HeldOut, config: CompressConfig | None = Non
     backend.measure_positions(model, records, heldout.inputs)  # overridden forward()s are checked here, as in compress
     chosen = selected(records)
     if not chosen:
-        raise InputError(f"nothing to profile: {len(records)} layer(s) found, none can be factorized")
+        raise InputError(f"nothing to profile: {_all_skipped(records) if records else 'no linear or convolution layers found'}")
     batch = latency_budget.latency_mod.batch_of(heldout.inputs, config.latency_batch)
     return latency_budget.measure_profile(model, chosen, batch, config)
 

@@ -13,6 +13,7 @@ from pathlib import Path
 from .backends import backend_for
 from .config import CompressConfig
 from .data import HeldOut
+from .errors import InputError
 from .evaluation import check_heldout, check_overlap, reference_outputs
 from .pipeline import CompressResult, Prepared, prepare, realize
 from .resolve import check, facts_for
@@ -97,9 +98,17 @@ def compress(
         prep = prepare(model, config, heldout, calibration, model_source=source)
         result = realize(prep, config.budget, sources=sources)
     else:
+        measured_by = None
         if selection is not None:
             check_overlap(heldout, selection, False, "--selection")
-            check_overlap(selection, calibration, config.allow_overlap)
+            check_overlap(selection, calibration, config.allow_overlap, against="--selection")
+            # both sets fit and score one metric before the search (the held-out set is used after it)
+            measured_by = check_heldout(model, heldout, config.metric, config.output)
+            chosen_by = check_heldout(model, selection, config.metric, config.output, flag="--selection")
+            if chosen_by != measured_by:
+                raise InputError(f"--selection {selection.source}: would choose the budget by {chosen_by}, but --heldout "
+                                 f"{heldout.source} is scored by {measured_by} (labels in one and not the other?); "
+                                 "give --metric, or two sets of the same kind")
         prep = prepare(model, config, selection or heldout, calibration, budgets=["params=1"], model_source=source)
         t_search = time.perf_counter()
         budget, search, _ = search_budget(prep, keep_within)
@@ -107,7 +116,7 @@ def compress(
         search["selection"] = None if selection is None else {
             "source": selection.source, "sha256": selection.sha256, "samples": len(selection)}
         if selection is not None:  # the result is measured on the held-out set, which played no part
-            prep.heldout, prep.metric_name = heldout, check_heldout(model, heldout, config.metric, config.output)
+            prep.heldout, prep.metric_name = heldout, measured_by
             prep.reference = reference_outputs(model, heldout, prep.batch_size, config.output)
         prep.config = config = dataclasses.replace(config, budget=budget)
         result = realize(prep, budget, sources=sources)

@@ -20,7 +20,7 @@ def open_model(spec: str, *, weights: str | None = None, weights_key: str | None
     from . import onnx_backend
 
     if spec.lower().endswith(".onnx") or onnx_backend.looks_like_onnx(spec):
-        for flag, given in (("--weights", weights), ("--factory-weights", factory_weights)):
+        for flag, given in (("--weights", weights), ("--weights-key", weights_key), ("--factory-weights", factory_weights)):
             if given:
                 raise InputError(f"{flag} is for PyTorch factories; the ONNX file {spec} holds its own weights")
         return onnx_backend.load(spec), {"model": spec, "format": onnx_backend.FORMAT, "model_sha256": file_sha256(spec),
@@ -28,8 +28,11 @@ def open_model(spec: str, *, weights: str | None = None, weights_key: str | None
     from . import torch_backend
 
     folder = Path(spec)
-    if folder.is_dir() and (folder / "config.json").is_file():  # a Hugging Face-style model folder
-        for flag, given in (("--weights", weights), ("--factory-weights", factory_weights)):
+    if folder.is_dir() and not (folder / "config.json").is_file():
+        raise InputError(f"--model {spec}: a folder without config.json; a model folder holds the config.json and "
+                         "weights save_pretrained writes (give that folder, or FILE.py:FACTORY with --weights)")
+    if folder.is_dir():  # a Hugging Face-style model folder
+        for flag, given in (("--weights", weights), ("--weights-key", weights_key), ("--factory-weights", factory_weights)):
             if given:
                 raise InputError(f"{flag} is for a factory; the model folder {spec} holds its own weights")
         found = next((str(p) for p in sorted(folder.glob("*.safetensors"))), None)

@@ -200,14 +200,14 @@ def cmd_evaluate(args) -> int:
     from ..evaluation import evaluate
     from ..store import load_factorized
 
+    config = CompressConfig(quiet=args.quiet, batch_size=args.batch_size, output=args.output,
+                            latency_batch=args.latency_batch, latency_threads=args.latency_threads,
+                            latency_repeats=args.latency_repeats)  # the options first: before any loading
     model, _ = load_model(args)
     if not args.heldout:
         raise InputError("--heldout is required for evaluate")
     heldout = _heldout(args)
     factorized = load_factorized(model, args.factorized)
-    config = CompressConfig(quiet=args.quiet, batch_size=args.batch_size, output=args.output,
-                            latency_batch=args.latency_batch, latency_threads=args.latency_threads,
-                            latency_repeats=args.latency_repeats)
     result = evaluate(model, factorized, heldout, args.metric, config)
     lat = None
     if args.latency_repeats > 0:  # the check of a plan made elsewhere happens here, on the device
@@ -243,12 +243,12 @@ def cmd_profile(args) -> int:
         raise InputError(f"--out {out}: exists; give --force to replace it")
     if not out.parent.is_dir():
         raise InputError(f"--out {out}: folder {out.parent} does not exist")
+    config = CompressConfig(quiet=args.quiet, **{k: getattr(args, k) for k in PROFILE_FIELDS})  # before any loading
+    if config.latency_repeats < 1:
+        raise InputError("--latency-repeats must be at least 1 for a profile (it is all timing)")
     model, _ = load_model(args)
     if not args.heldout:
         raise InputError("--heldout is required: the inputs the layers are timed on (their shapes are what counts)")
-    config = CompressConfig(quiet=args.quiet, **{k: getattr(args, k) for k in PROFILE_FIELDS})
-    if config.latency_repeats < 1:
-        raise InputError("--latency-repeats must be at least 1 for a profile (it is all timing)")
     profile = profile_latency(model, _heldout(args), config)
     profile.save(out)
     if args.json:

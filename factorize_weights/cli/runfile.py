@@ -44,6 +44,8 @@ def apply_run_file(parser, argv: list[str], args):
     from ..data import file_sha256
 
     path = Path(args.config)
+    if path.is_dir():
+        raise InputError(f"--config {path}: is a folder; give the TOML run file")
     if not path.is_file():
         raise InputError(f"--config {path}: file does not exist")
     try:

@@ -73,6 +73,9 @@ def load_pretrained(folder: str | Path) -> nn.Module:
     import os
 
     folder = Path(folder)
+    if not (folder / "plan.json").is_file() and _is_result_report(folder / "report.json"):
+        raise InputError(f"--model {folder}: a factorize-weights result folder (report.json) without its plan.json, so "
+                         "its factorized layers cannot be rebuilt; restore plan.json, or give the original model folder")
     os.environ.setdefault("HF_HUB_OFFLINE", "1")  # local files only, whatever the environment says
     try:
         import transformers
@@ -97,6 +100,17 @@ def load_pretrained(folder: str | Path) -> nn.Module:
 
         return rebuild(model.eval(), folder, plan_layers(folder))
     return model.eval()
+
+
+def _is_result_report(path: Path) -> bool:
+    """Whether ``path`` is the report.json a compress run writes (its top-level fields)."""
+    import json
+
+    try:
+        report = json.loads(path.read_text(encoding="utf-8")) if path.is_file() else None
+    except (OSError, ValueError):
+        return False
+    return isinstance(report, dict) and {"tool_version", "totals", "layers"} <= set(report)
 
 
 def _with_all_weights(transformers, cls, folder: Path, names: list[str]) -> nn.Module:
@@ -158,23 +172,34 @@ class ShardedCheckpoint(Mapping):
         except (OSError, ValueError, KeyError, TypeError) as exc:
             raise InputError(f"--weights {index}: not a safetensors index (no readable 'weight_map': "
                              f"{type(exc).__name__})") from exc
+        bad = next((f"{k!r} -> {v!r}" for k, v in weight_map.items() if not isinstance(v, str)), None) \
+            if isinstance(weight_map, dict) else f"a {type(weight_map).__name__}"
+        if bad:
+            raise InputError(f"--weights {index}: 'weight_map' must map each tensor name to its shard's file name "
+                             f"(got {bad}); write the index with save_pretrained")
+        self.index = index
         self.files = {name: index.parent / shard for name, shard in weight_map.items()}
         missing = sorted({str(f) for f in self.files.values() if not f.is_file()})
         if missing:
             raise InputError(f"--weights {index}: shard file {missing[0]} is missing ({len(missing)} missing)")
 
-    def _open(self, name: str):
+    def _read(self, name: str, part: Callable):
+        """``part(file, name)`` from the shard the index names for ``name``; a shard that is not
+        safetensors, or lacks the tensor, is refused naming both files."""
         from safetensors import safe_open
 
-        return safe_open(str(self.files[name]), framework="pt")
+        try:
+            with safe_open(str(self.files[name]), framework="pt") as f:
+                return part(f, name)
+        except Exception as exc:  # safetensors raises its own error types (a damaged header, a missing tensor)
+            raise InputError(f"--weights {self.index}: shard {self.files[name].name} cannot give tensor {name!r} "
+                             f"({_describe(exc)}); the shard is damaged or the index names the wrong file") from exc
 
     def shape(self, name: str) -> tuple:
-        with self._open(name) as f:
-            return tuple(f.get_slice(name).get_shape())
+        return self._read(name, lambda f, n: tuple(f.get_slice(n).get_shape()))
 
     def __getitem__(self, name: str) -> torch.Tensor:
-        with self._open(name) as f:
-            return f.get_tensor(name)
+        return self._read(name, lambda f, n: f.get_tensor(n))
 
     def __iter__(self):
         return iter(self.files)
@@ -193,6 +218,9 @@ def read_checkpoint(path: str | Path, key: str | None = None):
 
     path = readable_file(path, "--weights", "checkpoint file")
     if path.name.lower().endswith(".index.json"):
+        if key is not None:
+            raise InputError(f"--weights-key {key!r}: the sharded index {path} names tensors, not keys to unwrap; "
+                             "leave --weights-key out")
         return ShardedCheckpoint(path)
     suffix = path.suffix.lower()
     try:

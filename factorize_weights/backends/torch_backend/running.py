@@ -124,8 +124,34 @@ def predict(model: nn.Module, inputs, *, source: str = "--heldout", output: str 
     output :func:`select_output` picks, as a float64 array. ``source`` names the data in errors."""
     if isinstance(inputs, dict):
         _check_names(model, inputs, source)
-    with inference(model):
+    with inference(model), _checked_embeddings(model, source):
         return _to_numpy(call(model, inputs), output)
+
+
+@contextlib.contextmanager
+def _checked_embeddings(model: nn.Module, source: str):
+    """Every embedding table checks the ids it is given: integers, inside its rows (torch would
+    raise a bare IndexError or a dtype error naming neither the data nor the table)."""
+    def check(module, args, name):
+        ids = args[0] if args else None
+        if not isinstance(ids, torch.Tensor) or ids.numel() == 0:
+            return
+        if ids.is_floating_point():
+            raise InputError(f"{source}: embedding {name!r} looks up token ids but got {str(ids.dtype)[6:]} values; "
+                             "store the ids as integers (e.g. numpy int64)")
+        low, high = int(ids.min()), int(ids.max())
+        if low < 0 or high >= module.num_embeddings:
+            raise InputError(f"{source}: ids range over [{low}, {high}] but embedding {name!r} has "
+                             f"{module.num_embeddings} rows (ids 0 to {module.num_embeddings - 1}); are they from "
+                             "another tokenizer or vocabulary?")
+
+    hooks = [m.register_forward_pre_hook(lambda m, a, name=name: check(m, a, name))
+             for name, m in model.named_modules() if isinstance(m, (nn.Embedding, nn.EmbeddingBag))]
+    try:
+        yield
+    finally:
+        for h in hooks:
+            h.remove()
 
 
 def _check_names(model: nn.Module, inputs: dict, source: str) -> None:
