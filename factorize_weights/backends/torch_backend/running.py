@@ -4,6 +4,7 @@ metrics read, inference mode, timing and ONNX export."""
 from __future__ import annotations
 
 import contextlib
+import functools
 from pathlib import Path
 from typing import Sequence
 
@@ -51,12 +52,16 @@ def _has_cache_switch(model: nn.Module) -> bool:
     only: a cache is for generation, costs memory, and is a changing object that block replays
     (:func:`paired.find_chain`) cannot reuse."""
     config = getattr(model, "config", None)
-    if not getattr(config, "use_cache", False):
-        return False
+    return bool(getattr(config, "use_cache", False)) and _forward_takes_use_cache(type(model))
+
+
+@functools.lru_cache(maxsize=None)
+def _forward_takes_use_cache(cls) -> bool:
+    """Read once per model class: ``call`` runs on every batch of every pass."""
     import inspect
 
     try:
-        return "use_cache" in inspect.signature(model.forward).parameters
+        return "use_cache" in inspect.signature(cls.forward).parameters
     except (TypeError, ValueError):
         return False
 
